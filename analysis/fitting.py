@@ -1,0 +1,414 @@
+"""Fit a model family to one window of complex velocity: :func:`fit_series`.
+
+The optimiser (L-BFGS-B, scipy) works in coordinates ``x`` that are ``log`` of positive scale parameters
+and the value itself for shape/frequency parameters, inside the family's bounds. The debiased Whittle
+objective comes with its exact gradient (one batched FFT); the others use finite differences.
+
+Standard errors (debiased and standard Whittle) come from the Fisher information of the Whittle form,
+``F = sum_band (d log E_k)(d log E_k)^T``, inflated by ``N sum_t h_t^4`` (the variance inflation of a
+tapered or masked periodogram, Percival & Walden 1993, section 6.4) because tapering and gaps correlate
+neighbouring periodogram ordinates; the exact likelihood uses its observed information (a
+finite-difference Hessian). Standard errors of positive parameters and of derived quantities follow by
+the delta method.
+
+Goodness of fit: over the fitted band the ratios ``I_k / E[I_k]`` are approximately independent standard
+exponential variables when the model is right; the p-value is the Kolmogorov-Smirnov test of that
+(scipy.stats.kstest). Ordinates correlated by tapering or gaps make it approximate.
+
+Diffusivity: single-particle, per velocity component, ``kappa = S(0) / 4`` with ``S`` the fitted
+complex-velocity density converted to (m/s)^2 per Hz, in m^2/s (Taylor 1921; for the Matérn process
+Lilly et al. 2017, eq. 36).
+
+References
+----------
+Taylor, G. I. (1921). Diffusion by continuous movements. Proceedings of the London Mathematical Society
+s2-20, 196-212. doi:10.1112/plms/s2-20.1.196
+Sykulski et al. (2019), Biometrika 106, 251-266 (debiased Whittle; standard errors section 4).
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.optimize
+from scipy.stats import kstest
+
+from .conventions import SECONDS_PER_DAY, inertial_frequency_cpd, parse_timedelta_seconds
+from .likelihood import (
+    ESTIMATORS,
+    PreparedWindow,
+    exact_negloglik,
+    expected_periodogram,
+    negloglik_whittle_form,
+    prepare_window,
+    whittle_expectation,
+)
+from .models import FitContext, ModelFamily, get_family
+
+STATUSES = ("ok", "at_bound", "no_convergence", "too_few_samples", "failed")
+#: windows with fewer valid samples than this are not fitted
+MIN_VALID_SAMPLES = 64
+#: above this many valid samples the exact likelihood warns (its cost grows as N^3)
+EXACT_WARN_SAMPLES = 3000
+
+
+@dataclass
+class FitResult:
+    """The outcome of one fit. A failed fit still returns a result with ``status`` and ``message``.
+
+    Attributes
+    ----------
+    model, estimator : str
+    params, stderr : dict
+        Parameter values and standard errors in natural units (see ``units``); NaN when not fitted.
+    units : dict
+    loglik : float
+        Maximised log-likelihood (Whittle form for the Whittle estimators).
+    aic : float
+    gof_pvalue : float
+        Goodness-of-fit p-value over the fitted band.
+    status, message : str
+    diffusivity, diffusivity_se : float
+        Single-particle diffusivity per component, m^2/s, and its standard error.
+    derived : dict
+        Time scales (days) and other derived quantities.
+    n_samples, n_valid, n_freq : int
+        Window length, valid samples, frequencies in the fitted band.
+    n_evaluations : int
+    """
+
+    model: str
+    estimator: str
+    params: dict
+    stderr: dict
+    units: dict
+    loglik: float = np.nan
+    aic: float = np.nan
+    gof_pvalue: float = np.nan
+    status: str = "failed"
+    message: str = ""
+    diffusivity: float = np.nan
+    diffusivity_se: float = np.nan
+    derived: dict = field(default_factory=dict)
+    n_samples: int = 0
+    n_valid: int = 0
+    n_freq: int = 0
+    n_evaluations: int = 0
+    covariance: np.ndarray | None = field(default=None, repr=False)
+    family: ModelFamily | None = field(default=None, repr=False)
+    context: FitContext | None = field(default=None, repr=False)
+    prepared: PreparedWindow | None = field(default=None, repr=False)
+
+    @property
+    def ok(self) -> bool:
+        return self.status == "ok"
+
+    @property
+    def theta(self) -> np.ndarray:
+        return np.array([self.params[n] for n in self.family.names], float)
+
+    def expected_spectrum(self, freq_cpd=None):
+        """The fitted model's expected periodogram on the window's frequencies (sorted), for plotting.
+
+        Returns ``(freq_cpd, expected, in_band)``. With ``freq_cpd`` given, returns the continuous
+        spectral density there instead (``in_band`` then marks ``|f| <= max_freq``).
+        """
+        if self.family is None or not np.all(np.isfinite(self.theta)):
+            raise ValueError(f"no fitted model ({self.status}: {self.message})")
+        if freq_cpd is not None:
+            f = np.asarray(freq_cpd, float)
+            s = np.real(self.family.spectral_density(self.theta, f, self.context))
+            top = np.abs(self.prepared.freq_cpd[self.prepared.band]).max()
+            return f, s, np.abs(f) <= top
+        p = self.prepared
+        e = expected_periodogram(self.family, self.theta, p, self.context)
+        o = np.argsort(p.freq_cpd, kind="stable")
+        return p.freq_cpd[o], e[o], p.band[o]
+
+    def to_row(self) -> dict:
+        """A flat dict: the columns of a fits table for this window."""
+        row = {
+            "model": self.model, "estimator": self.estimator, "status": self.status,
+            "message": self.message, "loglik": self.loglik, "aic": self.aic,
+            "gof_pvalue": self.gof_pvalue, "n_valid": self.n_valid, "n_freq": self.n_freq,
+        }
+        for k, v in self.params.items():
+            row[k] = v
+            row[k + "_se"] = self.stderr.get(k, np.nan)
+        row["diffusivity"] = self.diffusivity
+        row["diffusivity_se"] = self.diffusivity_se
+        row.update(self.derived)
+        return row
+
+
+def _to_x(theta, family):
+    return np.array([np.log(t) if p.scale == "log" else t for t, p in zip(theta, family.parameters)])
+
+
+def _from_x(x, family):
+    return np.array([np.exp(v) if p.scale == "log" else v for v, p in zip(x, family.parameters)])
+
+
+def _nat_jacobian(theta, family):
+    """d theta / d x (diagonal)."""
+    return np.array([t if p.scale == "log" else 1.0 for t, p in zip(theta, family.parameters)])
+
+
+def _numerical_hessian(fun, x, step=1e-4):
+    p = x.size
+    hess = np.empty((p, p))
+    f0 = fun(x)
+    for i in range(p):
+        for j in range(i, p):
+            ei = np.zeros(p)
+            ej = np.zeros(p)
+            ei[i] = step
+            ej[j] = step
+            if i == j:
+                hess[i, i] = (fun(x + ei) - 2 * f0 + fun(x - ei)) / step**2
+            else:
+                hess[i, j] = hess[j, i] = (fun(x + ei + ej) - fun(x + ei - ej) - fun(x - ei + ej)
+                                           + fun(x - ei - ej)) / (4 * step**2)
+    return hess
+
+
+def _empty(model, estimator, family, status, message, n=0, n_valid=0):
+    nan = {name: np.nan for name in family.names}
+    return FitResult(model, estimator, dict(nan), dict(nan), family.units, status=status, message=message,
+                     n_samples=n, n_valid=n_valid, family=family)
+
+
+def fit_series(z, dt, *, model="matern+inertial", estimator="debiased", max_freq=None, latitude=None,
+               mask=None, taper=None, exclude=None, fixed=None, inertial_frequency="free",
+               start=None) -> FitResult:
+    """Fit a parametric model to the rotary spectrum of one window of complex velocity.
+
+    Parameters
+    ----------
+    z : array_like of complex
+        Complex velocity ``u + i v`` in m/s at regular times; NaN marks missing samples. A real array is
+        fitted as a real-valued series (one-sided band).
+    dt : pandas.Timedelta, numpy.timedelta64, datetime.timedelta or float
+        Sample interval (a float is in seconds).
+    model : str or ModelFamily
+        ``"matern"``, ``"inertial"``, ``"matern+inertial"`` (default) or any registered family.
+    estimator : {"debiased", "whittle", "exact"}
+        Debiased Whittle (default), standard Whittle, or exact Gaussian likelihood.
+    max_freq : float, optional
+        Fit only ``0 < |f| <= max_freq`` (cpd). Default: up to the Nyquist frequency.
+    latitude : float or array_like, optional
+        Latitude (degrees north), a scalar or one value per sample. Used for the starting value and
+        bounds of the inertial frequency, and by the latitude-following inertial model.
+    mask : array_like of bool, optional
+        ``False`` marks samples to treat as missing (in addition to NaN).
+    taper : {"none", "hann", "dpss"}, optional
+        Data taper for the periodogram (default none).
+    exclude : sequence of (low, high), optional
+        Frequency-magnitude bands (cpd) to leave out of the fit, e.g. around tidal lines.
+    fixed : dict, optional
+        Parameters held at given values, e.g. ``{"matern_alpha": 1.0}``.
+    inertial_frequency : {"free", "follow-latitude"}
+        Fit the inertial frequency as a free constant (default), or follow ``2 Omega sin(latitude(t))``.
+    start : dict, optional
+        Starting values overriding the heuristic.
+
+    Returns
+    -------
+    FitResult
+        Never raises for a fit that fails numerically: such results carry ``status != "ok"``.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from driftspec.analysis import fit_series, simulate
+    >>> z = simulate("matern", [0.02, 1.2, 1.0], n=1440, dt=3600.0, seed=1)
+    >>> res = fit_series(z, 3600.0, model="matern")
+    >>> res.status, round(res.params["matern_alpha"], 1)
+    ('ok', 1.2)
+    """
+    if estimator not in ESTIMATORS:
+        raise ValueError(f"estimator must be one of {ESTIMATORS}, got {estimator!r}")
+    family = get_family(model, inertial_frequency)
+    model_name = model if isinstance(model, str) else family.name
+    dt_days = parse_timedelta_seconds(dt) / SECONDS_PER_DAY
+    z = np.asarray(z)
+    n = z.size
+    lat_series = None
+    lat_mean = None
+    if latitude is not None:
+        lat_arr = np.asarray(latitude, float)
+        if lat_arr.ndim == 0:
+            lat_mean = float(lat_arr)
+            lat_series = np.full(n, lat_mean)
+        else:
+            if lat_arr.shape != (n,):
+                raise ValueError("latitude must be a scalar or have one value per sample")
+            lat_series = lat_arr
+            lat_mean = float(np.nanmean(lat_arr))
+    fc = inertial_frequency_cpd(lat_mean) if lat_mean is not None else None
+    context = FitContext(dt_days=dt_days, latitude=lat_mean, inertial_frequency_cpd=fc,
+                         latitude_series=lat_series)
+    valid = np.isfinite(z) if mask is None else np.isfinite(z) & np.asarray(mask, bool)
+    n_valid = int(valid.sum())
+    if n_valid < MIN_VALID_SAMPLES:
+        return _empty(model_name, estimator, family, "too_few_samples",
+                      f"{n_valid} valid samples (need {MIN_VALID_SAMPLES})", n, n_valid)
+    if family.modulated and lat_series is None:
+        return _empty(model_name, estimator, family, "failed",
+                      "latitude-following inertial model needs latitude", n, n_valid)
+    try:
+        prep = prepare_window(z, dt_days, mask=mask, taper=taper, max_freq=max_freq, exclude=exclude,
+                              modulated=family.modulated, latitude_series=lat_series)
+    except ValueError as exc:
+        return _empty(model_name, estimator, family, "failed", str(exc), n, n_valid)
+    fixed = dict(fixed or {})
+    unknown = set(fixed) - set(family.names)
+    if unknown:
+        raise ValueError(f"fixed names {sorted(unknown)} are not parameters of {family.name}")
+    free = np.array([name not in fixed for name in family.names])
+    n_free = int(free.sum())
+    if prep.band.sum() < max(2 * n_free + 2, 8):
+        return _empty(model_name, estimator, family, "too_few_samples",
+                      f"{int(prep.band.sum())} frequencies in the fitted band", n, n_valid)
+    if estimator == "exact" and n_valid > EXACT_WARN_SAMPLES:
+        warnings.warn(f"exact likelihood with {n_valid} samples is slow (cost grows as N^3)", stacklevel=2)
+    try:
+        return _optimise(family, model_name, estimator, prep, context, fixed, free, start)
+    except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:
+        return _empty(model_name, estimator, family, "failed", f"{type(exc).__name__}: {exc}", n, n_valid)
+
+
+def _optimise(family, model_name, estimator, prep, context, fixed, free, start):
+    names = family.names
+    bounds_nat = family.bounds(context)
+    f_band = prep.freq_cpd[prep.band]
+    theta0 = family.initial_guess(f_band, prep.periodogram[prep.band], context)
+    for k, v in (start or {}).items():
+        theta0[names.index(k)] = v
+    for k, v in fixed.items():
+        theta0[names.index(k)] = v
+    lo_nat = np.array([b[0] for b in bounds_nat])
+    hi_nat = np.array([b[1] for b in bounds_nat])
+    theta0 = np.clip(theta0, lo_nat * (1 + 1e-9), hi_nat * (1 - 1e-9))
+    theta0 = np.where(~np.isfinite(theta0), 0.5 * (lo_nat + hi_nat), theta0)
+    x_lo, x_hi = _to_x(lo_nat, family), _to_x(hi_nat, family)
+    x0 = _to_x(theta0, family)
+    x_fixed = x0.copy()
+    counter = [0]
+
+    def full(xf):
+        x = x_fixed.copy()
+        x[free] = xf
+        return x
+
+    if estimator == "debiased":
+        def objective(xf):
+            counter[0] += 1
+            theta = _from_x(full(xf), family)
+            e, de = expected_periodogram(family, theta, prep, context, jacobian=True)
+            if np.any(e[prep.band] <= 0) or not np.all(np.isfinite(e[prep.band])):
+                return 1e300, np.zeros(free.sum())
+            val, g = negloglik_whittle_form(e, prep, de)
+            return val, g[free]
+        jac = True
+    elif estimator == "whittle":
+        def objective(xf):
+            counter[0] += 1
+            e = whittle_expectation(family, _from_x(full(xf), family), prep, context)
+            return negloglik_whittle_form(e, prep)
+        jac = False
+    else:
+        def objective(xf):
+            counter[0] += 1
+            return exact_negloglik(family, _from_x(full(xf), family), prep, context)
+        jac = False
+
+    with np.errstate(all="ignore"):
+        res = scipy.optimize.minimize(objective, x0[free], jac=jac, method="L-BFGS-B",
+                                      bounds=list(zip(x_lo[free], x_hi[free])),
+                                      options={"maxiter": 500, "ftol": 1e-10, "gtol": 1e-6})
+    x_hat = full(res.x)
+    theta = _from_x(x_hat, family)
+    value = float(res.fun if np.ndim(res.fun) == 0 else res.fun[0])
+    n_free = int(free.sum())
+
+    # covariance in x coordinates for the free parameters
+    cov_x = np.full((n_free, n_free), np.nan)
+    with np.errstate(all="ignore"):
+        try:
+            if estimator == "exact":
+                hess = _numerical_hessian(lambda xf: exact_negloglik(
+                    family, _from_x(full(xf), family), prep, context), res.x)
+                cov_x = np.linalg.inv(hess)
+            else:
+                if estimator == "debiased":
+                    e, de = expected_periodogram(family, theta, prep, context, jacobian=True)
+                    de = de[free]
+                else:
+                    e = whittle_expectation(family, theta, prep, context)
+                    de = np.empty((n_free, e.size))
+                    for j, k in enumerate(np.flatnonzero(free)):
+                        xp, xm = x_hat.copy(), x_hat.copy()
+                        xp[k] += 1e-6
+                        xm[k] -= 1e-6
+                        de[j] = (whittle_expectation(family, _from_x(xp, family), prep, context)
+                                 - whittle_expectation(family, _from_x(xm, family), prep, context)) / 2e-6
+                b = prep.band
+                dlog = de[:, b] / e[b]
+                fisher = dlog @ dlog.T
+                cov_x = np.linalg.inv(fisher) * prep.variance_inflation
+        except np.linalg.LinAlgError:
+            pass
+    jac_nat = _nat_jacobian(theta, family)[free]
+    cov_nat_free = cov_x * np.outer(jac_nat, jac_nat)
+    se = np.full(len(names), np.nan)
+    se[free] = np.sqrt(np.clip(np.diag(cov_nat_free), 0, None)) if np.all(np.isfinite(cov_nat_free)) else np.nan
+    se[~free] = 0.0
+
+    # derived quantities
+    def kappa(th):
+        return family.zero_frequency_density(th, context) * SECONDS_PER_DAY / 4.0
+
+    kap = kappa(theta)
+    grad = np.zeros(n_free)
+    for j, k in enumerate(np.flatnonzero(free)):
+        xp, xm = x_hat.copy(), x_hat.copy()
+        xp[k] += 1e-6
+        xm[k] -= 1e-6
+        grad[j] = (kappa(_from_x(xp, family)) - kappa(_from_x(xm, family))) / 2e-6
+    kap_se = float(np.sqrt(max(grad @ cov_x @ grad, 0))) if np.all(np.isfinite(cov_x)) else np.nan
+
+    # goodness of fit over the band
+    if estimator == "whittle":
+        e_fit = whittle_expectation(family, theta, prep, context)
+    else:
+        e_fit = expected_periodogram(family, theta, prep, context)
+    ratios = prep.periodogram[prep.band] / np.maximum(e_fit[prep.band], 1e-300)
+    gof = float(kstest(ratios, "expon").pvalue)
+
+    # status
+    span = x_hi - x_lo
+    near = free & ((x_hat - x_lo < 1e-5 * span) | (x_hi - x_hat < 1e-5 * span))
+    if not res.success and not np.isfinite(value):
+        status, message = "failed", str(res.message)
+    elif not res.success:
+        status, message = "no_convergence", str(res.message)
+    elif near.any():
+        status = "at_bound"
+        message = "at bound: " + ", ".join(n for n, b in zip(names, near) if b)
+    elif not np.all(np.isfinite(se[free])):
+        status, message = "ok", "standard errors unavailable (singular information)"
+    else:
+        status, message = "ok", ""
+    loglik = -value
+    return FitResult(
+        model=model_name, estimator=estimator,
+        params=dict(zip(names, map(float, theta))), stderr=dict(zip(names, map(float, se))),
+        units=family.units, loglik=loglik, aic=2 * n_free - 2 * loglik, gof_pvalue=gof,
+        status=status, message=message, diffusivity=float(kap), diffusivity_se=kap_se,
+        derived=family.derived(theta, context), n_samples=prep.n, n_valid=prep.n_valid,
+        n_freq=int(prep.band.sum()), n_evaluations=counter[0], covariance=cov_nat_free,
+        family=family, context=context, prepared=prep,
+    )

@@ -1,0 +1,64 @@
+"""Spherical geometry for velocities: unit vectors, local east/north frames, finite differences.
+
+All computations are on a sphere of radius :data:`~driftspec.analysis.conventions.EARTH_RADIUS_M`.
+Working with Cartesian unit vectors makes the antimeridian and the poles ordinary places.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .conventions import EARTH_RADIUS_M
+
+
+def unit_vectors(lat_deg, lon_deg) -> np.ndarray:
+    """Cartesian unit vectors (..., 3) of points given in degrees."""
+    phi, lam = np.deg2rad(lat_deg), np.deg2rad(lon_deg)
+    c = np.cos(phi)
+    return np.stack([c * np.cos(lam), c * np.sin(lam), np.sin(phi)], axis=-1)
+
+
+def east_north(lat_deg, lon_deg, vec) -> tuple[np.ndarray, np.ndarray]:
+    """Components of Cartesian vectors ``vec`` along local east and north at the given points."""
+    phi, lam = np.deg2rad(lat_deg), np.deg2rad(lon_deg)
+    east = -np.sin(lam) * vec[..., 0] + np.cos(lam) * vec[..., 1]
+    north = (-np.sin(phi) * np.cos(lam) * vec[..., 0] - np.sin(phi) * np.sin(lam) * vec[..., 1]
+             + np.cos(phi) * vec[..., 2])
+    return east, north
+
+
+def great_circle_distance_m(lat1, lon1, lat2, lon2):
+    """Great-circle distance in metres (haversine-free, via the chord; exact on the sphere)."""
+    chord = np.linalg.norm(unit_vectors(lat2, lon2) - unit_vectors(lat1, lon1), axis=-1)
+    return 2.0 * EARTH_RADIUS_M * np.arcsin(np.clip(chord / 2.0, 0.0, 1.0))
+
+
+def displacement_east_north_m(lat0, lon0, lat1, lon1, lat_ref=None, lon_ref=None):
+    """East and north components (m) of the displacement from point 0 to point 1.
+
+    The displacement is the great-circle arc from 0 to 1, expressed in the local frame at the reference
+    point (default: the arc's midpoint). Its length equals the great-circle distance.
+    """
+    p0, p1 = unit_vectors(lat0, lon0), unit_vectors(lat1, lon1)
+    if lat_ref is None:
+        mid = p0 + p1
+        mid /= np.linalg.norm(mid, axis=-1, keepdims=True)
+        lat_ref = np.rad2deg(np.arcsin(np.clip(mid[..., 2], -1, 1)))
+        lon_ref = np.rad2deg(np.arctan2(mid[..., 1], mid[..., 0]))
+    e, n = east_north(lat_ref, lon_ref, p1 - p0)
+    chord = np.hypot(e, n)
+    dist = great_circle_distance_m(lat0, lon0, lat1, lon1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        scale = np.where(chord > 0, dist / np.where(chord > 0, chord, 1.0), 0.0)
+    return e * scale, n * scale
+
+
+def wrap_lon(lon):
+    """Longitude wrapped to [-180, 180)."""
+    return (np.asarray(lon, dtype=float) + 180.0) % 360.0 - 180.0
+
+
+def circular_mean_lon(lon_deg) -> float:
+    """Mean longitude that is sane across the antimeridian, in [-180, 180)."""
+    lam = np.deg2rad(np.asarray(lon_deg, dtype=float))
+    return float(wrap_lon(np.rad2deg(np.arctan2(np.nanmean(np.sin(lam)), np.nanmean(np.cos(lam))))))

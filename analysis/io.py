@@ -1,0 +1,295 @@
+"""Reading and writing position fixes.
+
+In-memory representation
+------------------------
+Every stage of driftspec passes position fixes as a :class:`pandas.DataFrame` with one row per fix:
+
+============================  ===============================================================
+column                        meaning
+============================  ===============================================================
+``id``                        track identifier (string)
+``time``                      fix time, ``datetime64[ns]``, UTC without a time-zone tag
+``lat``                       latitude, degrees north, in [-90, 90]
+``lon``                       longitude, degrees east, wrapped to [-180, 180)
+``position_error_m``          optional, one-sigma position error per component, m
+``u``, ``v``                  optional, measured eastward/northward velocity, m/s
+``row``                       the fix's 0-based row in the source (for accounting)
+============================  ===============================================================
+
+:func:`read_fixes` returns the fixes *as read*, with ``time``/``lat``/``lon`` parsed but nothing dropped:
+unparseable values become NaN/NaT so that :func:`driftspec.analysis.qc.clean_fixes` can count them.
+Readers accept CSV, Parquet, CF discrete-sampling-geometry netCDF (featureType ``trajectory``, as
+contiguous ragged, indexed ragged or multidimensional arrays), a DataFrame or an xarray Dataset.
+
+References
+----------
+NetCDF Climate and Forecast (CF) Metadata Conventions, version 1.11, chapter 9 "Discrete Sampling
+Geometries" and appendix H (examples H.4.1-H.4.3 for trajectories).
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from .errors import InputError
+
+__all__ = ["read_fixes", "write_fixes", "fixes_to_cf_dataset", "COLUMN_ALIASES"]
+
+#: accepted column names (case-insensitive) for each standard column
+COLUMN_ALIASES = {
+    "id": ("id", "track", "track_id", "platform", "platform_id", "trajectory", "drifter", "float"),
+    "time": ("time", "datetime", "timestamp", "date_time", "t"),
+    "lat": ("lat", "latitude"),
+    "lon": ("lon", "longitude", "long"),
+    "position_error_m": ("position_error_m", "position_error", "err_m"),
+    "u": ("u", "ve", "u_ms"),
+    "v": ("v", "vn", "v_ms"),
+}
+REQUIRED = ("id", "time", "lat", "lon")
+OPTIONAL_NUMERIC = ("position_error_m", "u", "v")
+
+
+def _standardise_columns(df: pd.DataFrame, where: str) -> pd.DataFrame:
+    lower = {str(c).strip().lower(): c for c in df.columns}
+    rename = {}
+    for std, aliases in COLUMN_ALIASES.items():
+        for a in aliases:
+            if a in lower:
+                rename[lower[a]] = std
+                break
+    missing = [c for c in REQUIRED if c not in rename.values()]
+    if missing:
+        raise InputError(
+            f"{where}: missing column(s) {', '.join(missing)}; found {', '.join(map(str, df.columns))}"
+        )
+    return df.rename(columns=rename)[[c for c in COLUMN_ALIASES if c in rename.values()]]
+
+
+def _parse_times(values) -> pd.Series:
+    s = pd.Series(values)
+    if np.issubdtype(s.dtype, np.datetime64):
+        t = pd.to_datetime(s, utc=False)
+        if getattr(t.dt, "tz", None) is not None:
+            t = t.dt.tz_convert("UTC").dt.tz_localize(None)
+        return t.astype("datetime64[ns]")
+    t = pd.to_datetime(s, errors="coerce", utc=True, format="mixed")
+    return t.dt.tz_localize(None).astype("datetime64[ns]")
+
+
+def _coerce(df: pd.DataFrame) -> pd.DataFrame:
+    """Parse columns; keep every row; record which raw values were present but unparseable."""
+    out = pd.DataFrame(index=np.arange(len(df)))
+    ids = df["id"]
+    id_missing = ids.isna() | (ids.astype("string").str.strip() == "")
+    out["id"] = ids.astype("string").str.strip().where(~id_missing, None).astype(object)
+    raw_time = df["time"]
+    time_missing = raw_time.isna() | (raw_time.astype("string").str.strip() == "")
+    out["time"] = _parse_times(raw_time.to_numpy())
+    out["time_unparseable"] = (~time_missing.to_numpy()) & out["time"].isna().to_numpy()
+    bad_value = np.zeros(len(df), dtype=bool)
+    for col in ("lat", "lon", *OPTIONAL_NUMERIC):
+        if col not in df:
+            continue
+        raw = df[col]
+        num = pd.to_numeric(raw, errors="coerce").astype(float)
+        if col in ("lat", "lon"):
+            present = ~(raw.isna() | (raw.astype("string").str.strip() == ""))
+            bad_value |= present.to_numpy() & num.isna().to_numpy()
+        out[col] = num.to_numpy()
+    out["value_unparseable"] = bad_value
+    out["row"] = np.arange(len(df), dtype=np.int64)
+    return out
+
+
+def _read_table(path: Path) -> pd.DataFrame:
+    suffix = path.suffix.lower()
+    try:
+        if suffix in (".parquet", ".pq"):
+            return pd.read_parquet(path)
+        return pd.read_csv(path, dtype=str, keep_default_na=False, na_values=[""], skipinitialspace=True,
+                           comment="#", on_bad_lines="error")
+    except pd.errors.ParserError as exc:
+        raise InputError(f"{path}: malformed CSV ({str(exc).strip().splitlines()[-1]})") from exc
+    except (OSError, ValueError) as exc:
+        raise InputError(f"{path}: cannot read ({str(exc).strip().splitlines()[0]})") from exc
+
+
+def _find_var(ds: xr.Dataset, std: str):
+    keys = {"lat": ("latitude",), "lon": ("longitude",), "time": ("time",)}[std]
+    for name, var in ds.variables.items():
+        if var.attrs.get("standard_name") in keys:
+            return name
+    for name in ds.variables:
+        if str(name).lower() in COLUMN_ALIASES[std]:
+            return name
+    return None
+
+
+def _dataset_to_frame(ds: xr.Dataset, where: str) -> pd.DataFrame:
+    """Flatten a CF trajectory dataset (any of the three array representations) to one row per fix."""
+    tname, yname, xname = (_find_var(ds, k) for k in ("time", "lat", "lon"))
+    if None in (tname, yname, xname):
+        raise InputError(f"{where}: no time/latitude/longitude variables found (CF standard_name or name)")
+    id_var = next((n for n, v in ds.variables.items() if v.attrs.get("cf_role") == "trajectory_id"), None)
+    count_var = next((n for n, v in ds.variables.items() if "sample_dimension" in v.attrs), None)
+    index_var = next((n for n, v in ds.variables.items() if "instance_dimension" in v.attrs), None)
+    extra = {c: _find_extra(ds, c) for c in OPTIONAL_NUMERIC}
+    extra = {k: v for k, v in extra.items() if v is not None}
+
+    if count_var is not None:  # contiguous ragged array
+        counts = ds[count_var].values.astype(np.int64)
+        ids = ds[id_var].values if id_var else np.arange(len(counts))
+        obs_dim = ds[count_var].attrs["sample_dimension"]
+        if counts.sum() != ds.sizes.get(obs_dim, -1):
+            raise InputError(f"{where}: {count_var} sums to {counts.sum()} but dimension {obs_dim} "
+                             f"has {ds.sizes.get(obs_dim)} samples")
+        id_per_obs = np.repeat(_as_str(ids), counts)
+    elif index_var is not None:  # indexed ragged array
+        index = ds[index_var].values.astype(np.int64)
+        n_inst = ds.sizes[ds[index_var].attrs["instance_dimension"]]
+        ids = _as_str(ds[id_var].values) if id_var else np.arange(n_inst).astype(str)
+        if (index < 0).any() or (index >= n_inst).any():
+            raise InputError(f"{where}: {index_var} has values outside 0..{n_inst - 1}")
+        id_per_obs = ids[index]
+    else:  # multidimensional array (trajectory, obs)
+        if ds[yname].ndim != 2:
+            raise InputError(f"{where}: not a CF trajectory dataset (no count or index variable, "
+                             f"and {yname} is not 2-D)")
+        inst_dim = ds[yname].dims[0]
+        ids = _as_str(ds[id_var].values) if id_var else np.arange(ds.sizes[inst_dim]).astype(str)
+        n_obs = ds[yname].shape[1]
+        frame = {
+            "id": np.repeat(ids, n_obs),
+            "time": _broadcast(ds[tname], ds[yname]).ravel(),
+            "lat": ds[yname].values.ravel(),
+            "lon": ds[xname].values.ravel(),
+        }
+        for c, n in extra.items():
+            frame[c] = ds[n].values.ravel()
+        df = pd.DataFrame(frame)
+        # trailing fill values of shorter trajectories are padding, not data
+        pad = df["lat"].isna() & df["lon"].isna() & pd.isna(df["time"])
+        return df.loc[~pad].reset_index(drop=True)
+    frame = {"id": id_per_obs, "time": ds[tname].values, "lat": ds[yname].values, "lon": ds[xname].values}
+    for c, n in extra.items():
+        frame[c] = ds[n].values
+    return pd.DataFrame(frame)
+
+
+def _find_extra(ds, col):
+    for name in ds.variables:
+        if str(name).lower() in COLUMN_ALIASES[col]:
+            return name
+    std = {"u": "eastward_sea_water_velocity", "v": "northward_sea_water_velocity"}.get(col)
+    for name, var in ds.variables.items():
+        if std and var.attrs.get("standard_name") == std:
+            return name
+    return None
+
+
+def _as_str(values) -> np.ndarray:
+    values = np.asarray(values)
+    if values.dtype.kind == "S":
+        values = np.char.decode(values, "utf-8")
+    return np.char.strip(values.astype(str))
+
+
+def _broadcast(t: xr.DataArray, like: xr.DataArray) -> np.ndarray:
+    return t.broadcast_like(like).transpose(*like.dims).values
+
+
+def read_fixes(source) -> pd.DataFrame:
+    """Read position fixes from a file, DataFrame or Dataset into the standard representation.
+
+    Parameters
+    ----------
+    source : str, os.PathLike, pandas.DataFrame or xarray.Dataset
+        CSV (``.csv``, ``.txt``), Parquet (``.parquet``) or CF netCDF (``.nc``) trajectory data, or an
+        in-memory table or dataset with the same content.
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per input row (nothing dropped), columns as in the module docstring plus the private
+        flags ``time_unparseable`` and ``value_unparseable`` used by quality control.
+
+    Raises
+    ------
+    InputError
+        If the file cannot be read, or required columns are missing.
+    """
+    if isinstance(source, pd.DataFrame):
+        raw, where = _standardise_columns(source.reset_index(drop=True), "DataFrame"), "DataFrame"
+    elif isinstance(source, xr.Dataset):
+        raw = _standardise_columns(_dataset_to_frame(source, "Dataset"), "Dataset")
+    else:
+        path = Path(os.fspath(source))
+        where = str(path)
+        if not path.exists():
+            raise InputError(f"{path}: no such file")
+        if path.suffix.lower() in (".nc", ".nc4", ".cdf", ".netcdf"):
+            try:
+                with xr.open_dataset(path, decode_times=True) as ds:
+                    raw = _standardise_columns(_dataset_to_frame(ds.load(), where), where)
+            except InputError:
+                raise
+            except Exception as exc:  # noqa: BLE001 - any backend failure is bad input here
+                raise InputError(f"{path}: cannot read as netCDF ({str(exc).splitlines()[0]})") from exc
+        else:
+            raw = _standardise_columns(_read_table(path), where)
+    return _coerce(raw)
+
+
+def fixes_to_cf_dataset(fixes: pd.DataFrame, attrs: dict | None = None) -> xr.Dataset:
+    """Fixes (sorted by id, time) as a CF contiguous ragged array trajectory dataset."""
+    fixes = fixes.sort_values(["id", "time"], kind="stable")
+    ids, counts = np.unique(fixes["id"].to_numpy().astype(str), return_counts=True)
+    # np.unique sorts ids; the stable sort above sorted them the same way
+    ds = xr.Dataset(
+        {
+            "trajectory": ("trajectory", ids.astype(object),
+                           {"cf_role": "trajectory_id", "long_name": "track identifier"}),
+            "rowSize": ("trajectory", counts.astype(np.int32),
+                        {"sample_dimension": "obs", "long_name": "number of fixes in this track"}),
+            "time": ("obs", fixes["time"].to_numpy(), {"standard_name": "time", "axis": "T"}),
+            "lat": ("obs", fixes["lat"].to_numpy(float),
+                    {"standard_name": "latitude", "units": "degrees_north", "axis": "Y"}),
+            "lon": ("obs", fixes["lon"].to_numpy(float),
+                    {"standard_name": "longitude", "units": "degrees_east", "axis": "X"}),
+        },
+        attrs={"Conventions": "CF-1.11", "featureType": "trajectory", **(attrs or {})},
+    )
+    units = {"position_error_m": ("m", None), "u": ("m s-1", "eastward_sea_water_velocity"),
+             "v": ("m s-1", "northward_sea_water_velocity")}
+    for col, (unit, std) in units.items():
+        if col in fixes:
+            a = {"units": unit, "coordinates": "time lat lon"}
+            if std:
+                a["standard_name"] = std
+            ds[col] = ("obs", fixes[col].to_numpy(float), a)
+    ds = ds.set_coords(["time", "lat", "lon"])
+    ds["time"].encoding.update(units="seconds since 1970-01-01 00:00:00", dtype="float64")
+    return ds
+
+
+def write_fixes(fixes: pd.DataFrame, path, attrs: dict | None = None) -> Path:
+    """Write fixes as Parquet (``.parquet``), CSV (``.csv``) or CF contiguous ragged netCDF (``.nc``)."""
+    path = Path(path)
+    cols = [c for c in ("id", "time", "lat", "lon", *OPTIONAL_NUMERIC) if c in fixes]
+    tmp = path.with_name(path.name + ".tmp")
+    suffix = path.suffix.lower()
+    if suffix == ".nc":
+        fixes_to_cf_dataset(fixes[cols], attrs).to_netcdf(tmp)
+    elif suffix in (".parquet", ".pq"):
+        fixes[cols].to_parquet(tmp, index=False)
+    elif suffix == ".csv":
+        fixes[cols].to_csv(tmp, index=False, date_format="%Y-%m-%dT%H:%M:%SZ")
+    else:
+        raise InputError(f"{path}: unknown output format (use .parquet, .csv or .nc)")
+    os.replace(tmp, path)
+    return path

@@ -1,0 +1,198 @@
+"""The model-family interface: what a family declares, and how families add up.
+
+A family (in the spirit of one ``scipy.stats`` distribution class) declares
+
+* ``parameters``: names, units, bounds and how the optimiser sees them (``log`` or ``linear`` scale);
+* ``autocovariance(theta, lags_days, context)``: ``R(tau) = E[z(t + tau) conj z(t)]`` in m^2/s^2 at
+  lags ``tau >= 0`` (days), with its Jacobian with respect to the optimiser's coordinates;
+* ``spectral_density(theta, freq_cpd, context)``: the matching two-sided density in (m/s)^2/cpd;
+* ``initial_guess(freq_cpd, power, context)``: starting values from a periodogram.
+
+Everything else (likelihoods, fitting, standard errors, simulation, plotting) is shared code that only
+uses this interface. ``theta`` is always a 1-D array in the order of ``parameters``, in natural units.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+
+@dataclass(frozen=True)
+class Parameter:
+    """One model parameter.
+
+    ``scale="log"`` means the optimiser works with ``log(value)``; ``"linear"`` with the value itself.
+    """
+
+    name: str
+    unit: str
+    lower: float
+    upper: float
+    description: str
+    scale: str = "log"
+
+
+@dataclass
+class FitContext:
+    """What a family may know about the window it is fitted to.
+
+    Attributes
+    ----------
+    dt_days : float
+        Sample interval in days.
+    latitude : float or None
+        Mean latitude of the window, degrees north.
+    inertial_frequency_cpd : float or None
+        Local inertial frequency at the mean latitude (negative in the northern hemisphere).
+    latitude_series : ndarray or None
+        Latitude of each sample (for latitude-following components).
+    extra : dict
+        Free-form additions for new families.
+    """
+
+    dt_days: float
+    latitude: float | None = None
+    inertial_frequency_cpd: float | None = None
+    latitude_series: np.ndarray | None = None
+    extra: dict = field(default_factory=dict)
+
+
+class ModelFamily:
+    """Base class: a stationary (or modulated) complex-velocity process with named parameters."""
+
+    name: str = ""
+    parameters: tuple[Parameter, ...] = ()
+    #: ``True`` when the component is a stationary process multiplied by the known unit-modulus
+    #: sequence ``exp(i phase(t))`` of the window (see :mod:`driftspec.analysis.likelihood`).
+    modulated: bool = False
+
+    # --- what a family must provide -------------------------------------------------------------
+    def autocovariance(self, theta, lags_days, context: FitContext) -> np.ndarray:
+        raise NotImplementedError
+
+    def spectral_density(self, theta, freq_cpd, context: FitContext) -> np.ndarray:
+        raise NotImplementedError
+
+    def initial_guess(self, freq_cpd, power, context: FitContext) -> np.ndarray:
+        raise NotImplementedError
+
+    # --- optional, with generic defaults ---------------------------------------------------------
+    def autocovariance_jacobian(self, theta, lags_days, context: FitContext):
+        """``R`` and ``dR/dx_j`` for the optimiser coordinates ``x`` (log or linear per parameter).
+
+        The default uses central finite differences; families override it with exact derivatives.
+        """
+        theta = np.asarray(theta, float)
+        r = self.autocovariance(theta, lags_days, context)
+        jac = np.empty((len(theta), len(r)), dtype=complex)
+        for j, p in enumerate(self.parameters):
+            h = 1e-6
+            tp, tm = theta.copy(), theta.copy()
+            if p.scale == "log":
+                tp[j] *= np.exp(h)
+                tm[j] *= np.exp(-h)
+            else:
+                step = h * max(1.0, abs(theta[j]))
+                tp[j] += step
+                tm[j] -= step
+                h = step
+            jac[j] = (self.autocovariance(tp, lags_days, context)
+                      - self.autocovariance(tm, lags_days, context)) / (2 * h)
+        return r, jac
+
+    def bounds(self, context: FitContext) -> list[tuple[float, float]]:
+        """Bounds in natural units; families may narrow them from the context."""
+        return [(p.lower, p.upper) for p in self.parameters]
+
+    def zero_frequency_density(self, theta, context: FitContext) -> float:
+        """``S(0)`` in (m/s)^2 per cpd (used for the diffusivity)."""
+        return float(np.real(self.spectral_density(theta, np.array([0.0]), context))[0])
+
+    def derived(self, theta, context: FitContext) -> dict[str, float]:
+        """Named derived quantities (time scales, ...) in natural units."""
+        return {}
+
+    # --- shared conveniences ----------------------------------------------------------------------
+    @property
+    def names(self) -> list[str]:
+        return [p.name for p in self.parameters]
+
+    @property
+    def units(self) -> dict[str, str]:
+        return {p.name: p.unit for p in self.parameters}
+
+    def components(self):
+        """``(family, slice)`` pairs of the stationary/modulated pieces that add up to this model."""
+        return [(self, slice(0, len(self.parameters)))]
+
+    def __add__(self, other: ModelFamily) -> SumFamily:
+        return SumFamily(self, other)
+
+    def __repr__(self) -> str:
+        return f"<model family {self.name!r}: {', '.join(self.names)}>"
+
+
+class SumFamily(ModelFamily):
+    """The sum of independent components: autocovariances and spectra add."""
+
+    def __init__(self, *parts: ModelFamily, name: str | None = None):
+        self.parts = parts
+        self.name = name or "+".join(p.name for p in parts)
+        self.parameters = tuple(q for p in parts for q in p.parameters)
+        self.modulated = any(p.modulated for p in parts)
+        self._slices = []
+        start = 0
+        for p in parts:
+            self._slices.append(slice(start, start + len(p.parameters)))
+            start += len(p.parameters)
+
+    def components(self):
+        return [(p, s) for p, s in zip(self.parts, self._slices)]
+
+    def autocovariance(self, theta, lags_days, context):
+        theta = np.asarray(theta, float)
+        return sum(p.autocovariance(theta[s], lags_days, context) for p, s in self.components())
+
+    def autocovariance_jacobian(self, theta, lags_days, context):
+        theta = np.asarray(theta, float)
+        r = np.zeros(len(lags_days), dtype=complex)
+        jac = np.zeros((len(theta), len(lags_days)), dtype=complex)
+        for p, s in self.components():
+            rp, jp = p.autocovariance_jacobian(theta[s], lags_days, context)
+            r += rp
+            jac[s] = jp
+        return r, jac
+
+    def spectral_density(self, theta, freq_cpd, context):
+        theta = np.asarray(theta, float)
+        return sum(p.spectral_density(theta[s], freq_cpd, context) for p, s in self.components())
+
+    def zero_frequency_density(self, theta, context):
+        theta = np.asarray(theta, float)
+        return sum(p.zero_frequency_density(theta[s], context) for p, s in self.components())
+
+    def bounds(self, context):
+        return [b for p in self.parts for b in p.bounds(context)]
+
+    def initial_guess(self, freq_cpd, power, context):
+        # Each part guesses from the periodogram with the other parts' share removed in turn:
+        # later parts (narrow-band) are guessed first and subtracted.
+        guesses = [None] * len(self.parts)
+        residual = np.asarray(power, float).copy()
+        for i in reversed(range(len(self.parts))):
+            part = self.parts[i]
+            g = part.initial_guess(freq_cpd, residual, context)
+            guesses[i] = g
+            if i > 0:
+                model = np.real(part.spectral_density(g, freq_cpd, context))
+                residual = np.maximum(residual - model, 0.05 * residual)
+        return np.concatenate(guesses)
+
+    def derived(self, theta, context):
+        theta = np.asarray(theta, float)
+        out = {}
+        for p, s in self.components():
+            out.update(p.derived(theta[s], context))
+        return out

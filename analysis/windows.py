@@ -1,0 +1,148 @@
+"""Cut gridded velocity segments into analysis windows.
+
+A window is a stretch of one track segment of fixed length, with its own mask of valid samples. Windows
+overlap by a fraction of their length; a window is kept only when the fraction of valid samples
+(``coverage``) reaches ``min_coverage``. Missing samples stay missing (NaN): the likelihoods handle them.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .conventions import inertial_frequency_cpd
+from .geodesy import circular_mean_lon
+
+
+@dataclass
+class Window:
+    """One analysis window of a track.
+
+    Attributes
+    ----------
+    track_id : str
+    segment, index : int
+        Segment of the track and window number within the segment.
+    start, end : pandas.Timestamp
+        Times of the first and last sample.
+    dt_seconds : float
+        Sample interval.
+    z : ndarray of complex
+        Complex velocity ``u + i v`` in m/s, NaN where missing.
+    latitude, longitude : ndarray
+        Position of each sample, degrees.
+    lat, lon : float
+        Mean position (longitude averaged on the circle).
+    coverage : float
+        Fraction of valid samples.
+    position_error_m : float or None
+        Median position error of the window's fixes, when the input carried one.
+    """
+
+    track_id: str
+    segment: int
+    index: int
+    start: pd.Timestamp
+    end: pd.Timestamp
+    dt_seconds: float
+    z: np.ndarray
+    latitude: np.ndarray
+    longitude: np.ndarray
+    position_error_m: float | None = None
+
+    @property
+    def mask(self) -> np.ndarray:
+        return np.isfinite(self.z)
+
+    @property
+    def n_samples(self) -> int:
+        return int(self.z.size)
+
+    @property
+    def coverage(self) -> float:
+        return float(self.mask.mean()) if self.z.size else 0.0
+
+    @property
+    def lat(self) -> float:
+        return float(np.nanmean(self.latitude))
+
+    @property
+    def lon(self) -> float:
+        return circular_mean_lon(self.longitude)
+
+    @property
+    def inertial_frequency_cpd(self) -> float:
+        """Local inertial frequency at the mean latitude, cpd (negative in the northern hemisphere)."""
+        return inertial_frequency_cpd(self.lat)
+
+    @property
+    def key(self) -> tuple[str, str]:
+        return (self.track_id, self.start.isoformat())
+
+
+def window_bounds(n: int, length: int, overlap: float) -> list[tuple[int, int]]:
+    """Start/stop indices of windows of ``length`` samples with fractional ``overlap`` in ``[0, 1)``."""
+    if not 0 <= overlap < 1:
+        raise ValueError(f"overlap must be in [0, 1), got {overlap}")
+    if length < 2:
+        raise ValueError("window length must be at least 2 samples")
+    hop = max(1, int(round(length * (1 - overlap))))
+    return [(s, s + length) for s in range(0, n - length + 1, hop)]
+
+
+def iter_windows(vel: pd.DataFrame, window_days: float = 60.0, overlap: float = 0.5,
+                 min_coverage: float = 0.8, use_measured: bool = False) -> Iterator[Window]:
+    """Yield analysis windows from a velocity table made by :func:`~driftspec.analysis.velocity.add_velocity`.
+
+    Parameters
+    ----------
+    vel : pandas.DataFrame
+        Gridded table with ``u``, ``v`` (and ``u_meas``, ``v_meas`` when ``use_measured``).
+    window_days : float
+        Window length in days.
+    overlap : float
+        Fractional overlap of consecutive windows, in [0, 1).
+    min_coverage : float
+        Minimum fraction of valid samples for a window to be kept.
+    use_measured : bool
+        Use the measured velocities carried by the input instead of the differenced positions.
+    """
+    if window_days <= 0:
+        raise ValueError("window_days must be positive")
+    if len(vel) == 0:
+        return
+    ucol, vcol = ("u_meas", "v_meas") if use_measured else ("u", "v")
+    if ucol not in vel:
+        raise ValueError("the input carries no measured velocities (u, v)")
+    ids = vel["id"].to_numpy().astype(str)
+    seg = vel["segment"].to_numpy()
+    t_ns = vel["time"].to_numpy().astype("datetime64[ns]").astype(np.int64)
+    z = vel[ucol].to_numpy(float) + 1j * vel[vcol].to_numpy(float)
+    if use_measured:
+        z[~vel["valid"].to_numpy(bool)] = np.nan
+    lat, lon = vel["lat"].to_numpy(float), vel["lon"].to_numpy(float)
+    perr = vel["position_error_m"].to_numpy(float) if "position_error_m" in vel else None
+    change = np.flatnonzero((ids[1:] != ids[:-1]) | (seg[1:] != seg[:-1])) + 1
+    starts = np.concatenate([[0], change])
+    stops = np.concatenate([change, [len(ids)]])
+    for a, b in zip(starts, stops):
+        if b - a < 2:
+            continue
+        dt_ns = int(np.median(np.diff(t_ns[a:b])))
+        length = int(round(window_days * 86400e9 / dt_ns))
+        if length < 2:
+            raise ValueError("window shorter than two samples")
+        for k, (s, e) in enumerate(window_bounds(b - a, length, overlap)):
+            zz = z[a + s:a + e]
+            if np.isfinite(zz).mean() < min_coverage:
+                continue
+            yield Window(
+                track_id=ids[a], segment=int(seg[a]), index=k,
+                start=pd.Timestamp(t_ns[a + s]), end=pd.Timestamp(t_ns[a + e - 1]),
+                dt_seconds=dt_ns / 1e9, z=zz.copy(), latitude=lat[a + s:a + e].copy(),
+                longitude=lon[a + s:a + e].copy(),
+                position_error_m=(float(np.nanmedian(perr[a + s:a + e])) if perr is not None else None),
+            )

@@ -1,0 +1,1 @@
+"""driftspec.app: the command line and the Panel dashboard (imports driftspec.analysis)."""
