@@ -72,13 +72,15 @@ def _standardise_columns(df: pd.DataFrame, where: str) -> pd.DataFrame:
 
 def _parse_times(values) -> pd.Series:
     s = pd.Series(values)
-    if np.issubdtype(s.dtype, np.datetime64):
+    if pd.api.types.is_datetime64_any_dtype(s.dtype):
         t = pd.to_datetime(s, utc=False)
         if getattr(t.dt, "tz", None) is not None:
             t = t.dt.tz_convert("UTC").dt.tz_localize(None)
         return t.astype("datetime64[ns]")
-    t = pd.to_datetime(s, errors="coerce", utc=True, format="mixed")
-    return t.dt.tz_localize(None).astype("datetime64[ns]")
+    t = pd.to_datetime(s, errors="coerce", utc=True, format="mixed").dt.tz_localize(None)
+    # times outside the nanosecond range (years before 1677 or after 2262) cannot be real fixes
+    inside = (t >= pd.Timestamp.min) & (t <= pd.Timestamp.max)
+    return t.where(inside).astype("datetime64[ns]")
 
 
 def _coerce(df: pd.DataFrame) -> pd.DataFrame:

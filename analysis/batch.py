@@ -1,0 +1,267 @@
+"""Fits for every window of a data set: serial, a process pool, or a Dask cluster, resumable.
+
+Results stream to ``<out>.partial/part-NNNNN.parquet`` (each part written atomically) as chunks of windows
+finish; at the end the parts are combined into ``<out>`` (Parquet or CSV, written atomically) and the
+folder is removed. ``resume=True`` skips windows already present in ``<out>`` or in its parts, so an
+interrupted run loses at most the chunks in flight. Rows are sorted by (track_id, window_start, model), so
+the table does not depend on how the work was distributed.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+from collections.abc import Iterable, Sequence
+from concurrent.futures import ProcessPoolExecutor, as_completed
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pandas as pd
+
+from .fitting import fit_series
+from .models import get_family
+from .windows import Window
+
+KEY = ["track_id", "window_start", "model"]
+WINDOW_COLUMNS = ["track_id", "window_start", "window_end", "lat", "lon", "n_samples", "coverage",
+                  "inertial_frequency_local"]
+
+#: units of the fixed columns of a fits table (parameters add their own from the families)
+COLUMN_UNITS = {
+    "lat": "degrees_north", "lon": "degrees_east", "n_samples": "1", "coverage": "1",
+    "inertial_frequency_local": "day-1", "loglik": "1", "aic": "1", "gof_pvalue": "1",
+    "diffusivity": "m2 s-1", "diffusivity_se": "m2 s-1", "matern_timescale_days": "day",
+    "inertial_efold_days": "day", "window_start": "UTC", "window_end": "UTC",
+}
+
+
+@dataclass
+class FitOptions:
+    """Options of each window fit."""
+
+    models: Sequence[str] = ("matern+inertial",)
+    estimator: str = "debiased"
+    max_freq: float | None = None
+    taper: str | None = None
+    exclude: Sequence[tuple[float, float]] = ()
+    inertial_frequency: str = "free"
+    fixed: dict = field(default_factory=dict)
+
+
+def column_units(models: Iterable[str], inertial_frequency: str = "free") -> dict[str, str]:
+    units = dict(COLUMN_UNITS)
+    for m in models:
+        for p in get_family(m, inertial_frequency).parameters:
+            units[p.name] = p.unit
+            units[p.name + "_se"] = p.unit
+    return units
+
+
+def fit_window(w: Window, opts: FitOptions) -> list[dict]:
+    """One row per model for one window; a failure is a row with a status, never an exception."""
+    rows = []
+    base = {"track_id": w.track_id, "window_start": w.start, "window_end": w.end, "lat": w.lat, "lon": w.lon,
+            "n_samples": w.n_samples, "coverage": w.coverage, "inertial_frequency_local": w.inertial_frequency_cpd}
+    for m in opts.models:
+        lat = w.latitude if opts.inertial_frequency == "follow-latitude" else w.lat
+        try:
+            r = fit_series(w.z, w.dt_seconds, model=m, estimator=opts.estimator, max_freq=opts.max_freq,
+                           latitude=lat, taper=opts.taper, exclude=opts.exclude or None,
+                           inertial_frequency=opts.inertial_frequency, fixed=opts.fixed or None)
+            row = r.to_row()
+        except Exception as exc:  # noqa: BLE001 - a failed fit is a row, not a crash
+            row = {"model": m, "estimator": opts.estimator, "status": "failed",
+                   "message": f"{type(exc).__name__}: {exc}"}
+        rows.append({**base, **row})
+    return rows
+
+
+def fit_chunk(windows: list[Window], opts: FitOptions) -> pd.DataFrame:
+    rows = [row for w in windows for row in fit_window(w, opts)]
+    return pd.DataFrame(rows)
+
+
+def _parts_dir(out: Path) -> Path:
+    return out.with_name(out.name + ".partial")
+
+
+def read_table(path) -> pd.DataFrame:
+    path = Path(path)
+    if path.suffix.lower() == ".csv":
+        return pd.read_csv(path, parse_dates=["window_start", "window_end"])
+    return pd.read_parquet(path)
+
+
+def write_table(df: pd.DataFrame, path, units: dict | None = None, metadata: dict | None = None) -> Path:
+    """Write a table atomically; Parquet columns carry ``units`` in their field metadata."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    path = Path(path)
+    tmp = path.with_name(path.name + ".tmp")
+    if path.suffix.lower() == ".csv":
+        df.to_csv(tmp, index=False, date_format="%Y-%m-%dT%H:%M:%SZ")
+    else:
+        table = pa.Table.from_pandas(df, preserve_index=False)
+        fields = []
+        for f in table.schema:
+            meta = {"units": units[f.name]} if units and f.name in units else None
+            fields.append(f.with_metadata(meta) if meta else f)
+        schema = pa.schema(fields, metadata={**(table.schema.metadata or {}),
+                                             **{k.encode(): str(v).encode() for k, v in (metadata or {}).items()}})
+        pq.write_table(table.cast(schema), tmp)
+    os.replace(tmp, path)
+    return path
+
+
+def done_keys(out: Path) -> set:
+    """Keys (track_id, window_start, model) already fitted in ``out`` or its parts."""
+    frames = []
+    if out.exists():
+        frames.append(read_table(out)[KEY])
+    parts = _parts_dir(out)
+    if parts.exists():
+        frames += [pd.read_parquet(p, columns=KEY) for p in sorted(parts.glob("part-*.parquet"))]
+    if not frames:
+        return set()
+    df = pd.concat(frames)
+    return set(zip(df["track_id"].astype(str), pd.to_datetime(df["window_start"]), df["model"]))
+
+
+def _chunks(items: list, size: int):
+    for i in range(0, len(items), size):
+        yield items[i:i + size]
+
+
+def run_fits(windows: Iterable[Window], out, opts: FitOptions, *, workers: int = 1, dask_address=None,
+             resume: bool = False, chunk_size: int = 64, progress: bool = True, stop_after_chunks=None):
+    """Fit every window and write the table to ``out``; returns the table.
+
+    Parameters
+    ----------
+    windows : iterable of Window
+    out : path
+        ``.parquet`` or ``.csv``.
+    opts : FitOptions
+    workers : int
+        Processes for a local pool (1 = serial in this process).
+    dask_address : str, optional
+        Address of a Dask scheduler, or ``"local"`` to start a ``LocalCluster``.
+    resume : bool
+        Skip windows already fitted in ``out`` or its parts.
+    chunk_size : int
+        Windows per unit of work (and per written part).
+    stop_after_chunks : int, optional
+        Stop after this many chunks without combining (simulates an interrupted run; for tests).
+    """
+    from tqdm.auto import tqdm
+
+    out = Path(out)
+    parts = _parts_dir(out)
+    skip = done_keys(out) if resume else set()
+    if not resume:
+        if parts.exists():
+            shutil.rmtree(parts)
+    parts.mkdir(parents=True, exist_ok=True)
+    todo = []
+    for w in windows:
+        if all((w.track_id, w.start, m) in skip for m in opts.models):
+            continue
+        todo.append(w)
+    existing = sorted(parts.glob("part-*.parquet"))
+    next_part = 1 + max((int(p.stem.split("-")[1]) for p in existing), default=0)
+    units = column_units(opts.models, opts.inertial_frequency)
+    bar = tqdm(total=len(todo), unit="window", disable=not progress, desc="fitting", smoothing=0.05)
+    written = 0
+
+    def save(df):
+        nonlocal next_part, written
+        if len(df):
+            df = df[~df.apply(lambda r: (r["track_id"], r["window_start"], r["model"]) in skip, axis=1)] \
+                if skip else df
+            write_table(df, parts / f"part-{next_part:05d}.parquet", units)
+            next_part += 1
+        written += 1
+
+    chunks = list(_chunks(todo, chunk_size))
+    try:
+        if dask_address:
+            _run_dask(chunks, opts, dask_address, save, bar, stop_after_chunks, lambda: written)
+        elif workers > 1:
+            with ProcessPoolExecutor(max_workers=workers) as pool:
+                futures = {pool.submit(fit_chunk, c, opts): len(c) for c in chunks}
+                for fut in as_completed(futures):
+                    save(fut.result())
+                    bar.update(futures[fut])
+                    if stop_after_chunks and written >= stop_after_chunks:
+                        for f in futures:
+                            f.cancel()
+                        return None
+        else:
+            for c in chunks:
+                save(fit_chunk(c, opts))
+                bar.update(len(c))
+                if stop_after_chunks and written >= stop_after_chunks:
+                    return None
+    finally:
+        bar.close()
+    if stop_after_chunks and written >= stop_after_chunks:
+        return None
+    return combine(out, units)
+
+
+def _run_dask(chunks, opts, address, save, bar, stop_after_chunks, written):
+    from dask.distributed import Client, LocalCluster, as_completed as dask_completed
+
+    cluster = None
+    if address == "local":
+        cluster = LocalCluster(n_workers=min(2, os.cpu_count() or 1), threads_per_worker=1,
+                               processes=True, dashboard_address=None)
+        client = Client(cluster)
+    else:
+        client = Client(address)
+    try:
+        futures = [client.submit(fit_chunk, c, opts, pure=False) for c in chunks]
+        sizes = {f.key: len(c) for f, c in zip(futures, chunks)}
+        for fut in dask_completed(futures):
+            save(fut.result())
+            bar.update(sizes[fut.key])
+            if stop_after_chunks and written() >= stop_after_chunks:
+                client.cancel(futures)
+                break
+    finally:
+        client.close()
+        if cluster is not None:
+            cluster.close()
+
+
+def combine(out: Path, units: dict | None = None) -> pd.DataFrame:
+    """Merge ``out`` and its parts into one sorted table at ``out``; remove the parts."""
+    parts = _parts_dir(out)
+    frames = [read_table(out)] if out.exists() else []
+    frames += [pd.read_parquet(p) for p in sorted(parts.glob("part-*.parquet"))] if parts.exists() else []
+    frames = [f for f in frames if len(f)]
+    df = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=KEY)
+    if len(df):
+        df["window_start"] = pd.to_datetime(df["window_start"])
+        df["window_end"] = pd.to_datetime(df["window_end"])
+        df = df.drop_duplicates(KEY, keep="last").sort_values(KEY, kind="stable").reset_index(drop=True)
+    front = [c for c in WINDOW_COLUMNS + ["model", "estimator", "status", "message", "loglik", "aic",
+                                          "gof_pvalue"] if c in df]
+    df = df[front + [c for c in df.columns if c not in front]]
+    write_table(df, out, units)
+    if parts.exists():
+        shutil.rmtree(parts)
+    return df
+
+
+def summarise(df: pd.DataFrame) -> str:
+    if len(df) == 0:
+        return "no windows fitted"
+    counts = df["status"].value_counts()
+    ok = int(counts.get("ok", 0))
+    other = ", ".join(f"{k} {v}" for k, v in counts.items() if k != "ok") or "none"
+    return f"{len(df)} fits: {ok} ok; other: {other}"
+
+
+__all__ = ["FitOptions", "combine", "fit_window", "read_table", "run_fits", "summarise", "write_table"]

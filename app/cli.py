@@ -1,0 +1,217 @@
+"""The ``driftspec`` command line.
+
+Subcommands: ``demo``, ``qc``, ``fit``, ``map``, ``serve``. Bad input prints one line naming the file (and
+row/column where it applies) and exits with status 2; ``--debug`` shows the traceback instead.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+from pathlib import Path
+
+EXIT_BAD_INPUT = 2
+
+
+def _add_prep_options(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("quality control and gridding")
+    g.add_argument("--max-speed", type=float, default=3.0, metavar="M_S",
+                   help="speed-spike ceiling, m/s (default 3, common practice for surface drifters)")
+    g.add_argument("--step", default="1h", help="regular grid step (default 1h)")
+    g.add_argument("--split-gap", default="3D", help="split tracks at gaps longer than this (default 3D)")
+    g.add_argument("--mask-distance", default="3h",
+                   help="grid samples further than this from any fix are missing (default 3h)")
+    g.add_argument("--velocity", choices=["central", "forward", "measured"], default="central",
+                   help="velocities by central or forward differences of positions, or the input's u, v")
+
+
+def _prep_options(args):
+    from driftspec.analysis.pipeline import PrepOptions
+
+    method = "central" if args.velocity == "measured" else args.velocity
+    return PrepOptions(max_speed=args.max_speed, step=args.step, split_gap=args.split_gap,
+                       mask_distance=args.mask_distance, velocity_method=method)
+
+
+def _exclusions(text: str | None):
+    if not text:
+        return ()
+    out = []
+    for part in text.split(","):
+        lo, _, hi = part.partition(":")
+        try:
+            out.append((float(lo), float(hi)))
+        except ValueError as exc:
+            raise SystemExit(f"driftspec: --exclude expects LOW:HIGH[,LOW:HIGH...] in cpd, got {text!r}") from exc
+    return tuple(out)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="driftspec",
+        description="Rotary spectra, debiased-Whittle model fits and regional maps for drifting-float "
+                    "trajectories. A statistical description of past currents, not a drift forecast.",
+    )
+    parser.add_argument("--debug", action="store_true", help="show tracebacks")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    p = sub.add_parser("demo", help="write the synthetic demo deployment (fixes and ground truth)")
+    p.add_argument("outdir", type=Path)
+    p.add_argument("--tracks", type=int, default=60)
+    p.add_argument("--days", type=float, default=180.0)
+    p.add_argument("--seed", type=int, default=2031)
+
+    p = sub.add_parser("qc", help="quality-control fixes and account for every input row")
+    p.add_argument("input", help="CSV, Parquet or CF trajectory netCDF")
+    p.add_argument("--out", type=Path, required=True, help="cleaned fixes (.parquet, .csv or .nc)")
+    p.add_argument("--report", type=Path, help="QC report (JSON)")
+    p.add_argument("--max-speed", type=float, default=3.0, metavar="M_S",
+                   help="speed-spike ceiling, m/s (default 3)")
+
+    p = sub.add_parser("fit", help="fit a model to every window of every track")
+    p.add_argument("input", help="CSV, Parquet or CF trajectory netCDF")
+    p.add_argument("--out", type=Path, required=True, help="fits table (.parquet or .csv)")
+    p.add_argument("--window-days", type=float, default=60.0)
+    p.add_argument("--overlap", type=float, default=0.5, help="fraction, [0, 1)")
+    p.add_argument("--min-coverage", type=float, default=0.8, help="minimum fraction of valid samples")
+    p.add_argument("--model", default="matern+inertial",
+                   help="model family, or several separated by commas (matern, inertial, matern+inertial)")
+    p.add_argument("--estimator", choices=["debiased", "whittle", "exact"], default="debiased")
+    p.add_argument("--max-freq", type=float, default=None,
+                   help="fit |f| <= this, cpd (default: half the Nyquist frequency)")
+    p.add_argument("--exclude", default=None, metavar="LOW:HIGH,...",
+                   help="leave out bands of |f| (cpd), e.g. 1.85:2.05 around semidiurnal tides")
+    p.add_argument("--taper", choices=["none", "hann", "dpss"], default="none")
+    p.add_argument("--inertial-frequency", choices=["free", "follow-latitude"], default="free")
+    p.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="processes (default: all cores)")
+    p.add_argument("--dask", metavar="ADDRESS", help="a Dask scheduler address, or 'local' for a LocalCluster")
+    p.add_argument("--resume", action="store_true", help="skip windows already in --out")
+    p.add_argument("--no-progress", action="store_true")
+    _add_prep_options(p)
+
+    p = sub.add_parser("map", help="grid fitted parameters into latitude-longitude bins (CF netCDF)")
+    p.add_argument("fits", help="fits table from 'driftspec fit'")
+    p.add_argument("--param", action="append", help="column to grid (repeatable; default: all parameters)")
+    p.add_argument("--bin-deg", type=float, default=2.0)
+    p.add_argument("--stat", choices=["median", "mean"], default="median")
+    p.add_argument("--out", type=Path, required=True, help="output netCDF")
+    p.add_argument("--png", type=Path, help="also write a quick-look map")
+
+    p = sub.add_parser("serve", help="open the dashboard in a browser (default: the bundled demo data)")
+    p.add_argument("input", nargs="?", help="fixes to explore (default: demo data)")
+    p.add_argument("--fits", help="fits table to map")
+    p.add_argument("--port", type=int, default=5006)
+    p.add_argument("--address", default="127.0.0.1")
+    p.add_argument("--show", action="store_true", help="open a browser window")
+    p.add_argument("--allow-origin", action="append", default=[],
+                   help="extra host:port allowed to open the page (for a shared screen over a network)")
+    return parser
+
+
+def cmd_demo(args):
+    from driftspec.analysis.demo import write_demo
+
+    info = write_demo(args.outdir, args.tracks, args.days, args.seed)
+    print(f"wrote {info['n_fixes']} fixes of {info['n_tracks']} tracks to {info['fixes']}; "
+          f"ground truth in {info['truth']}")
+    return 0
+
+
+def cmd_qc(args):
+    from driftspec.analysis.io import read_fixes, write_fixes
+    from driftspec.analysis.qc import clean_fixes
+
+    raw = read_fixes(args.input)
+    fixes, report = clean_fixes(raw, max_speed=args.max_speed, source=str(args.input))
+    write_fixes(fixes, args.out, attrs={"history": f"driftspec qc {args.input}"})
+    if args.report:
+        tmp = args.report.with_name(args.report.name + ".tmp")
+        tmp.write_text(json.dumps(report.to_dict(), indent=1, default=str))
+        os.replace(tmp, args.report)
+    print(report.summary())
+    return 0
+
+
+def cmd_fit(args):
+    from driftspec.analysis.batch import FitOptions, run_fits, summarise
+    from driftspec.analysis.models import FAMILIES
+    from driftspec.analysis.pipeline import load_velocities
+    from driftspec.analysis.windows import iter_windows
+
+    models = [m.strip() for m in args.model.split(",") if m.strip()]
+    for m in models:
+        if m not in FAMILIES:
+            raise SystemExit(f"driftspec: unknown model {m!r}; choose from {', '.join(FAMILIES)}")
+    if not 0 <= args.overlap < 1:
+        raise SystemExit("driftspec: --overlap must be in [0, 1)")
+    vel, report, _ = load_velocities(args.input, _prep_options(args))
+    print(report.summary(), file=sys.stderr)
+    windows = iter_windows(vel, args.window_days, args.overlap, args.min_coverage,
+                           use_measured=args.velocity == "measured")
+    max_freq = args.max_freq
+    if max_freq is None:
+        import pandas as pd
+
+        max_freq = 0.25 / (pd.Timedelta(args.step).total_seconds() / 86400.0)
+    opts = FitOptions(models=models, estimator=args.estimator, max_freq=max_freq,
+                      taper=None if args.taper == "none" else args.taper, exclude=_exclusions(args.exclude),
+                      inertial_frequency=args.inertial_frequency)
+    df = run_fits(windows, args.out, opts, workers=args.workers, dask_address=args.dask, resume=args.resume,
+                  progress=not args.no_progress)
+    print(summarise(df))
+    print(f"wrote {args.out}")
+    return 0
+
+
+def cmd_map(args):
+    from driftspec.analysis.regional import grid_fits_file
+
+    ds = grid_fits_file(args.fits, params=args.param, bin_deg=args.bin_deg, stat=args.stat, out=args.out,
+                        command=" ".join(["driftspec", *sys.argv[1:]]))
+    if args.png:
+        from driftspec.app.figures import quicklook_map
+
+        quicklook_map(ds, args.png)
+    print(f"wrote {args.out} ({', '.join(v for v in ds.data_vars if not v.endswith(('_count', '_spread')))})")
+    return 0
+
+
+def cmd_serve(args):
+    from driftspec.app.server import serve
+
+    return serve(args.input, fits=args.fits, port=args.port, address=args.address, show=args.show,
+                 extra_origins=args.allow_origin)
+
+
+COMMANDS = {"demo": cmd_demo, "qc": cmd_qc, "fit": cmd_fit, "map": cmd_map, "serve": cmd_serve}
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not args.command:
+        parser.print_help()
+        return 0
+    from driftspec.analysis.errors import InputError
+
+    try:
+        return COMMANDS[args.command](args) or 0
+    except InputError as exc:
+        if args.debug:
+            raise
+        print(f"driftspec: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except SystemExit as exc:
+        if isinstance(exc.code, str):
+            print(exc.code, file=sys.stderr)
+            return EXIT_BAD_INPUT
+        raise
+    except KeyboardInterrupt:
+        print("driftspec: interrupted; rerun with --resume to continue", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

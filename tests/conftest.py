@@ -1,0 +1,36 @@
+import os
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+ARTIFACTS = Path(__file__).resolve().parent.parent / "test-artifacts"
+
+
+@pytest.fixture(scope="session")
+def artifacts_dir():
+    ARTIFACTS.mkdir(exist_ok=True)
+    return ARTIFACTS
+
+
+@pytest.fixture
+def rng():
+    return np.random.default_rng(12345)
+
+
+@pytest.fixture(scope="session")
+def demo_dir(tmp_path_factory):
+    """A small demo deployment written by the demo generator (fixes.parquet, truth.csv)."""
+    from driftspec.analysis.demo import write_demo
+
+    out = tmp_path_factory.mktemp("demo")
+    write_demo(out, n_tracks=12, days=130, seed=7)
+    return out
+
+
+def chromium_path():
+    for p in (os.environ.get("DRIFTSPEC_CHROMIUM"), "/usr/bin/chromium", shutil.which("chromium")):
+        if p and Path(p).exists():
+            return p
+    return None

@@ -1,0 +1,91 @@
+"""Quality control: every reason exercised, and every input row accounted for."""
+
+import io
+import json
+
+import numpy as np
+import pandas as pd
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from driftspec.analysis.io import read_fixes
+from driftspec.analysis.qc import REASONS, clean_fixes
+
+CSV = """id,time,lat,lon
+A,2030-01-01T00:00:00Z,10.00,20.00
+A,2030-01-01T01:00:00Z,10.01,20.00
+A,2030-01-01T02:00:00Z,10.02,20.00
+A,2030-01-01T03:00:00Z,12.50,20.00
+A,2030-01-01T04:00:00Z,10.04,20.00
+A,2030-01-01T05:00:00Z,10.05,20.00
+A,2030-01-01T05:00:00Z,10.05,20.00
+A,2030-01-01T07:00:00Z,10.07,20.00
+A,2030-01-01T06:00:00Z,10.06,20.00
+A,not a time,10.08,20.00
+A,2030-01-01T09:00:00Z,,20.00
+A,2030-01-01T10:00:00Z,95.0,20.00
+A,2030-01-01T11:00:00Z,10.1,400.0
+A,2030-01-01T12:00:00Z,north,20.00
+,2030-01-01T13:00:00Z,10.1,20.0
+B,2030-01-01T00:00:00Z,-10.0,359.99
+B,2030-01-01T01:00:00Z,-10.0,0.01
+"""
+
+
+def test_every_reason_is_counted(tmp_path):
+    path = tmp_path / "fixes.csv"
+    path.write_text(CSV)
+    fixes, report = clean_fixes(read_fixes(path))
+    d = report.dropped
+    assert d["speed_spike"] == 1           # the 12.50 fix, not its neighbours
+    assert d["duplicate_time"] == 1
+    assert d["unparseable_time"] == 1
+    assert d["missing_value"] == 2         # empty latitude, empty id
+    assert d["latitude_range"] == 1
+    assert d["longitude_range"] == 1
+    assert d["unparseable_value"] == 1
+    assert report.reordered_rows > 0       # 07:00 before 06:00 is sorted, not dropped
+    assert report.input_rows == 17
+    assert report.kept_rows + sum(d.values()) == report.input_rows
+    a = fixes[fixes["id"] == "A"]
+    assert list(a["time"].dt.hour) == [0, 1, 2, 4, 5, 6, 7]
+    # longitudes wrapped to [-180, 180): 359.99 becomes -0.01
+    b = fixes[fixes["id"] == "B"]
+    assert np.allclose(b["lon"], [-0.01, 0.01])
+    doc = json.loads(json.dumps(report.to_dict(), default=str))
+    assert set(doc["dropped"]) == set(REASONS)
+    per = pd.DataFrame(doc["tracks"]).set_index("id")
+    assert per.loc["A", "speed_spike"] == 1 and per.loc["A", "kept_rows"] == 7
+    assert per["input_rows"].sum() == 17
+
+
+def test_speed_limit_is_configurable():
+    df = pd.read_csv(io.StringIO(CSV), dtype=str, keep_default_na=False)
+    _, loose = clean_fixes(read_fixes(df), max_speed=200.0)
+    assert loose.dropped["speed_spike"] == 0
+
+
+def test_antimeridian_track_is_not_a_spike():
+    t = pd.date_range("2030-01-01", periods=6, freq="h")
+    df = pd.DataFrame({"id": "X", "time": t, "lat": 0.0, "lon": [179.97, 179.99, -179.99, -179.97, -179.95, -179.93]})
+    _, report = clean_fixes(read_fixes(df))
+    assert report.dropped["speed_spike"] == 0
+
+
+cell = st.one_of(st.text(max_size=8), st.floats(allow_nan=True, allow_infinity=True).map(str),
+                 st.sampled_from(["", "NaN", "2030-01-01", "2030-13-45T99:00", "1e400", "-91", "12.5"]))
+row = st.tuples(st.sampled_from(["A", "B", "", "C"]), cell, cell, cell)
+
+
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.lists(row, min_size=0, max_size=40))
+def test_random_malformed_rows_never_crash_or_vanish(rows):
+    df = pd.DataFrame(rows, columns=["id", "time", "lat", "lon"], dtype=object)
+    raw = read_fixes(df)
+    fixes, report = clean_fixes(raw)
+    assert report.input_rows == len(rows)
+    assert report.kept_rows == len(fixes)
+    assert report.kept_rows + sum(report.dropped.values()) == len(rows)
+    if len(fixes):
+        assert fixes["lat"].between(-90, 90).all()
+        assert ((fixes["lon"] >= -180) & (fixes["lon"] < 180)).all()

@@ -1,0 +1,68 @@
+import numpy as np
+import pandas as pd
+import pytest
+
+from driftspec.analysis.io import read_fixes
+from driftspec.analysis.qc import clean_fixes
+from driftspec.analysis.resample import regular_grid
+from driftspec.analysis.velocity import add_velocity
+from driftspec.analysis.windows import iter_windows, window_bounds
+
+
+def _fixes(times_h, lat=None, lon=None, tid="A"):
+    t = pd.Timestamp("2030-01-01") + pd.to_timedelta(np.asarray(times_h, float), unit="h")
+    n = len(times_h)
+    return clean_fixes(read_fixes(pd.DataFrame({
+        "id": tid, "time": t, "lat": np.full(n, 5.0) if lat is None else lat,
+        "lon": np.linspace(0, 0.01 * n, n) if lon is None else lon})))[0]
+
+
+def test_split_at_long_gaps_and_mask_short_ones():
+    hours = list(np.arange(0, 48, 0.7)) + list(np.arange(56, 100, 0.7)) + list(np.arange(200, 260, 0.7))
+    grid = regular_grid(_fixes(hours), step="1h", split_gap="3D", mask_distance="3h")
+    # the 100 h -> 200 h gap (> 3 days) splits; the 48 -> 56 h gap is kept and masked
+    assert sorted(grid["segment"].unique()) == [0, 1]
+    seg0 = grid[grid["segment"] == 0]
+    hole = seg0[(seg0["time"] > "2030-01-01 03:00") & (seg0["time"] < "2030-01-03 08:00")]
+    masked = hole.loc[~hole["valid"], "time"].dt.hour + 24 * (hole.loc[~hole["valid"], "time"].dt.day - 1)
+    assert list(masked) == [51, 52]  # more than 3 h from the last fix before (47.6 h) and the next (56 h)
+    # grid times are whole hours inside the segment's span
+    assert (grid["time"].dt.minute == 0).all()
+    assert grid["time"].is_monotonic_increasing
+
+
+def test_interpolation_across_antimeridian():
+    lon = np.array([179.97, 179.99, -179.99, -179.97])  # 0.02 degree (2.2 km) per hour, eastward
+    grid = regular_grid(_fixes([0, 1, 2, 3], lat=np.zeros(4), lon=lon))
+    assert np.allclose(grid["lon"], lon)
+    vel = add_velocity(grid)
+    assert np.allclose(vel["u"].dropna(), 0.618, rtol=0.01)  # 2 x 2224 m / 7200 s, not thousands
+
+
+def test_pole_track_gives_finite_velocities():
+    lat = np.array([89.9, 89.95, 89.99, 89.95, 89.9])
+    lon = np.array([0.0, 10.0, 90.0, 170.0, -170.0])
+    vel = add_velocity(regular_grid(_fixes([0, 1, 2, 3, 4], lat=lat, lon=lon)))
+    speed = np.hypot(vel["u"], vel["v"]).dropna()
+    assert len(speed) == 3 and np.all(np.isfinite(speed)) and np.all(speed < 3.0)
+
+
+def test_window_bounds_overlap():
+    assert window_bounds(10, 4, 0.5) == [(0, 4), (2, 6), (4, 8), (6, 10)]
+    assert window_bounds(10, 4, 0.0) == [(0, 4), (4, 8)]
+    with pytest.raises(ValueError):
+        window_bounds(10, 4, 1.0)
+
+
+def test_windows_carry_metadata():
+    hours = np.arange(0, 24 * 25)
+    f = _fixes(hours, lat=np.full(hours.size, 30.0), lon=np.linspace(-150, -149, hours.size))
+    vel = add_velocity(regular_grid(f))
+    ws = list(iter_windows(vel, window_days=10, overlap=0.5, min_coverage=0.9))
+    assert len(ws) == 4
+    w = ws[0]
+    assert w.n_samples == 240 and w.dt_seconds == 3600.0
+    assert w.lat == pytest.approx(30.0)
+    assert w.inertial_frequency_cpd == pytest.approx(-1.0027, abs=1e-4)
+    assert w.start == pd.Timestamp("2030-01-01 00:00") and ws[1].start == pd.Timestamp("2030-01-06 00:00")
+    assert np.isnan(w.z[0]) and w.coverage == pytest.approx(239 / 240)
