@@ -354,6 +354,11 @@ def _optimise(family, model_name, estimator, prep, context, fixed, free, start):
     bounds_nat = family.bounds(context)
     f_band = prep.freq_cpd[prep.band]
     theta0 = family.initial_guess(f_band, prep.periodogram[prep.band], context)
+    if estimator == "exact" and not start:
+        # the debiased Whittle estimate is near-exact and cheap: start the exact likelihood from it
+        pilot = _optimise(family, model_name, "debiased", prep, context, fixed, free, None)
+        if np.all(np.isfinite(pilot.theta)):
+            theta0 = pilot.theta
     for k, v in (start or {}).items():
         theta0[names.index(k)] = v
     for k, v in fixed.items():
@@ -391,12 +396,26 @@ def _optimise(family, model_name, estimator, prep, context, fixed, free, start):
     else:
         def objective(xf):
             counter[0] += 1
-            return exact_negloglik(family, _from_x(full(xf), family), prep, context)
+            val = exact_negloglik(family, _from_x(full(xf), family), prep, context)
+            return val if np.isfinite(val) else 1e300
         jac = False
 
     res = None
     if estimator == "debiased":
         res = _fisher_scoring(family, prep, context, full, x0[free], x_lo[free], x_hi[free], free, counter)
+    if estimator == "exact":
+        # from the (near-exact) debiased start; the objective is scaled to O(1) per sample so that
+        # L-BFGS-B's first trial step stays local, with a derivative-free fallback
+        scale = 1.0 / max(prep.n_valid, 1)
+        with np.errstate(all="ignore"):
+            res = scipy.optimize.minimize(lambda xf: scale * objective(xf), x0[free], method="L-BFGS-B",
+                                          bounds=list(zip(x_lo[free], x_hi[free])),
+                                          options={"maxiter": 200, "ftol": 1e-13, "gtol": 1e-7, "eps": 1e-7})
+            res.fun = res.fun / scale
+            if not res.success or res.nit <= 1:
+                res = scipy.optimize.minimize(objective, res.x, method="Powell",
+                                              bounds=list(zip(x_lo[free], x_hi[free])),
+                                              options={"xtol": 1e-6, "ftol": 1e-12, "maxfev": 3000})
     if res is None or not res.success:
         with np.errstate(all="ignore"):
             res = scipy.optimize.minimize(objective, x0[free] if res is None else res.x, jac=jac,

@@ -176,21 +176,25 @@ def exact_negloglik(family: ModelFamily, theta, prep: PreparedWindow, context: F
     """Negative exact Gaussian log-likelihood of the valid samples (complex proper, or real)."""
     idx = np.flatnonzero(prep.valid)
     x = prep.z[idx]
-    lag_index = np.abs(idx[:, None] - idx[None, :])
-    cov = np.zeros((idx.size, idx.size), dtype=complex)
     theta = np.asarray(theta, float)
+    full = prep.valid.all()
+    cov = None
     for comp, sl in family.components():
         r = comp.autocovariance(theta[sl], prep.lags_days, context)
-        block = r[lag_index]
-        lower = idx[:, None] < idx[None, :]
-        block = np.where(lower, np.conj(block), block)  # R(-tau) = conj R(tau)
+        if prep.real_valued:
+            r = r.real
+        block = scipy.linalg.toeplitz(r, np.conj(r))  # Sigma_ij = R(i - j), R(-tau) = conj R(tau)
+        if not full:
+            block = block[np.ix_(idx, idx)]
         if comp.modulated:
             w = prep.modulation[idx]
             block = block * np.outer(w, np.conj(w))
-        cov += block
+        cov = block if cov is None else cov + block
     if prep.real_valued:
         cov = cov.real
         x = x.real
+    # a relative nugget of 1e-10 keeps very smooth models numerically positive definite
+    cov[np.diag_indices_from(cov)] += 1e-10 * np.real(cov[0, 0])
     try:
         chol = scipy.linalg.cho_factor(cov, lower=True, check_finite=False)
     except np.linalg.LinAlgError:

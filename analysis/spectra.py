@@ -166,7 +166,9 @@ def multitaper_spectrum(z, dt, time_bandwidth: float = 4.0, n_tapers: int | None
     time_bandwidth : float
         Time-bandwidth product ``NW`` (default 4).
     n_tapers : int, optional
-        Number of tapers ``K`` (default ``2 NW - 1``).
+        Number of tapers ``K`` (default ``2 NW - 3``, at least 1). The higher-order tapers of the
+        classical choice ``2 NW - 1`` concentrate less energy in the band and leak tens of dB into the
+        steep high-frequency side of ocean spectra (measured on the AR(4) example of Percival & Walden).
     confidence : float
         Level of the pointwise confidence interval.
 
@@ -183,7 +185,7 @@ def multitaper_spectrum(z, dt, time_bandwidth: float = 4.0, n_tapers: int | None
     """
     zz, valid = _prepare(z, mask, detrend)
     n = zz.size
-    k = int(n_tapers) if n_tapers is not None else max(1, int(round(2 * time_bandwidth - 1)))
+    k = int(n_tapers) if n_tapers is not None else max(1, int(round(2 * time_bandwidth - 3)))
     if k < 1 or time_bandwidth <= 0 or k > n:
         raise ValueError("need time_bandwidth > 0 and 1 <= n_tapers <= len(z)")
     tapers = windows.dpss(n, time_bandwidth, Kmax=k)

@@ -41,7 +41,7 @@ from scipy.special import gammaln, kv
 
 from .base import FitContext, ModelFamily, Parameter
 
-_NU_MIN, _NU_MAX, _NU_STEP = 0.06, 4.52, 0.02
+_NU_MIN, _NU_MAX, _NU_STEP = 0.06, 4.52, 0.01
 _U_MIN, _U_MAX, _U_N = np.log(1e-7), np.log(80.0), 1601
 
 

@@ -1,0 +1,173 @@
+"""Fits against reference estimators (statsmodels) and their statistical behaviour on simulations."""
+
+import warnings
+
+import numpy as np
+import pytest
+
+from driftspec.analysis import fit_series, inertial_frequency_cpd, simulate
+
+HOUR = 3600.0
+TRUTH = {"matern_variance": 0.02, "matern_alpha": 1.2, "matern_damping": 1.0,
+         "inertial_variance": 0.01, "inertial_frequency": -1.0027, "inertial_damping": 0.2}
+
+
+def test_ou_series_matches_statsmodels_arima():
+    # A real Ornstein-Uhlenbeck series sampled every dt is an AR(1) with phi = exp(-lambda dt);
+    # statsmodels' exact-likelihood ARIMA(1,0,0) is the reference (Brockwell & Davis, "Time Series:
+    # Theory and Methods", 1991, section 8.7).
+    from statsmodels.tsa.arima.model import ARIMA
+
+    dt_days = 1 / 24
+    lam, var = 2.0, 0.01
+    phi = np.exp(-lam * dt_days)
+    rng = np.random.default_rng(4)
+    x = np.empty(1000)
+    x[0] = rng.normal(0, np.sqrt(var))
+    e = rng.normal(0, np.sqrt(var * (1 - phi**2)), x.size)
+    for t in range(1, x.size):
+        x[t] = phi * x[t - 1] + e[t]
+    ref = ARIMA(x - x.mean(), order=(1, 0, 0), trend="n").fit()
+    lam_ref = -np.log(ref.params[0]) / dt_days
+    var_ref = ref.params[1] / (1 - ref.params[0] ** 2)
+    for est in ("exact", "debiased"):
+        r = fit_series(x, HOUR, model="matern", estimator=est, fixed={"matern_alpha": 1.0})
+        assert r.ok, r.message
+        se = r.stderr["matern_damping"]
+        assert abs(r.params["matern_damping"] - lam_ref) < se, est
+        assert abs(r.params["matern_variance"] - var_ref) < r.stderr["matern_variance"], est
+        assert 0.3 * se < np.sqrt(ref.cov_params()[0, 0]) / (ref.params[0] * dt_days) < 3 * se
+
+
+def test_inertial_frequency_at_30n_recovered():
+    f30 = inertial_frequency_cpd(30.0)
+    assert f30 == pytest.approx(-1.0027, abs=1e-4)
+    est = []
+    for seed in range(6):
+        z = simulate("matern+inertial", TRUTH, n=1440, dt=HOUR, seed=seed)
+        r = fit_series(z, HOUR, latitude=30.0)
+        assert r.ok, r.message
+        est.append(r.params["inertial_frequency"])
+        assert abs(r.params["inertial_frequency"] - f30) < 4 * r.stderr["inertial_frequency"]
+    assert np.mean(est) == pytest.approx(f30, abs=0.01)
+
+
+def test_exact_and_debiased_agree_on_short_windows():
+    # the exact Gaussian likelihood is the reference; the debiased estimate is close to it, window by
+    # window, and unbiased relative to it on average (Sykulski et al. 2019, section 6)
+    theta = [0.02, 1.3, 1.0]
+    a_all, b_all = [], []
+    for seed in range(6):
+        z = simulate("matern", theta, n=480, dt=HOUR, seed=seed)
+        a = fit_series(z, HOUR, model="matern", estimator="exact")
+        b = fit_series(z, HOUR, model="matern")
+        assert a.ok and b.ok
+        assert b.loglik != a.loglik
+        se = max(a.stderr["matern_alpha"], b.stderr["matern_alpha"])
+        assert abs(a.params["matern_alpha"] - b.params["matern_alpha"]) < 4 * se
+        a_all.append(a.params["matern_alpha"])
+        b_all.append(b.params["matern_alpha"])
+    assert abs(np.mean(a_all) - np.mean(b_all)) < 0.05
+
+
+def _replicates(theta, n_rep, estimator="debiased", mask_fn=None, max_freq=None):
+    out = []
+    for seed in range(n_rep):
+        z = simulate("matern", theta, n=1440, dt=HOUR, seed=100 + seed)
+        if mask_fn is not None:
+            z = z.copy()
+            z[mask_fn(np.random.default_rng(seed))] = np.nan
+        r = fit_series(z, HOUR, model="matern", estimator=estimator, max_freq=max_freq)
+        if r.ok:
+            out.append((r.params["matern_alpha"], r.stderr["matern_alpha"], r.params["matern_damping"],
+                        r.stderr["matern_damping"]))
+    return np.array(out)
+
+
+def test_debiased_is_unbiased_where_whittle_is_not():
+    # Sykulski et al. (2019), Biometrika, section 6: aliasing and leakage bias the standard Whittle
+    # estimator for a rough, strongly damped process; the debiased estimator removes it.
+    theta = [0.02, 1.0, 2.0]
+    deb = _replicates(theta, 24)
+    whi = _replicates(theta, 24, estimator="whittle")
+    n = len(deb)
+    assert n >= 22
+    bias_deb = deb[:, 0].mean() - 1.0
+    bias_whi = whi[:, 0].mean() - 1.0
+    se_mean = deb[:, 1].mean() / np.sqrt(n)
+    assert abs(bias_deb) < 3 * se_mean + 0.1 * deb[:, 1].mean()
+    assert abs(bias_whi) > 5 * abs(bias_deb) and abs(bias_whi) > 3 * se_mean
+
+
+def test_standard_errors_cover_truth_quick():
+    # a quick subset of the coverage study (the full one is a benchmark): 95 % intervals over 40 fits
+    theta = [0.02, 1.2, 1.0]
+    r = _replicates(theta, 40)
+    cover_a = np.mean(np.abs(r[:, 0] - 1.2) < 1.96 * r[:, 1])
+    cover_l = np.mean(np.abs(r[:, 2] - 1.0) < 1.96 * r[:, 3])
+    assert cover_a > 0.82 and cover_l > 0.82
+    # bias small next to the standard error
+    assert abs(r[:, 0].mean() - 1.2) < 0.5 * r[:, 1].mean()
+
+
+def test_missing_samples_do_not_bias_debiased_fit():
+    theta = [0.02, 1.2, 1.0]
+
+    def gaps(rng):  # 20 % missing in 6 gaps of 48 samples
+        m = np.zeros(1440, bool)
+        for s in rng.choice(np.arange(0, 1440 - 48, 60), 6, replace=False):
+            m[s:s + 48] = True
+        return m
+
+    r = _replicates(theta, 24, mask_fn=gaps)
+    assert len(r) >= 22
+    assert abs(r[:, 0].mean() - 1.2) < 0.5 * r[:, 1].mean()
+    assert abs(np.log(r[:, 2].mean() / 1.0)) < 0.5 * (r[:, 3] / r[:, 2]).mean()
+
+
+def test_failed_fits_are_results_not_exceptions():
+    r = fit_series(np.full(50, np.nan + 0j), HOUR)
+    assert r.status == "too_few_samples" and not r.ok and np.isnan(r.params["matern_alpha"])
+    r = fit_series(np.zeros(2000, complex), HOUR)
+    assert r.status in ("failed", "at_bound", "no_convergence")
+    with pytest.raises(ValueError, match="estimator"):
+        fit_series(np.zeros(10, complex), HOUR, estimator="nonsense")
+
+
+def test_follow_latitude_model_fits_a_meridional_track():
+    lat = np.linspace(20, 35, 1440)  # a fast float moving north through 15 degrees in 60 days
+    theta = [0.02, 1.2, 1.0, 0.01, 0.2]
+    z = simulate("matern+inertial", theta, n=1440, dt=HOUR, seed=3, latitude=lat,
+                 inertial_frequency="follow-latitude")
+    r = fit_series(z, HOUR, latitude=lat, inertial_frequency="follow-latitude")
+    assert r.ok, r.message
+    assert abs(r.params["inertial_variance"] - 0.01) < 3 * r.stderr["inertial_variance"]
+    # a constant-frequency fit of the same data is worse by AIC
+    c = fit_series(z, HOUR, latitude=float(lat.mean()))
+    assert r.aic < c.aic
+
+
+def test_dt_types_are_equivalent():
+    import datetime
+
+    import pandas as pd
+
+    z = simulate("matern", [0.02, 1.2, 1.0], n=500, dt=HOUR, seed=1)
+    ref = fit_series(z, HOUR, model="matern").params
+    for dt in (pd.Timedelta(hours=1), np.timedelta64(3600, "s"), datetime.timedelta(hours=1)):
+        assert fit_series(z, dt, model="matern").params == pytest.approx(ref)
+
+
+def test_exact_warns_on_long_windows():
+    z = simulate("matern", [0.02, 1.2, 1.0], n=3100, dt=HOUR, seed=1)
+    with warnings.catch_warnings(record=True) as w:
+        warnings.simplefilter("always")
+        from driftspec.analysis import fitting
+
+        fitting.EXACT_WARN_SAMPLES, old = 3000, fitting.EXACT_WARN_SAMPLES
+        try:
+            fit_series(z[:3001], HOUR, model="matern", estimator="exact", max_freq=1.0,
+                       fixed={"matern_alpha": 1.2, "matern_damping": 1.0})
+        finally:
+            fitting.EXACT_WARN_SAMPLES = old
+    assert any("exact likelihood" in str(x.message) for x in w)

@@ -1,0 +1,102 @@
+"""Model families: autocovariances and spectra against reference libraries and closed forms."""
+
+import numpy as np
+import pytest
+from scipy.integrate import quad
+from scipy.special import gamma
+
+from driftspec.analysis.models import Inertial, Matern, get_family, matern_correlation
+from driftspec.analysis.models.base import FitContext
+from driftspec.analysis.likelihood import expected_periodogram, prepare_window
+
+CTX = FitContext(dt_days=1 / 24, latitude=30.0, inertial_frequency_cpd=-1.0027)
+
+
+@pytest.mark.parametrize("alpha,lam", [(0.75, 0.5), (1.0, 1.0), (1.3, 2.0), (2.2, 0.7), (3.5, 4.0)])
+def test_matern_against_sklearn(alpha, lam):
+    # scikit-learn's Matern kernel: k(r) = 2^(1-nu)/Gamma(nu) (sqrt(2 nu) r / l)^nu K_nu(sqrt(2 nu) r / l),
+    # so our damping lambda corresponds to length_scale l = sqrt(2 nu) / lambda with nu = alpha - 1/2
+    from sklearn.gaussian_process.kernels import Matern as SkMatern
+
+    nu = alpha - 0.5
+    lags = np.arange(0, 2000) / 24.0
+    ref = SkMatern(length_scale=np.sqrt(2 * nu) / lam, nu=nu)(np.zeros((1, 1)), lags[:, None])[0]
+    ours = Matern().autocovariance([0.03, alpha, lam], lags).real / 0.03
+    np.testing.assert_allclose(ours, ref, atol=5e-7)  # tabulated K_nu: ~1e-7
+
+
+def test_matern_correlation_derivatives_by_finite_differences():
+    x = np.geomspace(1e-4, 40, 300)
+    for nu in (0.313, 0.777, 1.905):  # between table nodes, where the interpolant is smooth
+        _, d_nu, d_u = matern_correlation(nu, x, derivatives=True)
+        h = 1e-5
+        fd_nu = (matern_correlation(nu + h, x) - matern_correlation(nu - h, x)) / (2 * h)
+        fd_u = (matern_correlation(nu, x * np.exp(h)) - matern_correlation(nu, x * np.exp(-h))) / (2 * h)
+        np.testing.assert_allclose(d_nu, fd_nu, atol=1e-5)
+        np.testing.assert_allclose(d_u, fd_u, atol=1e-5)
+
+
+@pytest.mark.parametrize("family,theta", [
+    (Matern(), [0.02, 1.2, 1.0]),
+    (Matern(), [0.05, 0.8, 3.0]),
+    (Inertial(), [0.01, -1.0, 0.3]),
+])
+def test_spectrum_is_fourier_transform_of_autocovariance(family, theta):
+    # R(tau) = int S(f) exp(2 pi i f tau) df, by scipy.integrate.quad's Fourier-integral rule (QAWF)
+    def s(f):
+        return family.spectral_density(theta, np.array([f]), CTX)[0]
+
+    for tau in (0.3, 1.7):
+        w = 2 * np.pi * tau
+        re = quad(lambda f: s(f) + s(-f), 0, np.inf, weight="cos", wvar=w, limlst=200)[0]
+        im = quad(lambda f: s(f) - s(-f), 0, np.inf, weight="sin", wvar=w, limlst=200)[0]
+        r = family.autocovariance(theta, np.array([tau]), CTX)[0]
+        assert re == pytest.approx(r.real, rel=1e-4, abs=1e-8)
+        assert im == pytest.approx(r.imag, rel=1e-4, abs=1e-8)
+    total = quad(s, -np.inf, np.inf, limit=400, points=None)[0]
+    assert total == pytest.approx(theta[0], rel=1e-5)  # the density integrates to the variance
+
+
+def test_ou_diffusivity_is_taylor_value():
+    # Taylor (1921): kappa = sigma_u^2 T_L for an exponential autocorrelation; sigma_u^2 = E|z|^2 / 2
+    var, lam = 0.02, 0.8  # m^2/s^2, 1/day
+    s0 = Matern().zero_frequency_density([var, 1.0, lam])  # (m/s)^2 per cpd
+    kappa = s0 * 86400 / 4
+    assert kappa == pytest.approx(var / 2 * 86400 / lam, rel=1e-12)
+    # the general-alpha integral time scale of the Matern correlation
+    alpha = 1.7
+    t_int = Matern().derived([var, alpha, lam])["matern_timescale_days"]
+    expect = np.sqrt(np.pi) * gamma(alpha) / (gamma(alpha - 0.5) * lam)
+    assert t_int == pytest.approx(expect)
+    num = quad(lambda t: matern_correlation(alpha - 0.5, np.array([lam * t]))[0], 0, 200)[0]
+    assert t_int == pytest.approx(num, rel=1e-5)
+
+
+@pytest.mark.parametrize("model,theta,modulated", [
+    ("matern+inertial", [0.02, 1.3, 1.0, 0.01, -1.0, 0.3], False),
+    ("matern+inertial", [0.02, 1.3, 1.0, 0.01, 0.3], True),
+])
+def test_expected_periodogram_equals_quadratic_form(model, theta, modulated, rng):
+    # E|sum_t h_t z_t e^{-i theta t}|^2 = b^H Sigma b with b_t = h_t e^{+i theta t} and
+    # Sigma_ts = E[z_t conj z_s]: a brute-force O(N^2) evaluation of the same expectation
+    n = 200
+    fam = get_family(model, "follow-latitude" if modulated else "free")
+    z = rng.standard_normal(n) + 1j * rng.standard_normal(n)
+    z[50:80] = np.nan
+    lat = np.linspace(25, 35, n)
+    prep = prepare_window(z, 1 / 24, taper="hann", modulated=modulated, latitude_series=lat)
+    ctx = FitContext(dt_days=1 / 24, latitude=30.0, inertial_frequency_cpd=-1.0, latitude_series=lat)
+    e = expected_periodogram(fam, theta, prep, ctx)
+    t = np.arange(n)
+    lag = t[:, None] - t[None, :]
+    sigma = np.zeros((n, n), complex)
+    for comp, sl in fam.components():
+        r = comp.autocovariance(np.asarray(theta)[sl], np.abs(lag).ravel() / 24.0, ctx).reshape(n, n)
+        r = np.where(lag >= 0, r, np.conj(r))
+        if comp.modulated:
+            r = r * np.outer(prep.modulation, np.conj(prep.modulation))
+        sigma += r
+    for k in (1, 7, 40, 100, 150):
+        b = prep.taper * np.exp(2j * np.pi * k * t / n)
+        ref = (1 / 24) * np.real(np.conj(b) @ sigma @ b)
+        assert e[k] == pytest.approx(ref, rel=1e-9)
