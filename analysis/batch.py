@@ -87,9 +87,16 @@ def _parts_dir(out: Path) -> Path:
 
 def read_table(path) -> pd.DataFrame:
     path = Path(path)
-    if path.suffix.lower() == ".csv":
-        return pd.read_csv(path, parse_dates=["window_start", "window_end"])
-    return pd.read_parquet(path)
+    df = pd.read_csv(path) if path.suffix.lower() == ".csv" else pd.read_parquet(path)
+    for col in ("window_start", "window_end"):
+        if col in df:
+            df[col] = _naive_utc(df[col])
+    return df
+
+
+def _naive_utc(values) -> pd.Series:
+    t = pd.to_datetime(values, utc=True)
+    return t.dt.tz_localize(None).astype("datetime64[ns]")
 
 
 def write_table(df: pd.DataFrame, path, units: dict | None = None, metadata: dict | None = None) -> Path:
@@ -243,8 +250,8 @@ def combine(out: Path, units: dict | None = None) -> pd.DataFrame:
     frames = [f for f in frames if len(f)]
     df = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=KEY)
     if len(df):
-        df["window_start"] = pd.to_datetime(df["window_start"])
-        df["window_end"] = pd.to_datetime(df["window_end"])
+        df["window_start"] = _naive_utc(df["window_start"])
+        df["window_end"] = _naive_utc(df["window_end"])
         df = df.drop_duplicates(KEY, keep="last").sort_values(KEY, kind="stable").reset_index(drop=True)
     front = [c for c in WINDOW_COLUMNS + ["model", "estimator", "status", "message", "loglik", "aic",
                                           "gof_pvalue"] if c in df]

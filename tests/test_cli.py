@@ -1,0 +1,72 @@
+"""The command line as a user runs it: real subprocesses, real files, exit codes."""
+
+import json
+import subprocess
+import sys
+
+import pandas as pd
+import pytest
+
+
+def run(*args, cwd=None):
+    return subprocess.run([sys.executable, "-m", "driftspec.app.cli", *map(str, args)], capture_output=True,
+                          text=True, cwd=cwd, timeout=600)
+
+
+def test_help_lists_subcommands():
+    r = run("--help")
+    assert r.returncode == 0
+    for cmd in ("demo", "qc", "fit", "map", "serve"):
+        assert cmd in r.stdout
+    for cmd in ("demo", "qc", "fit", "map", "serve"):
+        assert run(cmd, "--help").returncode == 0
+
+
+def test_demo_is_deterministic(tmp_path):
+    a, b = tmp_path / "a", tmp_path / "b"
+    assert run("demo", a, "--tracks", 3, "--days", 20, "--seed", 5).returncode == 0
+    assert run("demo", b, "--tracks", 3, "--days", 20, "--seed", 5).returncode == 0
+    pd.testing.assert_frame_equal(pd.read_parquet(a / "fixes.parquet"), pd.read_parquet(b / "fixes.parquet"))
+    assert (a / "truth.csv").read_text() == (b / "truth.csv").read_text()
+
+
+def test_qc_accounts_for_every_row(tmp_path, demo_dir):
+    clean, report = tmp_path / "clean.nc", tmp_path / "qc.json"
+    r = run("qc", demo_dir / "fixes.parquet", "--out", clean, "--report", report)
+    assert r.returncode == 0, r.stderr
+    doc = json.loads(report.read_text())
+    assert doc["kept_rows"] + sum(doc["dropped"].values()) == doc["input_rows"] == len(
+        pd.read_parquet(demo_dir / "fixes.parquet"))
+    assert doc["dropped"]["duplicate_time"] > 0 and doc["dropped"]["speed_spike"] > 0
+    assert "rows in" in r.stdout
+
+
+@pytest.mark.parametrize("content,needle", [
+    ("id,time,lat\nA,2030-01-01,1\n", "missing column"),
+    ('id,time,lat,lon\nA,2030-01-01,1,2\nB,"2030,1,2\n', "bad.csv"),
+])
+def test_bad_input_is_one_line_exit_2(tmp_path, content, needle):
+    bad = tmp_path / "bad.csv"
+    bad.write_text(content)
+    r = run("qc", bad, "--out", tmp_path / "o.parquet")
+    assert r.returncode == 2
+    assert needle in r.stderr and "Traceback" not in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
+    assert not (tmp_path / "o.parquet").exists()
+
+
+def test_missing_file_exit_2(tmp_path):
+    r = run("fit", tmp_path / "nope.parquet", "--out", tmp_path / "f.parquet")
+    assert r.returncode == 2 and "no such file" in r.stderr
+
+
+def test_fit_command_end_to_end(tmp_path, demo_dir):
+    out = tmp_path / "fits.csv"
+    r = run("fit", demo_dir / "fixes.parquet", "--out", out, "--window-days", 30, "--model", "matern",
+            "--workers", 1, "--no-progress")
+    assert r.returncode == 0, r.stderr
+    df = pd.read_csv(out)
+    assert len(df) > 0 and set(df["model"]) == {"matern"}
+    assert "fits:" in r.stdout
+    bad = run("fit", demo_dir / "fixes.parquet", "--out", out, "--model", "nonsense")
+    assert bad.returncode == 2 and "unknown model" in bad.stderr
