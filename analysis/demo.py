@@ -1,7 +1,8 @@
 """A synthetic, deterministic demo deployment: the fictional "Tern Basin" release.
 
 Drifters are released across an open-ocean box of the eastern tropical and subtropical North Pacific
-(5 S to 40 N, 150 W to 125 W, which holds no land at coarse shoreline resolution) and carried by
+(5 S to 40 N, 150 W to 128 W; the box the floats stay in, 7 S to 42 N and 152 W to 127 W, holds no
+land in the coarse shoreline, which the tests check) and carried by
 
 * a smooth mean circulation of our own: a subtropical gyre with a westward-intensified boundary current
   (the classical Stommel-type streamfunction ``sin(pi y) (1 - x - exp(-x / delta))``), and a band of
@@ -26,7 +27,7 @@ from .likelihood import modulation_sequence
 from .models import Inertial, Matern
 from .simulate import circulant_sample
 
-DOMAIN = {"lat": (-5.0, 40.0), "lon": (-150.0, -125.0)}
+DOMAIN = {"lat": (-5.0, 40.0), "lon": (-150.0, -128.0)}
 SCENARIO = "Tern Basin release (synthetic demo data)"
 
 
@@ -110,7 +111,7 @@ def generate_demo(n_tracks: int = 60, days: float = 180.0, seed: int = 2031, sta
     dt_s = dt_h * 3600.0
     dt_days = dt_h / 24.0
     lat0 = rng.uniform(0.0, 36.0, n_tracks)
-    lon0 = rng.uniform(-147.0, -128.0, n_tracks)
+    lon0 = rng.uniform(-147.0, -130.0, n_tracks)
     truth = truth_fields(lat0, lon0)
     matern, inertial = Matern(), Inertial()
     lags = np.arange(n + 1) * dt_days
@@ -137,7 +138,7 @@ def generate_demo(n_tracks: int = 60, days: float = 180.0, seed: int = 2031, sta
             lo = lo + np.rad2deg(u * dt_s / (EARTH_RADIUS_M * np.cos(np.deg2rad(la))))
             # reflect at the edges of the open-ocean box
             la = np.where(la > 42, 84 - la, np.where(la < -7, -14 - la, la))
-            lo = np.where(lo > -123, -246 - lo, np.where(lo < -152, -304 - lo, lo))
+            lo = np.where(lo > -127, -254 - lo, np.where(lo < -152, -304 - lo, lo))
         if pass_ == 0:
             mod = np.stack([modulation_sequence(lat[k], dt_days) for k in range(n_tracks)])
     t0 = pd.Timestamp(start)
