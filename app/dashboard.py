@@ -305,6 +305,7 @@ class Explorer(param.Parameterized):
         shaded = dynspread(rasterize(pts, aggregator=dsh.mean("value"), width=900, height=560),
                            threshold=0.6, max_px=2)
         shaded = shaded.apply.opts(cmap=pn.bind(self._cmap, self.state.param.color_by), colorbar=True,
+                                   data_aspect=1,
                                    cnorm="eq_hist", tools=["tap", "box_select"], active_tools=["wheel_zoom"],
                                    default_tools=["pan", "wheel_zoom", "reset", "save"], xaxis=None, yaxis=None,
                                    responsive=True, min_height=420, clabel=pn.bind(self._clabel,
@@ -376,6 +377,19 @@ class Explorer(param.Parameterized):
         return pn.pane.Markdown(
             f"**{self.track_ids[int(p['track_code'])]}** · {when} UTC · {col} = {p[col]:.4g} · "
             f"{lonlat[1]:.2f}°N {lonlat[0]:.2f}°E", css_classes=["ds-readout"])
+
+    @param.depends("state.track", "state.window", "state.window_days", "state.overlap", "state.model",
+                   "state.estimator")
+    def summary_view(self):
+        """One line saying what is selected (also what a browser test reads)."""
+        ws = self.windows()
+        st = self.state
+        cur = self.current_window()
+        when = f" ({cur.start:%Y-%m-%d} to {cur.end:%Y-%m-%d})" if cur is not None else ""
+        return pn.pane.Markdown(
+            f"**Track {st.track}** · window {min(st.window, max(len(ws) - 1, 0)) + 1} of {len(ws)}{when} · "
+            f"{len(ws)} windows of {st.window_days:g} days · model {st.model} · {st.estimator} estimator",
+            css_classes=["ds-summary"], sizing_mode="stretch_width")
 
     @param.depends("state.track", "state.window", "state.window_days", "state.overlap", "state.presentation")
     def series_view(self):
@@ -461,7 +475,7 @@ class Explorer(param.Parameterized):
                  "unit": p.unit} for p in fam.parameters]
         rows.append({"parameter": "diffusivity", "value": res.diffusivity, "std. error": res.diffusivity_se,
                      "unit": "m2 s-1"})
-        table = pn.widgets.Tabulator(pd.DataFrame(rows), show_index=False, disabled=True, layout="fit_columns",
+        table = pn.widgets.Tabulator(pd.DataFrame(rows), show_index=False, disabled=True, layout="fit_data_fill",
                                      formatters={"value": {"type": "money", "precision": 5},
                                                  "std. error": {"type": "money", "precision": 5}},
                                      sizing_mode="stretch_width", name="fit-table")
@@ -540,7 +554,7 @@ class Explorer(param.Parameterized):
                                            "throttled": True},
                               "taper": {"type": pn.widgets.RadioButtonGroup, "name": "Taper"},
                               "inertial": {"type": pn.widgets.Select, "name": "Inertial frequency"}},
-                     show_name=False, sizing_mode="stretch_width")
+                     show_name=False, width=285)
         track = pn.widgets.Select(name="Track", options=self.track_ids, value=st.track or None)
         track.link(st, value="track", bidirectional=True)
         win = pn.widgets.IntSlider(name="Window along the track", start=0, end=max(len(self.windows()) - 1, 0),
@@ -552,10 +566,17 @@ class Explorer(param.Parameterized):
             win.end = max(len(self.windows()) - 1, 0)
             win.value = min(st.window, win.end)
         st.param.watch(update_window_slider, ["track", "window_days", "overlap"])
-        look = pn.Param(st, parameters=["color_by", "presentation"], show_name=False,
+        look = pn.Param(st, parameters=["color_by", "presentation", "theme"], show_name=False,
                         widgets={"color_by": {"type": pn.widgets.Select, "name": "Colour tracks by"},
-                                 "presentation": {"type": pn.widgets.Toggle, "name": "Presentation mode"}},
+                                 "presentation": {"type": pn.widgets.Toggle, "name": "Presentation mode"},
+                                 "theme": {"type": pn.widgets.RadioButtonGroup, "name": "Theme"}},
                         sizing_mode="stretch_width")
+
+        def reload_for_theme(event):  # the page theme is chosen when the page is built
+            if pn.state.location is not None:
+                pn.state.location.search = "?" + self.url_query()
+                pn.state.location.reload = True
+        st.param.watch(reload_for_theme, "theme")
         items = [pn.pane.Markdown("### Selection"), track, win, pn.pane.Markdown("### Analysis"), w,
                  pn.pane.Markdown("### Map"), look]
         if self.date_range is not None:
@@ -625,9 +646,10 @@ class Explorer(param.Parameterized):
         explore = pn.Column(
             pn.Row(pn.Column(self.map_view(), self.readout, sizing_mode="stretch_width"),
                    sizing_mode="stretch_width"),
+            self.summary_view,
             self.series_view,
             pn.Row(pn.Column(self.spectrum_view, sizing_mode="stretch_width"),
-                   pn.Column(self.table_view, width=420), sizing_mode="stretch_width"),
+                   pn.Column(self.table_view, width=470), sizing_mode="stretch_width"),
             sizing_mode="stretch_width", name="Explore")
         track_tab = pn.Column(self.track_fits_view, sizing_mode="stretch_width", name="Track summary")
         map_tab = pn.Column(pn.Row(mp, binsz, fit_all, cancel), self.param_map_view,
@@ -644,10 +666,11 @@ class Explorer(param.Parameterized):
     def template(self):
         """The dashboard in a page template (for ``panel serve`` and ``driftspec serve``)."""
         self._start_poller()
-        tpl = pn.template.FastListTemplate(
-            title=self.title, sidebar=[self.controls()], main=[self.main_area()], theme_toggle=True,
-            accent="#1f7a7a", header_background="#1d2b3a", sidebar_width=320,
-            raw_css=[PRESENTATION_CSS])
+        dark = self.state.theme == "dark"
+        tpl = OfflineTemplate(
+            title=self.title, sidebar=[self.controls()], main=[self.main_area()],
+            header_background="#0d1620" if dark else "#1d2b3a", sidebar_width=320,
+            theme="dark" if dark else "default", raw_css=[PRESENTATION_CSS])
         self._sync_url()
         return tpl
 
@@ -670,7 +693,15 @@ class Explorer(param.Parameterized):
         return self.panel()._repr_mimebundle_(include, exclude)
 
 
+class OfflineTemplate(pn.template.VanillaTemplate):
+    """The plain page template without its web-font link: the page must work with no network."""
+
+    _resources = {"css": {}}
+
+
 PRESENTATION_CSS = """
+:root { --bokeh-base-font: 'DejaVu Sans', Helvetica, Arial, sans-serif; }
+body { font-family: 'DejaVu Sans', Helvetica, Arial, sans-serif; }
 .ds-readout, .ds-status { font-size: 0.95em; }
 """
 

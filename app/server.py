@@ -74,7 +74,9 @@ def make_app(input_path: Path, fits_path: Path | None = None):
             return pn.pane.Markdown(f"### Not available\n`{name}` is not a data file in the served folder.")
         vel, report = _velocities(str(path))
         fits = _fits(str(fits_path)) if fits_path else None
-        ex = Explorer(vel, fits=fits, state=ExplorerState(), title=f"driftspec · {path.name}")
+        theme = pn.state.session_args.get("theme", [b"light"])[0].decode() if pn.state.session_args else "light"
+        state = ExplorerState(theme=theme if theme in ("light", "dark") else "light")
+        ex = Explorer(vel, fits=fits, state=state, title=f"driftspec · {path.name}")
         tpl = ex.template()
         files = data_files(data_dir)
         if len(files) > 1:

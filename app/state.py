@@ -9,7 +9,7 @@ from driftspec.analysis.models import FAMILIES
 
 #: parameters written to and read from the URL
 URL_PARAMS = ("track", "window", "window_days", "overlap", "model", "estimator", "max_freq", "taper",
-              "inertial", "color_by", "region", "map_param", "bin_deg", "presentation")
+              "inertial", "color_by", "region", "map_param", "bin_deg", "presentation", "theme")
 
 
 class ExplorerState(param.Parameterized):
@@ -31,3 +31,4 @@ class ExplorerState(param.Parameterized):
     map_param = param.Selector(default="matern_alpha", objects=["matern_alpha"], doc="Parameter to map")
     bin_deg = param.Number(default=2.0, bounds=(0.5, 10.0), step=0.5, doc="Bin size of the parameter map")
     presentation = param.Boolean(default=False, doc="Large fonts and thick lines for screen sharing")
+    theme = param.Selector(default="light", objects=["light", "dark"], doc="Page theme")
