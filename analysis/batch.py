@@ -20,16 +20,17 @@ import pandas as pd
 
 from .fitting import fit_series
 from .models import get_family
+from .observation import observed
 from .windows import Window
 
 KEY = ["track_id", "window_start", "model"]
 WINDOW_COLUMNS = ["track_id", "window_start", "window_end", "lat", "lon", "n_samples", "coverage",
-                  "inertial_frequency_local"]
+                  "inertial_frequency_local", "max_freq"]
 
 #: units of the fixed columns of a fits table (parameters add their own from the families)
 COLUMN_UNITS = {
     "lat": "degrees_north", "lon": "degrees_east", "n_samples": "1", "coverage": "1",
-    "inertial_frequency_local": "day-1", "loglik": "1", "aic": "1", "gof_pvalue": "1",
+    "inertial_frequency_local": "day-1", "max_freq": "day-1", "position_noise": "m", "loglik": "1", "aic": "1", "gof_pvalue": "1",
     "diffusivity": "m2 s-1", "diffusivity_se": "m2 s-1", "matern_timescale_days": "day",
     "inertial_efold_days": "day", "window_start": "UTC", "window_end": "UTC",
 }
@@ -46,12 +47,16 @@ class FitOptions:
     exclude: Sequence[tuple[float, float]] = ()
     inertial_frequency: str = "free"
     fixed: dict = field(default_factory=dict)
+    observation: str = "none"
+    velocity_operator: str = "central"
+    position_noise: float | None = None
+    noise_from_input: bool = False
 
 
-def column_units(models: Iterable[str], inertial_frequency: str = "free") -> dict[str, str]:
+def column_units(models: Iterable[str], inertial_frequency: str = "free", observation: str = "none") -> dict:
     units = dict(COLUMN_UNITS)
     for m in models:
-        for p in get_family(m, inertial_frequency).parameters:
+        for p in observed(get_family(m, inertial_frequency), observation).parameters:
             units[p.name] = p.unit
             units[p.name + "_se"] = p.unit
     return units
@@ -61,19 +66,36 @@ def fit_window(w: Window, opts: FitOptions) -> list[dict]:
     """One row per model for one window; a failure is a row with a status, never an exception."""
     rows = []
     base = {"track_id": w.track_id, "window_start": w.start, "window_end": w.end, "lat": w.lat, "lon": w.lon,
-            "n_samples": w.n_samples, "coverage": w.coverage, "inertial_frequency_local": w.inertial_frequency_cpd}
+            "n_samples": w.n_samples, "coverage": w.coverage, "inertial_frequency_local": w.inertial_frequency_cpd,
+            "max_freq": _band_for(w, opts) if _band_for(w, opts) is not None else 0.5 * 86400 / w.dt_seconds}
     for m in opts.models:
         lat = w.latitude if opts.inertial_frequency == "follow-latitude" else w.lat
         try:
-            r = fit_series(w.z, w.dt_seconds, model=m, estimator=opts.estimator, max_freq=opts.max_freq,
+            r = fit_series(w.z, w.dt_seconds, model=m, estimator=opts.estimator, max_freq=_band_for(w, opts),
                            latitude=lat, taper=opts.taper, exclude=opts.exclude or None,
-                           inertial_frequency=opts.inertial_frequency, fixed=opts.fixed or None)
+                           inertial_frequency=opts.inertial_frequency, fixed=opts.fixed or None,
+                           observation=opts.observation, velocity_operator=opts.velocity_operator,
+                           position_noise=_noise_for(w, opts))
             row = r.to_row()
         except Exception as exc:  # noqa: BLE001 - a failed fit is a row, not a crash
             row = {"model": m, "estimator": opts.estimator, "status": "failed",
                    "message": f"{type(exc).__name__}: {exc}"}
         rows.append({**base, **row})
     return rows
+
+
+def _band_for(w: Window, opts: FitOptions):
+    if opts.max_freq is not None or opts.observation == "none":
+        return opts.max_freq
+    return w.auto_max_freq
+
+
+def _noise_for(w: Window, opts: FitOptions):
+    if opts.observation != "differenced+noise":
+        return None
+    if opts.noise_from_input and w.position_error_m is not None and w.position_error_m > 0:
+        return w.position_error_m
+    return opts.position_noise
 
 
 def fit_chunk(windows: list[Window], opts: FitOptions) -> pd.DataFrame:
@@ -177,7 +199,7 @@ def run_fits(windows: Iterable[Window], out, opts: FitOptions, *, workers: int =
         todo.append(w)
     existing = sorted(parts.glob("part-*.parquet"))
     next_part = 1 + max((int(p.stem.split("-")[1]) for p in existing), default=0)
-    units = column_units(opts.models, opts.inertial_frequency)
+    units = column_units(opts.models, opts.inertial_frequency, opts.observation)
     bar = tqdm(total=len(todo), unit="window", disable=not progress, desc="fitting", smoothing=0.05)
     written = 0
 

@@ -46,6 +46,7 @@ from .likelihood import (
     whittle_expectation,
 )
 from .models import FitContext, ModelFamily, get_family
+from .observation import default_max_freq, observed
 
 STATUSES = ("ok", "at_bound", "no_convergence", "too_few_samples", "failed")
 #: windows with fewer valid samples than this are not fitted
@@ -126,6 +127,12 @@ class FitResult:
         e = expected_periodogram(self.family, self.theta, p, self.context)
         o = np.argsort(p.freq_cpd, kind="stable")
         return p.freq_cpd[o], e[o], p.band[o]
+
+    def noise_floor(self, freq_cpd):
+        """Spectral density of the fitted position noise at ``freq_cpd`` (zeros without a noise model)."""
+        f = np.asarray(freq_cpd, float)
+        fn = getattr(self.family, "noise_spectral_density", None)
+        return np.zeros_like(f) if fn is None else np.real(fn(self.theta, f, self.context))
 
     def to_row(self) -> dict:
         """A flat dict: the columns of a fits table for this window."""
@@ -251,6 +258,7 @@ def _empty(model, estimator, family, status, message, n=0, n_valid=0):
 
 def fit_series(z, dt, *, model="matern+inertial", estimator="debiased", max_freq=None, latitude=None,
                mask=None, taper=None, exclude=None, fixed=None, inertial_frequency="free",
+               observation="none", velocity_operator="central", position_noise=None,
                start=None) -> FitResult:
     """Fit a parametric model to the rotary spectrum of one window of complex velocity.
 
@@ -280,6 +288,15 @@ def fit_series(z, dt, *, model="matern+inertial", estimator="debiased", max_freq
         Parameters held at given values, e.g. ``{"matern_alpha": 1.0}``.
     inertial_frequency : {"free", "follow-latitude"}
         Fit the inertial frequency as a free constant (default), or follow ``2 Omega sin(latitude(t))``.
+    observation : {"none", "differenced", "differenced+noise"}
+        How ``z`` was observed (see :mod:`driftspec.analysis.observation`): ``"none"`` for measured
+        velocities (default here); for velocities differenced from positions, ``"differenced"`` (the model
+        averaged by the difference operator) or ``"differenced+noise"`` (plus white position noise, the
+        parameter ``position_noise`` in m).
+    velocity_operator : {"central", "forward"}
+        The difference operator that made ``z`` from positions.
+    position_noise : float, optional
+        Hold ``position_noise`` (m) at this value instead of fitting it.
     start : dict, optional
         Starting values overriding the heuristic.
 
@@ -299,9 +316,15 @@ def fit_series(z, dt, *, model="matern+inertial", estimator="debiased", max_freq
     """
     if estimator not in ESTIMATORS:
         raise ValueError(f"estimator must be one of {ESTIMATORS}, got {estimator!r}")
-    family = get_family(model, inertial_frequency)
+    family = observed(get_family(model, inertial_frequency), observation, velocity_operator)
     model_name = model if isinstance(model, str) else family.name
     dt_days = parse_timedelta_seconds(dt) / SECONDS_PER_DAY
+    if max_freq is None and observation != "none":
+        max_freq = default_max_freq(dt_days, velocity_operator, observation)
+    if position_noise is not None:
+        if observation != "differenced+noise":
+            raise ValueError("position_noise needs observation='differenced+noise'")
+        fixed = {**(fixed or {}), "position_noise": float(position_noise)}
     z = np.asarray(z)
     n = z.size
     lat_series = None
@@ -483,6 +506,12 @@ def _optimise(family, model_name, estimator, prep, context, fixed, free, start):
     # status
     span = x_hi - x_lo
     near = free & ((x_hat - x_lo < 1e-5 * span) | (x_hi - x_hat < 1e-5 * span))
+    notes = []
+    if "position_noise" in names:
+        k = names.index("position_noise")
+        if near[k] and x_hat[k] - x_lo[k] < 1e-5 * span[k]:
+            near[k] = False  # noise below what the band can detect: a finding, not a failed fit
+            notes.append("position noise below detection")
     if not res.success and not np.isfinite(value):
         status, message = "failed", str(res.message)
     elif not res.success:
@@ -494,6 +523,8 @@ def _optimise(family, model_name, estimator, prep, context, fixed, free, start):
         status, message = "ok", "standard errors unavailable (singular information)"
     else:
         status, message = "ok", ""
+    if notes:
+        message = "; ".join([m for m in [message] if m] + notes)
     loglik = -value
     return FitResult(
         model=model_name, estimator=estimator,

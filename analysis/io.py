@@ -288,7 +288,7 @@ def write_fixes(fixes: pd.DataFrame, path, attrs: dict | None = None) -> Path:
     if suffix == ".nc":
         fixes_to_cf_dataset(fixes[cols], attrs).to_netcdf(tmp)
     elif suffix in (".parquet", ".pq"):
-        fixes[cols].to_parquet(tmp, index=False)
+        fixes[cols].to_parquet(tmp, index=False, compression="zstd")
     elif suffix == ".csv":
         fixes[cols].to_csv(tmp, index=False, date_format="%Y-%m-%dT%H:%M:%SZ")
     else:

@@ -3,7 +3,8 @@
 The gridded table has one row per grid sample:
 
 ``id``, ``segment`` (0-based within the track), ``time``, ``lat``, ``lon`` (interpolated),
-``valid`` (the sample lies within ``mask_distance`` of a real fix), ``u_meas``/``v_meas`` (interpolated
+``valid`` (the sample lies within ``mask_distance`` of a real fix), ``fix_distance_s`` (time to the
+nearest fix, s), ``u_meas``/``v_meas`` (interpolated
 measured velocity, when the input had it), and ``position_error_m`` when the input had it.
 
 Interpolation never crosses a segment boundary and never crosses the antimeridian the long way round:
@@ -105,7 +106,9 @@ def regular_grid(fixes: pd.DataFrame, step=DEFAULT_STEP, split_gap=DEFAULT_SPLIT
     prv = np.clip(pos - 1, 0, len(x_fix) - 1)
     d_next = np.where(seg_index[nxt] == grid_seg, np.abs(x_fix[nxt] - x_grid), np.inf)
     d_prev = np.where(seg_index[prv] == grid_seg, np.abs(x_grid - x_fix[prv]), np.inf)
-    out["valid"] = np.minimum(d_next, d_prev) <= mask_ns
+    nearest = np.minimum(d_next, d_prev)
+    out["valid"] = nearest <= mask_ns
+    out["fix_distance_s"] = nearest / 1e9
     for col, name in (("u", "u_meas"), ("v", "v_meas"), ("position_error_m", "position_error_m")):
         if col in fixes:
             vals = fixes[col].to_numpy(float)

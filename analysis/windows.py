@@ -40,6 +40,10 @@ class Window:
         Fraction of valid samples.
     position_error_m : float or None
         Median position error of the window's fixes, when the input carried one.
+    fix_interval_s : float or None
+        Typical interval between the real fixes behind the window's samples, s: four times the mean time
+        from a sample to its nearest fix (for fixes at random times that mean is a quarter of the
+        interval), and at least the sample interval.
     """
 
     track_id: str
@@ -52,6 +56,7 @@ class Window:
     latitude: np.ndarray
     longitude: np.ndarray
     position_error_m: float | None = None
+    fix_interval_s: float | None = None
 
     @property
     def mask(self) -> np.ndarray:
@@ -77,6 +82,13 @@ class Window:
     def inertial_frequency_cpd(self) -> float:
         """Local inertial frequency at the mean latitude, cpd (negative in the northern hemisphere)."""
         return inertial_frequency_cpd(self.lat)
+
+    @property
+    def auto_max_freq(self) -> float:
+        """Default top of the fitted band, cpd: 3/4 of the Nyquist frequency of the sample interval or of
+        the fix interval, whichever is longer (frequencies the fixes cannot resolve are not fitted)."""
+        interval = max(self.dt_seconds, self.fix_interval_s or 0.0)
+        return 0.75 * 0.5 * 86400.0 / interval
 
     @property
     def key(self) -> tuple[str, str]:
@@ -125,6 +137,7 @@ def iter_windows(vel: pd.DataFrame, window_days: float = 60.0, overlap: float = 
         z[~vel["valid"].to_numpy(bool)] = np.nan
     lat, lon = vel["lat"].to_numpy(float), vel["lon"].to_numpy(float)
     perr = vel["position_error_m"].to_numpy(float) if "position_error_m" in vel else None
+    fixd = vel["fix_distance_s"].to_numpy(float) if "fix_distance_s" in vel else None
     change = np.flatnonzero((ids[1:] != ids[:-1]) | (seg[1:] != seg[:-1])) + 1
     starts = np.concatenate([[0], change])
     stops = np.concatenate([change, [len(ids)]])
@@ -145,4 +158,7 @@ def iter_windows(vel: pd.DataFrame, window_days: float = 60.0, overlap: float = 
                 dt_seconds=dt_ns / 1e9, z=zz.copy(), latitude=lat[a + s:a + e].copy(),
                 longitude=lon[a + s:a + e].copy(),
                 position_error_m=(float(np.nanmedian(perr[a + s:a + e])) if perr is not None else None),
+                fix_interval_s=(max(dt_ns / 1e9, 4.0 * float(np.mean(fixd[a + s:a + e])))
+                                if fixd is not None else None),
             )
+

@@ -80,7 +80,14 @@ def build_parser() -> argparse.ArgumentParser:
                    help="model family, or several separated by commas (matern, inertial, matern+inertial)")
     p.add_argument("--estimator", choices=["debiased", "whittle", "exact"], default="debiased")
     p.add_argument("--max-freq", type=float, default=None,
-                   help="fit |f| <= this, cpd (default: half the Nyquist frequency)")
+                   help="fit |f| <= this, cpd (default, per window: 3/4 of the Nyquist frequency of the grid "
+                        "step or of the fix interval, whichever is longer; Nyquist for measured velocities)")
+    p.add_argument("--observation", choices=["none", "differenced", "differenced+noise"], default=None,
+                   help="observation model (default: differenced+noise for velocities from positions, "
+                        "none for measured u, v)")
+    p.add_argument("--position-noise", default="fit", metavar="fit|input|METRES",
+                   help="fit the position noise (default), take it from the input's position_error_m, "
+                        "or hold it at METRES")
     p.add_argument("--exclude", default=None, metavar="LOW:HIGH,...",
                    help="leave out bands of |f| (cpd), e.g. 1.85:2.05 around semidiurnal tides")
     p.add_argument("--taper", choices=["none", "hann", "dpss"], default="none")
@@ -150,14 +157,32 @@ def cmd_fit(args):
     print(report.summary(), file=sys.stderr)
     windows = iter_windows(vel, args.window_days, args.overlap, args.min_coverage,
                            use_measured=args.velocity == "measured")
-    max_freq = args.max_freq
-    if max_freq is None:
-        import pandas as pd
+    import pandas as pd
 
-        max_freq = 0.25 / (pd.Timedelta(args.step).total_seconds() / 86400.0)
+    from driftspec.analysis.observation import default_max_freq
+
+    measured = args.velocity == "measured"
+    observation = args.observation or ("none" if measured else "differenced+noise")
+    operator = "none" if measured else args.velocity
+    if measured and observation != "none":
+        raise SystemExit("driftspec: measured velocities take --observation none")
+    dt_days = pd.Timedelta(args.step).total_seconds() / 86400.0
+    # default band: each window's own (see Window.auto_max_freq); measured velocities: Nyquist
+    max_freq = args.max_freq
+    if max_freq is None and observation == "none":
+        max_freq = default_max_freq(dt_days, operator, observation)
+    noise = None
+    if args.position_noise not in ("fit", "input"):
+        try:
+            noise = float(args.position_noise)
+        except ValueError as exc:
+            raise SystemExit(f"driftspec: --position-noise takes fit, input or metres, got {args.position_noise!r}") \
+                from exc
     opts = FitOptions(models=models, estimator=args.estimator, max_freq=max_freq,
                       taper=None if args.taper == "none" else args.taper, exclude=_exclusions(args.exclude),
-                      inertial_frequency=args.inertial_frequency)
+                      inertial_frequency=args.inertial_frequency, observation=observation,
+                      velocity_operator="central" if measured else args.velocity, position_noise=noise,
+                      noise_from_input=args.position_noise == "input")
     df = run_fits(windows, args.out, opts, workers=args.workers, dask_address=args.dask, resume=args.resume,
                   progress=not args.no_progress)
     print(summarise(df))
