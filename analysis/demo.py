@@ -25,7 +25,7 @@ import pandas as pd
 from .conventions import EARTH_RADIUS_M, inertial_frequency_cpd
 from .likelihood import modulation_sequence
 from .models import Inertial, Matern
-from .simulate import circulant_sample
+from .simulate import circulant_sample, embedding_autocovariance
 
 DOMAIN = {"lat": (-5.0, 40.0), "lon": (-150.0, -128.0)}
 SCENARIO = "Tern Basin release (synthetic demo data)"
@@ -114,14 +114,15 @@ def generate_demo(n_tracks: int = 60, days: float = 180.0, seed: int = 2031, sta
     lon0 = rng.uniform(-147.0, -130.0, n_tracks)
     truth = truth_fields(lat0, lon0)
     matern, inertial = Matern(), Inertial()
-    lags = np.arange(n + 1) * dt_days
     z_bg = np.empty((n_tracks, n), complex)
     z_in = np.empty((n_tracks, n), complex)
     for k in range(n_tracks):
         th = [truth["matern_variance"][k], truth["matern_alpha"][k], truth["matern_damping"][k]]
-        z_bg[k] = circulant_sample(matern.autocovariance(th, lags), n, rng)[0]
+        z_bg[k] = circulant_sample(embedding_autocovariance(lambda lag: matern.autocovariance(th, lag), n,
+                                                            dt_days), n, rng)[0]
         th_i = [truth["inertial_variance"][k], 0.0, truth["inertial_damping"][k]]
-        z_in[k] = circulant_sample(inertial.autocovariance(th_i, lags), n, rng)[0]
+        z_in[k] = circulant_sample(embedding_autocovariance(lambda lag: inertial.autocovariance(th_i, lag), n,
+                                                            dt_days), n, rng)[0]
     lat = np.empty((n_tracks, n))
     lon = np.empty((n_tracks, n))
     la, lo = lat0.copy(), lon0.copy()

@@ -507,11 +507,14 @@ def _optimise(family, model_name, estimator, prep, context, fixed, free, start):
     span = x_hi - x_lo
     near = free & ((x_hat - x_lo < 1e-5 * span) | (x_hi - x_hat < 1e-5 * span))
     notes = []
+    below = np.zeros(len(names), bool)
     if "position_noise" in names:
         k = names.index("position_noise")
         if near[k] and x_hat[k] - x_lo[k] < 1e-5 * span[k]:
             near[k] = False  # noise below what the band can detect: a finding, not a failed fit
             notes.append("position noise below detection")
+            se[k] = np.nan  # a curvature at the bound is no standard error
+            below[k] = True
     if not res.success and not np.isfinite(value):
         status, message = "failed", str(res.message)
     elif not res.success:
@@ -519,7 +522,7 @@ def _optimise(family, model_name, estimator, prep, context, fixed, free, start):
     elif near.any():
         status = "at_bound"
         message = "at bound: " + ", ".join(n for n, b in zip(names, near) if b)
-    elif not np.all(np.isfinite(se[free])):
+    elif not np.all(np.isfinite(se[free & ~below])):
         status, message = "ok", "standard errors unavailable (singular information)"
     else:
         status, message = "ok", ""

@@ -25,17 +25,19 @@ from .models import FitContext, get_family
 
 def circulant_sample(acov: np.ndarray, n: int, rng: np.random.Generator, size: int = 1,
                      real: bool = False) -> np.ndarray:
-    """Samples (size, n) of a stationary Gaussian series with autocovariance ``acov[0..n]``.
+    """Samples (size, n) of a stationary Gaussian series with autocovariance ``acov[0..m/2]``.
 
-    Complex series are proper (circular): ``E[z z^T] = 0``.
+    The embedding has size ``m = 2 (len(acov) - 1)``, at least ``2 n``; pass the autocovariance to longer
+    lags than ``n`` when it decays slowly (see :func:`embedding_autocovariance`). Complex series are
+    proper (circular): ``E[z z^T] = 0``. Negative eigenvalues left in the embedding are set to zero.
     """
     acov = np.asarray(acov, complex)
-    if acov.size < n + 1:
+    half = acov.size - 1
+    if half < n:
         raise ValueError("need the autocovariance at lags 0..n")
-    m = 2 * n
-    row = np.concatenate([acov[: n + 1], np.conj(acov[1:n][::-1])])
-    lam = scipy.fft.fft(row).real
-    lam = np.clip(lam, 0, None)
+    m = 2 * half
+    row = np.concatenate([acov[: half + 1], np.conj(acov[1:half][::-1])])
+    lam = np.clip(scipy.fft.fft(row).real, 0, None)
     if real:
         eps = rng.standard_normal((size, m)) + 1j * rng.standard_normal((size, m))
         out = m * scipy.fft.ifft(np.sqrt(lam / m) * eps, axis=-1)[:, :n]
@@ -43,6 +45,20 @@ def circulant_sample(acov: np.ndarray, n: int, rng: np.random.Generator, size: i
     eps = (rng.standard_normal((size, m)) + 1j * rng.standard_normal((size, m))) / np.sqrt(2)
     # z_j = sum_k sqrt(lam_k / m) eps_k exp(+2 pi i j k / m) gives E[z_j conj z_l] = R(j - l)
     return m * scipy.fft.ifft(np.sqrt(lam / m) * eps, axis=-1)[:, :n]
+
+
+def embedding_autocovariance(acov_fn, n: int, dt_days: float, max_factor: int = 64) -> np.ndarray:
+    """Autocovariance at lags ``0..m/2`` for the smallest embedding ``m = 2^k * 2n`` that is non-negative
+    definite (Dietrich & Newsam 1997); the largest tried when none is."""
+    factor = 1
+    while True:
+        half = n * factor
+        r = np.asarray(acov_fn(np.arange(half + 1) * dt_days), complex)
+        row = np.concatenate([r, np.conj(r[1:half][::-1])])
+        lam = scipy.fft.fft(row).real
+        if lam.min() >= -1e-9 * max(lam.max(), 1e-300) or factor >= max_factor:
+            return r
+        factor *= 2
 
 
 def simulate(model, theta, n: int, dt, *, seed=None, size: int | None = None, latitude=None,
@@ -77,7 +93,6 @@ def simulate(model, theta, n: int, dt, *, seed=None, size: int | None = None, la
     theta = np.asarray(theta, float)
     rng = seed if isinstance(seed, np.random.Generator) else np.random.default_rng(seed)
     dt_days = parse_timedelta_seconds(dt) / SECONDS_PER_DAY
-    lags = np.arange(n + 1) * dt_days
     k = 1 if size is None else size
     lat_series = None
     if latitude is not None:
@@ -91,7 +106,7 @@ def simulate(model, theta, n: int, dt, *, seed=None, size: int | None = None, la
                      latitude_series=lat_series)
     out = np.zeros((k, n), dtype=float if real else complex)
     for comp, sl in family.components():
-        r = comp.autocovariance(theta[sl], lags, ctx)
+        r = embedding_autocovariance(lambda lag, c=comp, s=sl: c.autocovariance(theta[s], lag, ctx), n, dt_days)
         x = circulant_sample(r.real if real else r, n, rng, k, real=real)
         if comp.modulated:
             if lat_series is None:

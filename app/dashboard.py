@@ -89,8 +89,8 @@ class Explorer(param.Parameterized):
         self.bounds = hv.streams.BoundsXY(bounds=None)
         self.bounds.add_subscriber(self._on_bounds)
         self.pointer = hv.streams.PointerXY(x=np.nan, y=np.nan)
-        self.state.param.watch(self._on_settings, ["window_days", "overlap", "model", "estimator",
-                                                    "max_freq", "taper", "inertial", "track"])
+        self.state.param.watch(self._on_settings, ["window_days", "overlap", "model", "estimator", "observation",
+                                                    "auto_band", "max_freq", "taper", "inertial", "track"])
 
     # ------------------------------------------------------------------ data
     def _prepare_points(self):
@@ -159,6 +159,9 @@ class Explorer(param.Parameterized):
             self._window_cache[key] = list(iter_windows(v, st.window_days, st.overlap, MIN_COVERAGE))
         return self._window_cache[key]
 
+    def _band(self, w):
+        return w.auto_max_freq if self.state.auto_band else self.state.max_freq
+
     def current_window(self):
         ws = self.windows()
         if not ws:
@@ -171,13 +174,14 @@ class Explorer(param.Parameterized):
         if w is None:
             return None, None
         st = self.state
-        key = (w.track_id, w.start, w.n_samples, st.model, st.estimator, st.max_freq, st.taper, st.inertial)
+        key = (w.track_id, w.start, w.n_samples, st.model, st.estimator, self._band(w), st.taper, st.inertial,
+               st.observation)
         if key not in self._fit_cache:
             t0 = time.perf_counter()
             lat = w.latitude if st.inertial == "follow-latitude" else w.lat
-            res = fit_series(w.z, w.dt_seconds, model=st.model, estimator=st.estimator, max_freq=st.max_freq,
+            res = fit_series(w.z, w.dt_seconds, model=st.model, estimator=st.estimator, max_freq=self._band(w),
                              latitude=lat, taper=None if st.taper == "none" else st.taper,
-                             inertial_frequency=st.inertial)
+                             inertial_frequency=st.inertial, observation=st.observation)
             self._fit_cache[key] = res
             self.refit_ms = 1e3 * (time.perf_counter() - t0)
         return w, self._fit_cache[key]
@@ -222,8 +226,9 @@ class Explorer(param.Parameterized):
     # ------------------------------------------------------------------ background fits
     def _options(self):
         st = self.state
-        return FitOptions(models=(st.model,), estimator=st.estimator, max_freq=st.max_freq,
-                          taper=None if st.taper == "none" else st.taper, inertial_frequency=st.inertial)
+        return FitOptions(models=(st.model,), estimator=st.estimator, max_freq=None if st.auto_band else st.max_freq,
+                          taper=None if st.taper == "none" else st.taper, inertial_frequency=st.inertial,
+                          observation=st.observation)
 
     def _run_job(self, windows, target, cancel):
         rows = []
@@ -411,7 +416,7 @@ class Explorer(param.Parameterized):
             title=f"{self.state.track}: velocity; {len(ws)} windows of {self.state.window_days:g} days"))
 
     @param.depends("state.track", "state.window", "state.window_days", "state.overlap", "state.model",
-                   "state.estimator", "state.max_freq", "state.taper", "state.inertial", "state.presentation")
+                   "state.estimator", "state.max_freq", "state.auto_band", "state.observation", "state.taper", "state.inertial", "state.presentation")
     def spectrum_view(self):
         w, res = self.fit_current()
         fs = self._fontscale()
@@ -439,10 +444,22 @@ class Explorer(param.Parameterized):
             layers = [band, raw, est]
             if res is not None and res.family is not None and np.all(np.isfinite(res.theta)):
                 ff, ee, inb = res.expected_spectrum()
-                m = (np.sign(ff) == sign) & inb
-                om = np.argsort(np.abs(ff[m]))
-                layers.append(hv.Curve((np.abs(ff[m])[om], ee[m][om]), kd, vd, label="fitted model").opts(
-                    color=COLOURS["model"], line_width=2.2 * fs, line_dash="dashed"))
+                side_sel = np.sign(ff) == sign
+                fa = np.abs(ff[side_sel])
+                om = np.argsort(fa)
+                e_side, in_side = ee[side_sel][om], inb[side_sel][om]
+                layers.append(hv.Curve((fa[om], np.where(in_side, e_side, np.nan)), kd, vd,
+                                       label="fitted model").opts(color=COLOURS["model"], line_width=2.2 * fs,
+                                                                  line_dash="dashed"))
+                layers.append(hv.Curve((fa[om], np.where(in_side, np.nan, e_side)), kd, vd,
+                                       label="model beyond fitted band").opts(color=COLOURS["model"],
+                                                                              line_width=1.2 * fs,
+                                                                              line_dash="dotted"))
+                floor = res.noise_floor(fa[om] * sign)
+                if np.any(floor > 0):
+                    layers.append(hv.Curve((fa[om][floor > 0], floor[floor > 0]), kd, vd,
+                                           label="position-noise floor").opts(color="#8a8a8a", line_width=1.5,
+                                                                              line_dash="dashdot"))
             fc = w.inertial_frequency_cpd
             if np.sign(fc) == sign and abs(fc) > 0:
                 layers.append(hv.VLine(abs(fc)).opts(color=COLOURS["inertial"], line_width=1.5, line_dash="dotdash"))
@@ -457,15 +474,17 @@ class Explorer(param.Parameterized):
                            is not None else 0).opts(color="#888", line_width=1)
             layers.append(top)
             title = "clockwise" if side == "cw" else "counterclockwise"
+            pos = mt.lower[mt.lower > 0]
+            ylim = (float(pos.min()) / 5 if pos.size else 1e-8, float(np.nanmax(mt.upper)) * 3)
             ov = hv.Overlay(layers).opts(
-                hv.opts.Overlay(logx=True, logy=True, responsive=True, height=int(330 * min(fs, 1.3)),
+                hv.opts.Overlay(logx=True, logy=True, responsive=True, height=int(330 * min(fs, 1.3)), ylim=ylim,
                                 title=title, fontscale=fs, legend_position="bottom_left",
                                 show_legend=side == "ccw", invert_xaxis=side == "cw"))
             panels.append(pn.pane.HoloViews(ov, sizing_mode="stretch_width", min_width=300))
         return pn.Row(*panels, sizing_mode="stretch_width")
 
     @param.depends("state.track", "state.window", "state.window_days", "state.overlap", "state.model",
-                   "state.estimator", "state.max_freq", "state.taper", "state.inertial", "refit_ms")
+                   "state.estimator", "state.max_freq", "state.auto_band", "state.observation", "state.taper", "state.inertial", "refit_ms")
     def table_view(self):
         w, res = self.fit_current()
         if res is None:
@@ -543,13 +562,15 @@ class Explorer(param.Parameterized):
     # ------------------------------------------------------------------ layout
     def controls(self):
         st = self.state
-        w = pn.Param(st, parameters=["window_days", "overlap", "model", "estimator", "max_freq", "taper",
-                                     "inertial"],
+        w = pn.Param(st, parameters=["window_days", "overlap", "model", "estimator", "observation", "auto_band",
+                                     "max_freq", "taper", "inertial"],
                      widgets={"window_days": {"type": pn.widgets.FloatSlider, "name": "Window length (days)",
                                               "throttled": True},
                               "overlap": {"type": pn.widgets.FloatSlider, "name": "Overlap", "throttled": True},
                               "model": {"type": pn.widgets.Select, "name": "Model family"},
                               "estimator": {"type": pn.widgets.RadioButtonGroup, "name": "Estimator"},
+                              "observation": {"type": pn.widgets.Select, "name": "Observation model"},
+                              "auto_band": {"type": pn.widgets.Checkbox, "name": "Automatic fitted band"},
                               "max_freq": {"type": pn.widgets.FloatSlider, "name": "Max fitted frequency (cpd)",
                                            "throttled": True},
                               "taper": {"type": pn.widgets.RadioButtonGroup, "name": "Taper"},

@@ -8,7 +8,8 @@ import param
 from driftspec.analysis.models import FAMILIES
 
 #: parameters written to and read from the URL
-URL_PARAMS = ("track", "window", "window_days", "overlap", "model", "estimator", "max_freq", "taper",
+URL_PARAMS = ("track", "window", "window_days", "overlap", "model", "estimator", "observation", "auto_band",
+              "max_freq", "taper",
               "inertial", "color_by", "region", "map_param", "bin_deg", "presentation", "theme")
 
 
@@ -21,8 +22,11 @@ class ExplorerState(param.Parameterized):
     overlap = param.Number(default=0.5, bounds=(0.0, 0.9), step=0.05, doc="Overlap of consecutive windows")
     model = param.Selector(default="matern+inertial", objects=list(FAMILIES), doc="Model family")
     estimator = param.Selector(default="debiased", objects=["debiased", "whittle", "exact"])
+    observation = param.Selector(default="differenced+noise", objects=["differenced+noise", "differenced", "none"],
+                                 doc="Observation model of the velocities (see the methods notes)")
+    auto_band = param.Boolean(default=True, doc="Fit up to the window's default band (from its fix interval)")
     max_freq = param.Number(default=6.0, bounds=(0.25, 24.0), step=0.25,
-                            doc="Highest fitted frequency magnitude, cpd")
+                            doc="Highest fitted frequency magnitude, cpd (when the automatic band is off)")
     taper = param.Selector(default="none", objects=["none", "hann", "dpss"])
     inertial = param.Selector(default="free", objects=["free", "follow-latitude"],
                               doc="Inertial frequency: fitted constant, or following the latitude")
