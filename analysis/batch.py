@@ -54,7 +54,9 @@ class FitOptions:
 
 
 def column_units(models: Iterable[str], inertial_frequency: str = "free", observation: str = "none") -> dict:
-    units = dict(COLUMN_UNITS)
+    from .anisotropy import ELLIPSE_UNITS
+
+    units = {**COLUMN_UNITS, **ELLIPSE_UNITS}
     for m in models:
         for p in observed(get_family(m, inertial_frequency), observation).parameters:
             units[p.name] = p.unit
@@ -64,10 +66,13 @@ def column_units(models: Iterable[str], inertial_frequency: str = "free", observ
 
 def fit_window(w: Window, opts: FitOptions) -> list[dict]:
     """One row per model for one window; a failure is a row with a status, never an exception."""
+    from .anisotropy import variance_ellipse
+
     rows = []
     base = {"track_id": w.track_id, "window_start": w.start, "window_end": w.end, "lat": w.lat, "lon": w.lon,
             "n_samples": w.n_samples, "coverage": w.coverage, "inertial_frequency_local": w.inertial_frequency_cpd,
-            "max_freq": _band_for(w, opts) if _band_for(w, opts) is not None else 0.5 * 86400 / w.dt_seconds}
+            "max_freq": _band_for(w, opts) if _band_for(w, opts) is not None else 0.5 * 86400 / w.dt_seconds,
+            **variance_ellipse(w.z)}
     for m in opts.models:
         lat = w.latitude if opts.inertial_frequency == "follow-latitude" else w.lat
         try:

@@ -24,7 +24,8 @@ from .errors import InputError
 
 #: columns that are never gridded (identifiers, bookkeeping)
 NOT_GRIDDED = {"track_id", "window_start", "window_end", "lat", "lon", "model", "estimator", "status",
-               "message", "n_samples", "n_valid", "n_freq", "coverage", "loglik", "aic"}
+               "message", "n_samples", "n_valid", "n_freq", "coverage", "loglik", "aic", "max_freq",
+               "inertial_frequency_local"}
 
 
 def default_params(fits: pd.DataFrame) -> list[str]:

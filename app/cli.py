@@ -106,6 +106,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", type=Path, required=True, help="output netCDF")
     p.add_argument("--png", type=Path, help="also write a quick-look map")
 
+    p = sub.add_parser("dispersion", help="observed single-particle dispersion and diffusivity in a region")
+    p.add_argument("input", help="CSV, Parquet or CF trajectory netCDF")
+    p.add_argument("--region", help="LON0,LAT0,LON1,LAT1 (default: everywhere)")
+    p.add_argument("--fits", help="fits table, for the model-based diffusivity of the same region")
+    p.add_argument("--max-lag-days", type=float, default=25.0)
+    p.add_argument("--plateau", default="10:20", metavar="FROM:TO", help="lags (days) of the plateau")
+    p.add_argument("--bootstrap", type=int, default=200, help="bootstrap replicates over tracks")
+    p.add_argument("--out", type=Path, help="kappa(tau) table (.csv)")
+    p.add_argument("--png", type=Path, help="figure of kappa(tau) with the plateau")
+    _add_prep_options(p)
+
     p = sub.add_parser("serve", help="open the dashboard in a browser (default: the bundled demo data)")
     p.add_argument("input", nargs="?", help="fixes to explore (default: demo data)")
     p.add_argument("--fits", help="fits table to map")
@@ -203,6 +214,45 @@ def cmd_map(args):
     return 0
 
 
+def _floats(text, n, what):
+    try:
+        vals = [float(x) for x in text.replace(":", ",").split(",")]
+    except ValueError:
+        vals = []
+    if len(vals) != n:
+        raise SystemExit(f"driftspec: {what} expects {n} numbers, got {text!r}")
+    return vals
+
+
+def cmd_dispersion(args):
+    from driftspec.analysis.batch import read_table
+    from driftspec.analysis.dispersion import model_diffusivity, single_particle_dispersion
+    from driftspec.analysis.pipeline import load_velocities
+
+    region = _floats(args.region, 4, "--region") if args.region else None
+    plateau = tuple(_floats(args.plateau, 2, "--plateau"))
+    vel, report, _ = load_velocities(args.input, _prep_options(args))
+    try:
+        res = single_particle_dispersion(vel, region, args.max_lag_days, plateau_lags=plateau,
+                                         n_boot=args.bootstrap)
+    except ValueError as exc:
+        raise SystemExit(f"driftspec: {exc}") from exc
+    model_k = None
+    line = (f"observed plateau ({plateau[0]:g}-{plateau[1]:g} days): {res.plateau:.0f} m2/s "
+            f"[{res.plateau_lower:.0f}, {res.plateau_upper:.0f}] from {res.n_tracks} track segments")
+    if args.fits:
+        model_k, n = model_diffusivity(read_table(args.fits), region)
+        line += f"; model-based (median of {n} ok fits): {model_k:.0f} m2/s"
+    print(line)
+    if args.out:
+        res.to_frame().to_csv(args.out, index=False)
+    if args.png:
+        from driftspec.app.figures import dispersion_figure
+
+        dispersion_figure(res, args.png, model_k)
+    return 0
+
+
 def cmd_serve(args):
     from driftspec.app.server import serve
 
@@ -210,7 +260,8 @@ def cmd_serve(args):
                  extra_origins=args.allow_origin)
 
 
-COMMANDS = {"demo": cmd_demo, "qc": cmd_qc, "fit": cmd_fit, "map": cmd_map, "serve": cmd_serve}
+COMMANDS = {"demo": cmd_demo, "qc": cmd_qc, "fit": cmd_fit, "map": cmd_map, "dispersion": cmd_dispersion,
+            "serve": cmd_serve}
 
 
 def main(argv=None) -> int:

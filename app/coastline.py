@@ -8,12 +8,15 @@ them in ``data/shoreline/``.
 from __future__ import annotations
 
 import functools
+import logging
 from pathlib import Path
 
 import numpy as np
 
 DATA_DIR = Path(__file__).resolve().parent / "data" / "shoreline"
 SHAPEFILE = DATA_DIR / "shapefiles" / "gshhs" / "c" / "GSHHS_c_L1.shp"
+# two rings of the coarse set are stored as holes only; the reader says so on every read
+logging.getLogger("shapefile").setLevel(logging.ERROR)
 
 
 def configure_cartopy() -> None:
