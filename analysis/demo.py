@@ -118,21 +118,20 @@ def generate_demo(n_tracks: int = 60, days: float = 180.0, seed: int = 2031, sta
     z_in = np.empty((n_tracks, n), complex)
     for k in range(n_tracks):
         th = [truth["matern_variance"][k], truth["matern_alpha"][k], truth["matern_damping"][k]]
-        z_bg[k] = circulant_sample(embedding_autocovariance(lambda lag: matern.autocovariance(th, lag), n,
-                                                            dt_days), n, rng)[0]
         th_i = [truth["inertial_variance"][k], 0.0, truth["inertial_damping"][k]]
-        z_in[k] = circulant_sample(embedding_autocovariance(lambda lag: inertial.autocovariance(th_i, lag), n,
-                                                            dt_days), n, rng)[0]
+        for out, fam, theta in ((z_bg, matern, th), (z_in, inertial, th_i)):
+            acov = embedding_autocovariance(lambda lag, f=fam, t=theta: f.autocovariance(t, lag), n, dt_days)
+            out[k] = circulant_sample(acov, n, rng)[0]
     lat = np.empty((n_tracks, n))
     lon = np.empty((n_tracks, n))
-    la, lo = lat0.copy(), lon0.copy()
+    mod = np.zeros((n_tracks, n), complex)
     # first pass: mean flow + background; the inertial part follows the latitude of that path
     for pass_ in range(2):
         la, lo = lat0.copy(), lon0.copy()
         for i in range(n):
             lat[:, i], lon[:, i] = la, lo
             um, vm = mean_velocity(la, lo)
-            zi = z_in[:, i] * (mod[:, i] if pass_ else 0.0)
+            zi = z_in[:, i] * mod[:, i]
             u = um + z_bg[:, i].real + zi.real
             v = vm + z_bg[:, i].imag + zi.imag
             la = la + np.rad2deg(v * dt_s / EARTH_RADIUS_M)

@@ -46,6 +46,9 @@ CAUTION = (
 COLOURS = {"cw": "#b5522b", "ccw": "#1f7a7a", "model": "#20203a", "band": "#9aa0b4", "track": "#ff2d7a",
            "tide": "#7a6a00", "inertial": "#6a2fb5"}
 MIN_COVERAGE = 0.5
+#: the state parameters a window fit depends on
+FIT_SETTINGS = ("state.track", "state.window", "state.window_days", "state.overlap", "state.model", "state.estimator",
+                "state.max_freq", "state.auto_band", "state.observation", "state.taper", "state.inertial")
 
 
 class Explorer(param.Parameterized):
@@ -415,8 +418,7 @@ class Explorer(param.Parameterized):
             xlabel="time (UTC)", ylabel="velocity (m/s)",
             title=f"{self.state.track}: velocity; {len(ws)} windows of {self.state.window_days:g} days"))
 
-    @param.depends("state.track", "state.window", "state.window_days", "state.overlap", "state.model",
-                   "state.estimator", "state.max_freq", "state.auto_band", "state.observation", "state.taper", "state.inertial", "state.presentation")
+    @param.depends(*FIT_SETTINGS, "state.presentation")
     def spectrum_view(self):
         w, res = self.fit_current()
         fs = self._fontscale()
@@ -483,8 +485,7 @@ class Explorer(param.Parameterized):
             panels.append(pn.pane.HoloViews(ov, sizing_mode="stretch_width", min_width=300))
         return pn.Row(*panels, sizing_mode="stretch_width")
 
-    @param.depends("state.track", "state.window", "state.window_days", "state.overlap", "state.model",
-                   "state.estimator", "state.max_freq", "state.auto_band", "state.observation", "state.taper", "state.inertial", "refit_ms")
+    @param.depends(*FIT_SETTINGS, "refit_ms")
     def table_view(self):
         w, res = self.fit_current()
         if res is None:

@@ -13,7 +13,6 @@ import time
 from urllib.parse import urlencode
 
 import pytest
-
 from conftest import chromium_path
 
 pytestmark = pytest.mark.browser

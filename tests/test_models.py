@@ -5,9 +5,9 @@ import pytest
 from scipy.integrate import quad
 from scipy.special import gamma
 
+from driftspec.analysis.likelihood import expected_periodogram, prepare_window
 from driftspec.analysis.models import Inertial, Matern, get_family, matern_correlation
 from driftspec.analysis.models.base import FitContext
-from driftspec.analysis.likelihood import expected_periodogram, prepare_window
 
 CTX = FitContext(dt_days=1 / 24, latitude=30.0, inertial_frequency_cpd=-1.0027)
 

@@ -42,7 +42,9 @@ def test_averaging_quadrature_against_adaptive_quad(nu, lam):
     got = comp.autocovariance(theta, lags, CTX).real
     h = 2 / 24.0
     for j, tau in enumerate(lags):
-        f = lambda s: (h - abs(s)) / h**2 * fam.autocovariance(theta, np.array([abs(tau + s)]))[0].real  # noqa: E731
+        def f(s, tau=tau):
+            return (h - abs(s)) / h**2 * fam.autocovariance(theta, np.array([abs(tau + s)]))[0].real
+
         pts = [p for p in (-tau, 0.0) if -h < p < h]
         ref = quad(f, -h, h, points=pts or None, limit=400, epsabs=1e-13, epsrel=1e-11)[0]
         assert got[j] == pytest.approx(ref, rel=2e-5), (j, got[j], ref)

@@ -100,7 +100,7 @@ def test_dispersion_plateau_and_model_diffusivity_match_taylor():
     assert res.plateau_lower < kappa_true < res.plateau_upper
     # model-based: fits of 60-day windows
     rows = []
-    for tid, g in vel.groupby("id"):
+    for _, g in vel.groupby("id"):
         zz = (g["u"] + 1j * g["v"]).to_numpy()[:1440]
         r = fit_series(zz, HOUR, model="matern")
         rows.append({"lat": 20.0, "lon": -140.0, "status": r.status, "diffusivity": r.diffusivity})

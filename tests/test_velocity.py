@@ -6,8 +6,8 @@ import pytest
 from pyproj import Geod
 
 from driftspec.analysis.geodesy import displacement_east_north_m, great_circle_distance_m
-from driftspec.analysis.qc import clean_fixes
 from driftspec.analysis.io import read_fixes
+from driftspec.analysis.qc import clean_fixes
 from driftspec.analysis.resample import regular_grid
 from driftspec.analysis.velocity import add_velocity
 
