@@ -13,11 +13,13 @@ autocovariance is the model's averaged against a triangle of half-width ``H = 2 
     R_obs(tau) = int_{-H}^{H} (H - |s|) / H^2 * R(tau + s) ds
 
 (the forward difference ``(x(t + D) - x(t)) / D`` gives a triangle of half-width ``H = D``). The
-integral is evaluated on the sample grid: for lags beyond ``H``, where ``R`` is smooth over the
-triangle, by Simpson's rule on half-sample nodes (the model is evaluated once on the sample grid and
-once on the half-sample grid; error ``O((lambda D)^4)``, below 1e-5 relative for ``lambda D <= 0.1``);
-for the few lags within ``H`` of zero, where the Matérn autocovariance has its cusp, by 16-point
-Gauss-Legendre rules on each unit sub-interval, split where the cusp falls. The quadrature error is
+integral is evaluated on the window's regular lag grid: for the few lags within ``H`` of zero, where the
+Matérn autocovariance has its cusp, by 16-point Gauss-Legendre rules on each unit sub-interval (split
+where the cusp falls); for lags up to 24 samples by Simpson's rule on half-sample nodes (error
+``O((lambda D)^4)``); beyond, where ``R`` is smooth on the scale of the triangle, by the rule on integer
+nodes ``-h..h`` that matches the triangle's moments up to degree ``2h`` (error ``O((D / tau)^(2h+2))``).
+So each evaluation costs the model on about ``N + 50`` lags, not ``2N``: with the observation model a
+fit costs under twice the plain fit (see ``benchmarks/bench_fit.py``). The quadrature error is
 checked against adaptive quadrature (``scipy.integrate.quad``) in the tests. A latitude-following
 (modulated) component is averaged as an oscillation at the window's mean inertial frequency.
 
@@ -59,6 +61,8 @@ OBSERVATIONS = ("none", "differenced", "differenced+noise")
 #: fraction of the Nyquist frequency fitted by default, per velocity operator (see module docstring)
 DEFAULT_BAND_FRACTION = {"central": 0.75, "forward": 1.0, "none": 1.0}
 _GL_NODES, _GL_WEIGHTS = np.polynomial.legendre.leggauss(16)
+#: from this lag on (in samples) the averaged autocovariance uses integer nodes only (error O((D/tau)^(2h+2)))
+_FAR_LAG = 24
 
 
 def default_max_freq(dt_days: float, operator: str = "central", observation: str = "differenced+noise"):
@@ -110,6 +114,19 @@ def _simpson_weights(h: int) -> tuple[np.ndarray, np.ndarray]:
     return s, w
 
 
+def _moment_weights(h: int) -> np.ndarray:
+    """Weights on nodes -h..h (samples) matching the triangle's even moments 0, 2, .., 2h exactly.
+
+    The triangle ``(h - |s|)/h^2`` has moments ``int s^(2k) = 2 h^(2k) / ((2k + 1)(2k + 2))``.
+    """
+    nodes = np.arange(-h, h + 1, dtype=float)
+    k = np.arange(h + 1)
+    moments = 2.0 * float(h) ** (2 * k) / ((2 * k + 1) * (2 * k + 2))
+    a = np.array([[np.sum(np.where(np.abs(nodes) == m, nodes ** (2 * kk), 0.0)) for m in range(h + 1)] for kk in k])
+    w_half = np.linalg.solve(a, moments)  # weight of node 0, of +-1, ..., of +-h (per node)
+    return np.array([w_half[abs(int(x))] for x in nodes])
+
+
 class _AveragedComponent(ModelFamily):
     """One model component seen through the difference operator."""
 
@@ -120,19 +137,22 @@ class _AveragedComponent(ModelFamily):
         self.parameters = base.parameters
         self.modulated = base.modulated
         self._s, self._w = _simpson_weights(op.half_width)
+        self._w_int = _moment_weights(op.half_width)
 
     def _raw(self, theta, x_days, ctx, jac):
         """Base autocovariance at arbitrary signed lags (R(-x) = conj R(x)), shifted to the window's mean
         inertial frequency for a modulated component."""
-        ax = np.abs(x_days)
+        neg = x_days < 0
+        any_neg = bool(neg.any())
+        ax = np.abs(x_days) if any_neg else x_days
         if jac:
             r, j = self.base.autocovariance_jacobian(theta, ax, ctx)
         else:
             r, j = self.base.autocovariance(theta, ax, ctx), None
-        neg = x_days < 0
-        r = np.where(neg, np.conj(r), r)
-        if j is not None:
-            j = np.where(neg[None, :], np.conj(j), j)
+        if any_neg:
+            r = np.where(neg, np.conj(r), r)
+            if j is not None:
+                j = np.where(neg[None, :], np.conj(j), j)
         if self.modulated and ctx.inertial_frequency_cpd is not None:
             rot = np.exp(2j * np.pi * ctx.inertial_frequency_cpd * x_days)
             r = r * rot
@@ -144,36 +164,44 @@ class _AveragedComponent(ModelFamily):
         dt = ctx.dt_days
         n = len(lags_days)
         h = self.op.half_width
-        # Simpson on the half-sample grid for lags beyond h: one evaluation on k/2 for k = 2h .. 2(n-1) + 2h
-        k = np.arange(0, 2 * (n - 1) + 2 * h + 1)
-        grid = k * dt / 2.0
-        r, j = self._raw(theta, grid, ctx, jac)
-        out = np.zeros(n, complex)
-        jout = np.zeros((len(theta), n), complex) if jac else None
-        idx = np.arange(n)
-        for off, w in zip(self._s, self._w):
-            pos = 2 * idx + int(round(2 * off))
-            ok = pos >= 0
-            out[ok] += w * r[pos[ok]]
-            if jac:
-                jout[:, ok] += w * j[:, pos[ok]]
-        # lags within h of zero: Gauss-Legendre on unit sub-intervals, where the cusp at 0 falls on an edge
-        near = np.arange(min(h + 1, n))
-        sub = np.arange(-h, h)
-        u = 0.5 * (_GL_NODES + 1.0)  # nodes on (0, 1)
-        s = (sub[:, None] + u[None, :]).ravel()  # offsets in samples
-        wq = (0.5 * _GL_WEIGHTS[None, :] * np.ones((len(sub), 1))).ravel() * (h - np.abs(s)) / h**2
-        x = (near[:, None] + s[None, :]).ravel() * dt
-        rq, jq = self._raw(theta, x, ctx, jac)
-        out[near] = (rq.reshape(len(near), -1) * wq).sum(axis=1)
-        if jac:
-            jout[:, near] = (jq.reshape(len(theta), len(near), -1) * wq).sum(axis=2)
+        n_mid = min(n, _FAR_LAG)  # lags h < j < n_mid: Simpson on half samples; j >= n_mid: integer nodes
+        near, x_near, wq = self._near_rule(min(h + 1, n), dt)
+        x_int = np.arange(n + h) * dt
+        x_half = (np.arange(2 * (h + 1 - h), 2 * (n_mid - 1 + h) + 1) / 2.0) * dt if n_mid > h + 1 else np.zeros(0)
+        r_all, j_all = self._raw(theta, np.concatenate([x_int, x_half, x_near]), ctx, jac)
+        a, b = x_int.size, x_int.size + x_half.size
+        rows = [r_all[None, :]] + ([j_all] if jac else [])
+        stack = np.concatenate(rows, axis=0)  # (1 + p, points): value and derivatives together
+        v_int, v_half, v_near = stack[:, :a], stack[:, a:b], stack[:, b:]
+        out = np.zeros((stack.shape[0], n), complex)
+        # far lags: the moment-matched rule on integer nodes j-h .. j+h (exact for polynomials of degree 2h)
+        if n > n_mid:
+            for m, w in zip(range(-h, h + 1), self._w_int):
+                out[:, n_mid:] += w * v_int[:, n_mid + m:n + m]
+        # middle lags: Simpson on half samples; v_half[q - 2] is the value at q / 2 samples
+        if n_mid > h + 1:
+            mids = np.arange(h + 1, n_mid)
+            idx = (2 * mids - 2 * h - 2)[:, None] + np.arange(4 * h + 1)[None, :]
+            out[:, mids] = v_half[:, idx] @ self._w
+        # lags within h of zero: Gauss-Legendre on unit sub-intervals, the cusp at 0 on their edges
+        out[:, near] = (v_near.reshape(stack.shape[0], len(near), -1) * wq).sum(axis=2)
         if self.modulated and ctx.inertial_frequency_cpd is not None:
-            back = np.exp(-2j * np.pi * ctx.inertial_frequency_cpd * np.asarray(lags_days))
-            out *= back
-            if jac:
-                jout *= back
-        return out, jout
+            out *= np.exp(-2j * np.pi * ctx.inertial_frequency_cpd * np.asarray(lags_days))[None, :]
+        return out[0], (out[1:] if jac else None)
+
+    def _near_rule(self, n_near, dt):
+        """Lags 0..n_near-1, their Gauss-Legendre abscissae (days) and weights (cached per window step)."""
+        key = (n_near, dt)
+        if getattr(self, "_near_key", None) != key:
+            h = self.op.half_width
+            near = np.arange(n_near)
+            sub = np.arange(-h, h)
+            u = 0.5 * (_GL_NODES + 1.0)  # nodes on (0, 1)
+            s = (sub[:, None] + u[None, :]).ravel()  # offsets in samples
+            wq = np.tile(0.5 * _GL_WEIGHTS, len(sub)) * (h - np.abs(s)) / h**2
+            x = (near[:, None] + s[None, :]).ravel() * dt
+            self._near_key, self._near_val = key, (near, x, wq)
+        return self._near_val
 
     def autocovariance(self, theta, lags_days, context):
         return self._apply(np.asarray(theta, float), np.asarray(lags_days, float), context, False)[0]
