@@ -28,9 +28,10 @@ def east_north(lat_deg, lon_deg, vec) -> tuple[np.ndarray, np.ndarray]:
 
 
 def great_circle_distance_m(lat1, lon1, lat2, lon2):
-    """Great-circle distance in metres (haversine-free, via the chord; exact on the sphere)."""
-    chord = np.linalg.norm(unit_vectors(lat2, lon2) - unit_vectors(lat1, lon1), axis=-1)
-    return 2.0 * EARTH_RADIUS_M * np.arcsin(np.clip(chord / 2.0, 0.0, 1.0))
+    """Great-circle distance in metres (haversine formula; exact on the sphere)."""
+    p1, p2 = np.deg2rad(lat1), np.deg2rad(lat2)
+    a = np.sin(0.5 * (p2 - p1)) ** 2 + np.cos(p1) * np.cos(p2) * np.sin(0.5 * np.deg2rad(np.subtract(lon2, lon1))) ** 2
+    return 2.0 * EARTH_RADIUS_M * np.arcsin(np.sqrt(np.clip(a, 0.0, 1.0)))
 
 
 def displacement_east_north_m(lat0, lon0, lat1, lon1, lat_ref=None, lon_ref=None):

@@ -83,25 +83,43 @@ def _parse_times(values) -> pd.Series:
     return t.where(inside).astype("datetime64[ns]")
 
 
+def _is_text(series: pd.Series) -> bool:
+    return series.dtype == object or pd.api.types.is_string_dtype(series.dtype)
+
+
+def _blank(series: pd.Series) -> np.ndarray:
+    """Missing, or an empty/blank string."""
+    missing = series.isna().to_numpy().copy()
+    if _is_text(series):
+        missing |= (series.astype("string").str.strip() == "").fillna(True).to_numpy()
+    return missing
+
+
 def _coerce(df: pd.DataFrame) -> pd.DataFrame:
-    """Parse columns; keep every row; record which raw values were present but unparseable."""
+    """Parse columns; keep every row; record which raw values were present but unparseable.
+
+    Typed columns (as Parquet and netCDF deliver them) skip the string handling that CSV needs.
+    """
     out = pd.DataFrame(index=np.arange(len(df)))
     ids = df["id"]
-    id_missing = ids.isna() | (ids.astype("string").str.strip() == "")
-    out["id"] = ids.astype("string").str.strip().where(~id_missing, None).astype(object)
+    id_missing = _blank(ids)
+    id_str = ids.astype("string").str.strip() if _is_text(ids) else ids.astype(str)
+    out["id"] = np.where(id_missing, None, id_str.to_numpy(dtype=object, na_value=None))
     raw_time = df["time"]
-    time_missing = raw_time.isna() | (raw_time.astype("string").str.strip() == "")
+    time_missing = _blank(raw_time)
     out["time"] = _parse_times(raw_time.to_numpy())
-    out["time_unparseable"] = (~time_missing.to_numpy()) & out["time"].isna().to_numpy()
+    out["time_unparseable"] = (~time_missing) & out["time"].isna().to_numpy()
     bad_value = np.zeros(len(df), dtype=bool)
     for col in ("lat", "lon", *OPTIONAL_NUMERIC):
         if col not in df:
             continue
         raw = df[col]
+        if pd.api.types.is_numeric_dtype(raw.dtype) and not pd.api.types.is_bool_dtype(raw.dtype):
+            out[col] = raw.to_numpy(dtype=float, na_value=np.nan)
+            continue
         num = pd.to_numeric(raw, errors="coerce").astype(float)
         if col in ("lat", "lon"):
-            present = ~(raw.isna() | (raw.astype("string").str.strip() == ""))
-            bad_value |= present.to_numpy() & num.isna().to_numpy()
+            bad_value |= (~_blank(raw)) & num.isna().to_numpy()
         out[col] = num.to_numpy()
     out["value_unparseable"] = bad_value
     out["row"] = np.arange(len(df), dtype=np.int64)

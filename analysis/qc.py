@@ -114,11 +114,11 @@ def clean_fixes(raw: pd.DataFrame, max_speed: float = DEFAULT_MAX_SPEED, source:
     if not np.isfinite(max_speed) or max_speed <= 0:
         raise ValueError(f"max_speed must be positive, got {max_speed}")
     n_in = len(raw)
-    reason = np.full(n_in, "", dtype=object)
+    code = {name: k + 1 for k, name in enumerate(REASONS)}  # 0 = kept
+    reason = np.zeros(n_in, dtype=np.int8)
 
     def mark(mask, name):
-        sel = mask & (reason == "")
-        reason[sel] = name
+        reason[mask & (reason == 0)] = code[name]
 
     missing = (raw["id"].isna().to_numpy() | (raw["time"].isna().to_numpy() & ~raw["time_unparseable"])
                | (raw["lat"].isna().to_numpy() & ~raw["value_unparseable"])
@@ -133,18 +133,23 @@ def clean_fixes(raw: pd.DataFrame, max_speed: float = DEFAULT_MAX_SPEED, source:
     # any NaN left in lat/lon at this point was counted above; guard anyway
     mark(np.isnan(lat) | np.isnan(lon), "missing_value")
 
-    ok = reason == ""
+    ok = reason == 0
     work = raw.loc[ok].copy()
     work["lon"] = wrap_lon(work["lon"].to_numpy())
-    order = np.lexsort((work["time"].to_numpy(), work["id"].to_numpy().astype(str)))
+    codes, uniques = pd.factorize(work["id"].to_numpy(), sort=True)
+    t_ns = work["time"].to_numpy().astype("datetime64[ns]").astype(np.int64)
+    order = np.lexsort((t_ns, codes))
     reordered = int(np.count_nonzero(order != np.arange(len(order))))
     work = work.iloc[order]
-    dup = work.duplicated(["id", "time"], keep="first").to_numpy()
-    reason[work["row"].to_numpy()[dup]] = "duplicate_time"
+    codes, t_ns = codes[order], t_ns[order]
+    dup = np.zeros(len(work), dtype=bool)
+    dup[1:] = (codes[1:] == codes[:-1]) & (t_ns[1:] == t_ns[:-1])
+    reason[work["row"].to_numpy()[dup]] = code["duplicate_time"]
     work = work.loc[~dup]
+    codes, t_ns = codes[~dup], t_ns[~dup]
 
-    ids = work["id"].to_numpy().astype(str)
-    t_s = work["time"].to_numpy().astype("datetime64[ns]").astype(np.int64) / 1e9
+    ids = codes
+    t_s = t_ns / 1e9
     la, lo = work["lat"].to_numpy(float), work["lon"].to_numpy(float)
     keep = np.ones(len(work), dtype=bool)
     for _ in range(20):  # each pass removes isolated spikes; clusters take a few passes
@@ -155,10 +160,11 @@ def clean_fixes(raw: pd.DataFrame, max_speed: float = DEFAULT_MAX_SPEED, source:
         if not flags.any():
             break
         keep[idx[flags]] = False
-    reason[work["row"].to_numpy()[~keep]] = "speed_spike"
+    reason[work["row"].to_numpy()[~keep]] = code["speed_spike"]
     fixes = work.loc[keep].drop(columns=["time_unparseable", "value_unparseable"]).reset_index(drop=True)
 
-    dropped = {r: int(np.count_nonzero(reason == r)) for r in REASONS}
+    counts = np.bincount(reason, minlength=len(REASONS) + 1)
+    dropped = {r: int(counts[code[r]]) for r in REASONS}
     per_track = _per_track(raw, reason, fixes)
     report = QCReport(n_in, len(fixes), dropped, reordered, float(max_speed), per_track, source)
     assert report.kept_rows + sum(dropped.values()) == n_in
@@ -167,10 +173,12 @@ def clean_fixes(raw: pd.DataFrame, max_speed: float = DEFAULT_MAX_SPEED, source:
 
 def _per_track(raw, reason, fixes) -> pd.DataFrame:
     ids = raw["id"].fillna("<missing id>").astype(str).to_numpy()
-    table = pd.crosstab(ids, reason).reindex(columns=["", *REASONS], fill_value=0)
-    table = table.rename(columns={"": "kept_rows"})
-    table.insert(0, "input_rows", table.sum(axis=1))
-    table.index.name = "id"
+    codes, uniques = pd.factorize(ids, sort=True)
+    names = ["", *REASONS]
+    counts = np.bincount(codes * len(names) + reason.astype(np.int64),
+                         minlength=len(uniques) * len(names)).reshape(-1, len(names))
+    table = pd.DataFrame(counts, columns=["kept_rows", *REASONS])
+    table.insert(0, "input_rows", counts.sum(axis=1))
+    table.insert(0, "id", uniques)
     span = fixes.groupby("id")["time"].agg(first_time="min", last_time="max")
-    table = table.join(span, how="left").reset_index()
-    return table
+    return table.merge(span, left_on="id", right_index=True, how="left")
