@@ -69,6 +69,7 @@ class Explorer(param.Parameterized):
     track_fits = param.DataFrame(default=None, allow_None=True)
     all_fits = param.DataFrame(default=None, allow_None=True)
     refit_ms = param.Number(default=np.nan)
+    dispersion = param.Parameter(default=None, doc="Observed dispersion in the region (DispersionResult)")
 
     def __init__(self, velocities: pd.DataFrame, fits: pd.DataFrame | None = None,
                  state: ExplorerState | None = None, title: str = "driftspec", **params):
@@ -376,7 +377,7 @@ class Explorer(param.Parameterized):
         x, y = self.pointer.x, self.pointer.y
         if self.tree is None or x is None or not np.isfinite(x):
             return pn.pane.Markdown("Hover over the map for track, time and value; click a track to select it.",
-                                    css_classes=["ds-readout"])
+                                    css_classes=["ds-readout"], margin=(10, 10, 4, 10))
         dist, i = self.tree.query([x, y])
         p = self.points.iloc[int(i)]
         col = self.state.color_by if self.state.color_by in self.points else "speed"
@@ -384,7 +385,7 @@ class Explorer(param.Parameterized):
         lonlat = ccrs.PlateCarree().transform_point(x, y, self.crs)
         return pn.pane.Markdown(
             f"**{self.track_ids[int(p['track_code'])]}** · {when} UTC · {col} = {p[col]:.4g} · "
-            f"{lonlat[1]:.2f}°N {lonlat[0]:.2f}°E", css_classes=["ds-readout"])
+            f"{lonlat[1]:.2f}°N {lonlat[0]:.2f}°E", css_classes=["ds-readout"], margin=(10, 10, 4, 10))
 
     @param.depends("state.track", "state.window", "state.window_days", "state.overlap", "state.model",
                    "state.estimator")
@@ -557,8 +558,74 @@ class Explorer(param.Parameterized):
                                         responsive=True, min_height=380, title="ok fits per bin")
         xr_ = (xe.min(), xe.max())
         yr_ = (ye.min(), ye.max())
-        return pn.Row((mesh * coast).opts(xlim=xr_, ylim=yr_), (cnt * coast).opts(xlim=xr_, ylim=yr_),
+        left = mesh * coast
+        if {"cov_uu", "cov_vv", "cov_uv"} <= set(fits.columns):
+            left = left * self._ellipses(shifted, b, (la0, la1), (lo0, lo1), xe, ye)
+        return pn.Row(left.opts(xlim=xr_, ylim=yr_), (cnt * coast).opts(xlim=xr_, ylim=yr_),
                       sizing_mode="stretch_width")
+
+    def _ellipses(self, fits, b, lat_range, lon_range, xe, ye):
+        """Variance ellipses of each bin (mean covariance of its windows), scaled so the largest fills a bin."""
+        from driftspec.analysis.anisotropy import ellipse_from_covariance
+
+        cov = grid_fits(fits, ["cov_uu", "cov_vv", "cov_uv"], b, "mean", lat_range=(max(lat_range[0], -90),
+                        min(lat_range[1], 90)), lon_range=lon_range)
+        e = ellipse_from_covariance(cov["cov_uu"].values, cov["cov_vv"].values, cov["cov_uv"].values)
+        major = np.sqrt(e["var_major"])
+        if not np.isfinite(major).any():
+            return hv.Overlay([])
+        cell = min(np.min(np.diff(xe)), np.min(np.abs(np.diff(ye))))
+        scale = 0.9 * cell / np.nanmax(major)
+        shapes = []
+        for i in range(major.shape[0]):
+            for j in range(major.shape[1]):
+                if cov["count"].values[i, j] == 0 or not np.isfinite(major[i, j]):
+                    continue
+                cx, cy = 0.5 * (xe[j] + xe[j + 1]), 0.5 * (ye[i] + ye[i + 1])
+                shapes.append(hv.Ellipse(cx, cy, (scale * major[i, j], scale * np.sqrt(e["var_minor"][i, j])),
+                                         orientation=np.deg2rad(e["ellipse_angle_deg"][i, j])))
+        return hv.Overlay(shapes).opts(hv.opts.Ellipse(color="#ff2d7a", line_width=1.5))
+
+    def compute_dispersion(self, *_):
+        from driftspec.analysis.dispersion import single_particle_dispersion
+
+        region = self.state.region or None
+        try:
+            self.dispersion = single_particle_dispersion(self.vel, region, max_lag_days=20, plateau_lags=(8, 16),
+                                                         n_boot=100)
+            self.status_text = f"dispersion: {self.dispersion.n_tracks} track segments"
+        except ValueError as exc:
+            self.dispersion = None
+            self.status_text = f"dispersion: {exc}"
+
+    @param.depends("dispersion", "all_fits", "state.presentation")
+    def dispersion_view(self):
+        res = self.dispersion
+        if res is None:
+            return pn.pane.Markdown("Select a region with the box tool on the map (or use everything), then "
+                                    "press **Compute dispersion**.")
+        from driftspec.analysis.dispersion import model_diffusivity
+
+        band = hv.Area((res.lag_days, res.kappa_lower, res.kappa_upper), "lag (days)",
+                       ["kappa", "kappa2"]).opts(color=COLOURS["ccw"], alpha=0.2, line_alpha=0)
+        curve = hv.Curve((res.lag_days, res.kappa), "lag (days)",
+                         hv.Dimension("kappa", label="diffusivity per component (m²/s)"),
+                         label="observed κ(τ)").opts(color=COLOURS["ccw"], line_width=2)
+        a, b = res.plateau_lags
+        plateau = hv.Curve(([a, b], [res.plateau, res.plateau]), "lag (days)", "kappa",
+                           label=f"plateau {res.plateau:.0f} m²/s").opts(color=COLOURS["model"], line_width=4)
+        layers = [band, curve, plateau]
+        text = (f"observed plateau ({a:g}-{b:g} days) **{res.plateau:.0f} m²/s** "
+                f"[{res.plateau_lower:.0f}, {res.plateau_upper:.0f}], {res.n_tracks} track segments")
+        if self.all_fits is not None and "diffusivity" in self.all_fits:
+            k, n = model_diffusivity(self.all_fits, self.state.region or None)
+            if np.isfinite(k):
+                layers.append(hv.HLine(k).opts(color=COLOURS["cw"], line_dash="dashed", line_width=2))
+                text += f"; model-based (median of {n} ok fits) **{k:.0f} m²/s**"
+        plot = hv.Overlay(layers).opts(responsive=True, height=360, legend_position="bottom_right",
+                                       ylabel="diffusivity per component (m²/s)", xlabel="lag τ (days)",
+                                       fontscale=self._fontscale(), title="single-particle diffusivity")
+        return pn.Column(pn.pane.Markdown(text, css_classes=["ds-dispersion"]), plot, sizing_mode="stretch_width")
 
     # ------------------------------------------------------------------ layout
     def controls(self):
@@ -676,7 +743,10 @@ class Explorer(param.Parameterized):
         track_tab = pn.Column(self.track_fits_view, sizing_mode="stretch_width", name="Track summary")
         map_tab = pn.Column(pn.Row(mp, binsz, fit_all, cancel), self.param_map_view,
                             sizing_mode="stretch_width", name="Parameter map")
-        tabs = pn.Tabs(explore, track_tab, map_tab, ("About", self.about()), dynamic=True,
+        disp_button = pn.widgets.Button(name="Compute dispersion", button_type="primary")
+        disp_button.on_click(self.compute_dispersion)
+        disp_tab = pn.Column(disp_button, self.dispersion_view, sizing_mode="stretch_width", name="Dispersion")
+        tabs = pn.Tabs(explore, track_tab, map_tab, disp_tab, ("About", self.about()), dynamic=True,
                        sizing_mode="stretch_width")
         return pn.Column(pn.Row(bar, status, sizing_mode="stretch_width"), tabs, sizing_mode="stretch_width")
 

@@ -1,6 +1,5 @@
 """The notebooks run top to bottom (nbclient) on a small demo set."""
 
-import os
 from pathlib import Path
 
 import nbformat
