@@ -52,6 +52,7 @@ class FitOptions:
     velocity_operator: str = "central"
     position_noise: float | None = None
     noise_from_input: bool = False
+    bootstrap: int = 0
 
 
 def column_units(models: Iterable[str], inertial_frequency: str = "free", observation: str = "none") -> dict:
@@ -83,6 +84,13 @@ def fit_window(w: Window, opts: FitOptions) -> list[dict]:
                            observation=opts.observation, velocity_operator=opts.velocity_operator,
                            position_noise=_noise_for(w, opts))
             row = r.to_row()
+            if opts.bootstrap and r.ok:
+                import zlib
+
+                from .fitting import bootstrap_stderr
+
+                seed = zlib.crc32(f"{w.track_id}|{w.start.value}|{m}".encode())  # same in every process
+                row.update({f"{k}_se_boot": v for k, v in bootstrap_stderr(r, opts.bootstrap, seed).items()})
         except Exception as exc:  # noqa: BLE001 - a failed fit is a row, not a crash
             row = {"model": m, "estimator": opts.estimator, "status": "failed",
                    "message": f"{type(exc).__name__}: {exc}"}

@@ -181,6 +181,47 @@ def _numerical_hessian(fun, x, step=1e-4):
     return hess
 
 
+def bootstrap_stderr(result: FitResult, n_boot: int = 100, seed=0) -> dict:
+    """Parametric-bootstrap standard errors: simulate from the fitted model by circulant embedding (the
+    observed process, with the window's mask), refit each replicate, and take the standard deviation.
+
+    Returns a dict keyed by parameter name (and ``diffusivity``); NaN when too few replicates fit.
+    """
+    from .simulate import circulant_sample, embedding_autocovariance
+
+    if result.family is None or not np.all(np.isfinite(result.theta)):
+        return {k: np.nan for k in [*result.params, "diffusivity"]}
+    prep, ctx, fam = result.prepared, result.context, result.family
+    rng = np.random.default_rng(seed)
+    n = prep.n
+    comps = []
+    for comp, sl in fam.components():
+        theta = result.theta[sl]
+        acov = embedding_autocovariance(lambda lag, c=comp, t=theta: c.autocovariance(t, lag, ctx), n, prep.dt_days)
+        comps.append((comp, acov))
+    top = float(np.abs(prep.freq_cpd[prep.band]).max())
+    fixed = {k: v for k, v in result.params.items() if result.stderr.get(k) == 0.0}
+    est = []
+    for _ in range(n_boot):
+        z = np.zeros(n, complex)
+        for comp, acov in comps:
+            x = circulant_sample(acov, n, rng)[0]
+            z += x * prep.modulation if comp.modulated else x
+        if prep.real_valued:
+            z = z.real
+        z = np.where(prep.valid, z, np.nan)
+        r = _optimise(fam, result.model, "debiased", prepare_window(
+            z, prep.dt_days, max_freq=top, modulated=fam.modulated, latitude_series=ctx.latitude_series),
+            ctx, fixed, np.array([k not in fixed for k in fam.names]), None)
+        if r.status == "ok":
+            est.append([*r.theta, r.diffusivity])
+    est = np.array(est)
+    names = [*fam.names, "diffusivity"]
+    if len(est) < max(10, n_boot // 4):
+        return {k: np.nan for k in names}
+    return dict(zip(names, map(float, est.std(axis=0, ddof=1))))
+
+
 def _fisher_scoring(family, prep, context, full, x0, lo, hi, free, counter, max_iter=60):
     """Levenberg-Marquardt-damped Fisher scoring for the debiased Whittle objective.
 

@@ -92,6 +92,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="leave out bands of |f| (cpd), e.g. 1.85:2.05 around semidiurnal tides")
     p.add_argument("--taper", choices=["none", "hann", "dpss"], default="none")
     p.add_argument("--inertial-frequency", choices=["free", "follow-latitude"], default="free")
+    p.add_argument("--bootstrap", type=int, default=0, metavar="B",
+                   help="also parametric-bootstrap standard errors from B refits of simulated replicates "
+                        "(columns *_se_boot)")
     p.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="processes (default: all cores)")
     p.add_argument("--dask", metavar="ADDRESS", help="a Dask scheduler address, or 'local' for a LocalCluster")
     p.add_argument("--resume", action="store_true", help="skip windows already in --out")
@@ -193,7 +196,7 @@ def cmd_fit(args):
                       taper=None if args.taper == "none" else args.taper, exclude=_exclusions(args.exclude),
                       inertial_frequency=args.inertial_frequency, observation=observation,
                       velocity_operator="central" if measured else args.velocity, position_noise=noise,
-                      noise_from_input=args.position_noise == "input")
+                      noise_from_input=args.position_noise == "input", bootstrap=args.bootstrap)
     df = run_fits(windows, args.out, opts, workers=args.workers, dask_address=args.dask, resume=args.resume,
                   progress=not args.no_progress)
     print(summarise(df))

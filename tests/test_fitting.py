@@ -171,3 +171,17 @@ def test_exact_warns_on_long_windows():
         finally:
             fitting.EXACT_WARN_SAMPLES = old
     assert any("exact likelihood" in str(x.message) for x in w)
+
+
+def test_parametric_bootstrap_agrees_with_curvature_errors():
+    # the bootstrap (simulate from the fit by circulant embedding, refit) and the Fisher-information
+    # standard errors estimate the same spread (Sykulski et al. 2019, section 4); 60 replicates
+    from driftspec.analysis.fitting import bootstrap_stderr
+
+    z = simulate("matern", [0.02, 1.2, 1.0], n=1440, dt=HOUR, seed=11)
+    z[300:400] = np.nan
+    r = fit_series(z, HOUR, model="matern")
+    boot = bootstrap_stderr(r, n_boot=60, seed=1)
+    for k in ("matern_alpha", "matern_damping"):
+        assert 0.6 < boot[k] / r.stderr[k] < 1.6, (k, boot[k], r.stderr[k])
+    assert np.isfinite(boot["diffusivity"])
