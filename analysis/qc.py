@@ -134,9 +134,11 @@ def clean_fixes(raw: pd.DataFrame, max_speed: float = DEFAULT_MAX_SPEED, source:
     mark(np.isnan(lat) | np.isnan(lon), "missing_value")
 
     ok = reason == 0
+    # integer track codes once for the whole input (sorted names, so code order is name order)
+    all_codes, uniques = pd.factorize(raw["id"].to_numpy(), sort=True)
     work = raw.loc[ok].copy()
     work["lon"] = wrap_lon(work["lon"].to_numpy())
-    codes, uniques = pd.factorize(work["id"].to_numpy(), sort=True)
+    codes = all_codes[ok]
     t_ns = work["time"].to_numpy().astype("datetime64[ns]").astype(np.int64)
     order = np.lexsort((t_ns, codes))
     reordered = int(np.count_nonzero(order != np.arange(len(order))))
@@ -162,23 +164,27 @@ def clean_fixes(raw: pd.DataFrame, max_speed: float = DEFAULT_MAX_SPEED, source:
         keep[idx[flags]] = False
     reason[work["row"].to_numpy()[~keep]] = code["speed_spike"]
     fixes = work.loc[keep].drop(columns=["time_unparseable", "value_unparseable"]).reset_index(drop=True)
+    fixes["id"] = pd.Categorical.from_codes(codes[keep], categories=pd.Index(uniques, dtype=object))
 
     counts = np.bincount(reason, minlength=len(REASONS) + 1)
     dropped = {r: int(counts[code[r]]) for r in REASONS}
-    per_track = _per_track(raw, reason, fixes)
+    per_track = _per_track(all_codes, uniques, reason, fixes)
     report = QCReport(n_in, len(fixes), dropped, reordered, float(max_speed), per_track, source)
     assert report.kept_rows + sum(dropped.values()) == n_in
     return fixes, report
 
 
-def _per_track(raw, reason, fixes) -> pd.DataFrame:
-    ids = raw["id"].fillna("<missing id>").astype(str).to_numpy()
-    codes, uniques = pd.factorize(ids, sort=True)
+def _per_track(codes, uniques, reason, fixes) -> pd.DataFrame:
+    """Rows in, kept and dropped by reason for every track (rows without an id form their own line)."""
     names = ["", *REASONS]
+    ntr = len(uniques) + 1  # last line: rows without an id
+    codes = np.where(codes < 0, ntr - 1, codes)
     counts = np.bincount(codes * len(names) + reason.astype(np.int64),
-                         minlength=len(uniques) * len(names)).reshape(-1, len(names))
+                         minlength=ntr * len(names)).reshape(-1, len(names))
     table = pd.DataFrame(counts, columns=["kept_rows", *REASONS])
     table.insert(0, "input_rows", counts.sum(axis=1))
-    table.insert(0, "id", uniques)
-    span = fixes.groupby("id")["time"].agg(first_time="min", last_time="max")
+    table.insert(0, "id", [*map(str, uniques), "<missing id>"])
+    table = table[table["input_rows"] > 0].reset_index(drop=True)
+    span = fixes.groupby("id", observed=True)["time"].agg(first_time="min", last_time="max")
+    span.index = span.index.astype(str)
     return table.merge(span, left_on="id", right_index=True, how="left")

@@ -25,6 +25,14 @@ DEFAULT_SPLIT_GAP = pd.Timedelta(days=3)
 DEFAULT_MASK_DISTANCE = pd.Timedelta(hours=3)
 
 
+def track_codes(ids) -> tuple[np.ndarray, np.ndarray]:
+    """Integer codes and names of a track-id column; cheap for the categorical columns driftspec writes."""
+    if isinstance(ids, pd.Series) and isinstance(ids.dtype, pd.CategoricalDtype):
+        return ids.cat.codes.to_numpy(), np.asarray(ids.cat.categories, dtype=object)
+    codes, names = pd.factorize(np.asarray(ids), sort=False)
+    return codes, np.asarray(names, dtype=object)
+
+
 def _segment_starts(ids: np.ndarray, t_ns: np.ndarray, split_gap_ns: int) -> np.ndarray:
     new = np.ones(len(ids), dtype=bool)
     new[1:] = (ids[1:] != ids[:-1]) | (np.diff(t_ns) > split_gap_ns)
@@ -57,8 +65,8 @@ def regular_grid(fixes: pd.DataFrame, step=DEFAULT_STEP, split_gap=DEFAULT_SPLIT
     if step_ns <= 0 or split_ns <= 0 or mask_ns < 0:
         raise ValueError("step and split_gap must be positive, mask_distance non-negative")
     if len(fixes) == 0:
-        return pd.DataFrame(columns=["id", "segment", "time", "lat", "lon", "valid"])
-    ids = fixes["id"].to_numpy().astype(str)
+        return pd.DataFrame(columns=["id", "segment", "time", "lat", "lon", "valid", "fix_distance_s"])
+    ids, names = track_codes(fixes["id"])
     t_ns = fixes["time"].to_numpy().astype("datetime64[ns]").astype(np.int64)
     lat = fixes["lat"].to_numpy(float)
     # unwrap longitude along each track so that interpolation goes the short way across 180 degrees
@@ -94,7 +102,7 @@ def regular_grid(fixes: pd.DataFrame, step=DEFAULT_STEP, split_gap=DEFAULT_SPLIT
     track_of_fix = np.cumsum(np.concatenate([[True], ~same])) - 1
     seg_in_track = seg_index[seg_first] - seg_index[starts_track][track_of_fix[seg_first]]
     out = {
-        "id": ids[seg_first][grid_seg],
+        "id": pd.Categorical.from_codes(ids[seg_first][grid_seg], categories=pd.Index(names)),
         "segment": seg_in_track[grid_seg],
         "time": grid_t.astype("datetime64[ns]"),
         "lat": np.interp(x_grid, x_fix, lat),

@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from .geodesy import displacement_east_north_m
+from .resample import track_codes
 
 VELOCITY_METHODS = ("central", "forward")
 
@@ -44,7 +45,7 @@ def add_velocity(grid: pd.DataFrame, method: str = "central") -> pd.DataFrame:
     n = len(g)
     if n == 0:
         return g.assign(u=np.array([]), v=np.array([]), valid_velocity=np.array([], dtype=bool))
-    ids = g["id"].to_numpy().astype(str)
+    ids = track_codes(g["id"])[0]
     seg = g["segment"].to_numpy()
     t_ns = g["time"].to_numpy().astype("datetime64[ns]").astype(np.int64)
     lat, lon = g["lat"].to_numpy(float), g["lon"].to_numpy(float)

@@ -129,7 +129,9 @@ def iter_windows(vel: pd.DataFrame, window_days: float = 60.0, overlap: float = 
     ucol, vcol = ("u_meas", "v_meas") if use_measured else ("u", "v")
     if ucol not in vel:
         raise ValueError("the input carries no measured velocities (u, v)")
-    ids = vel["id"].to_numpy().astype(str)
+    from .resample import track_codes
+
+    ids, names = track_codes(vel["id"])
     seg = vel["segment"].to_numpy()
     t_ns = vel["time"].to_numpy().astype("datetime64[ns]").astype(np.int64)
     z = vel[ucol].to_numpy(float) + 1j * vel[vcol].to_numpy(float)
@@ -153,7 +155,7 @@ def iter_windows(vel: pd.DataFrame, window_days: float = 60.0, overlap: float = 
             if np.isfinite(zz).mean() < min_coverage:
                 continue
             yield Window(
-                track_id=ids[a], segment=int(seg[a]), index=k,
+                track_id=str(names[ids[a]]), segment=int(seg[a]), index=k,
                 start=pd.Timestamp(t_ns[a + s]), end=pd.Timestamp(t_ns[a + e - 1]),
                 dt_seconds=dt_ns / 1e9, z=zz.copy(), latitude=lat[a + s:a + e].copy(),
                 longitude=lon[a + s:a + e].copy(),

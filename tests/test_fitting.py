@@ -185,3 +185,13 @@ def test_parametric_bootstrap_agrees_with_curvature_errors():
     for k in ("matern_alpha", "matern_damping"):
         assert 0.6 < boot[k] / r.stderr[k] < 1.6, (k, boot[k], r.stderr[k])
     assert np.isfinite(boot["diffusivity"])
+
+
+def test_goodness_of_fit_pvalue_matches_scipy_kstest(rng):
+    # scipy.stats.kstest against the standard exponential is the reference
+    from scipy.stats import kstest
+
+    from driftspec.analysis.fitting import ks_exponential_pvalue
+
+    for sample in (rng.exponential(1.0, 700), rng.exponential(1.3, 700), rng.gamma(2.0, 0.5, 50)):
+        assert ks_exponential_pvalue(sample) == pytest.approx(kstest(sample, "expon").pvalue, rel=1e-6, abs=1e-12)

@@ -33,7 +33,7 @@ def _peak_share(f, p, f0, half_width):
     near = np.abs(f - f0) < half_width
     if not near.any():
         return 0.0, None
-    df = np.median(np.diff(np.unique(f))) if f.size > 1 else 1.0
+    df = np.ptp(f) / (f.size - 1) if f.size > 1 else 1.0
     background = np.median(p[(np.abs(f - f0) < 3 * half_width) & ~near]) if (
         (np.abs(f - f0) < 3 * half_width) & ~near).any() else 0.0
     excess = np.clip(p[near] - background, 0, None)
@@ -87,7 +87,7 @@ class Inertial(ModelFamily):
             if sel.sum() > 2:
                 fc = float(f[sel][np.argmax(p[sel])])
         share, _ = _peak_share(f, p, fc, 0.15)
-        total = float(np.sum(p) * (np.median(np.diff(np.unique(f))) if f.size > 1 else 1.0))
+        total = float(np.sum(p) * (np.ptp(f) / (f.size - 1) if f.size > 1 else 1.0))
         var = float(np.clip(share, 1e-3 * total + 1e-9, 0.9 * total + 1e-9))
         return np.array([var, fc, 0.3])
 

@@ -147,7 +147,7 @@ class Matern(ModelFamily):
 
     def initial_guess(self, freq_cpd, power, context: FitContext):
         f, p = np.asarray(freq_cpd, float), np.asarray(power, float)
-        df = np.median(np.diff(np.unique(f))) if f.size > 1 else 1.0
+        df = np.ptp(f) / (f.size - 1) if f.size > 1 else 1.0  # the band is a regular grid (minus gaps)
         var = max(float(np.sum(p) * df), 1e-6)
         af = np.abs(f)
         fmax = af.max() if af.size else 1.0
