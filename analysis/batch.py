@@ -9,10 +9,11 @@ the table does not depend on how the work was distributed.
 
 from __future__ import annotations
 
+import itertools
 import os
 import shutil
 from collections.abc import Iterable, Sequence
-from concurrent.futures import ProcessPoolExecutor, as_completed
+from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -171,13 +172,15 @@ def done_keys(out: Path) -> set:
     return set(zip(df["track_id"].astype(str), pd.to_datetime(df["window_start"]), df["model"]))
 
 
-def _chunks(items: list, size: int):
-    for i in range(0, len(items), size):
-        yield items[i:i + size]
+def _chunks(items, size: int):
+    it = iter(items)
+    while chunk := list(itertools.islice(it, size)):
+        yield chunk
 
 
 def run_fits(windows: Iterable[Window], out, opts: FitOptions, *, workers: int = 1, dask_address=None,
-             resume: bool = False, chunk_size: int = 64, progress: bool = True, stop_after_chunks=None):
+             resume: bool = False, chunk_size: int = 64, progress: bool = True, stop_after_chunks=None,
+             total: int | None = None):
     """Fit every window and write the table to ``out``; returns the table.
 
     Parameters
@@ -196,25 +199,21 @@ def run_fits(windows: Iterable[Window], out, opts: FitOptions, *, workers: int =
         Windows per unit of work (and per written part).
     stop_after_chunks : int, optional
         Stop after this many chunks without combining (simulates an interrupted run; for tests).
+    total : int, optional
+        Number of windows expected (for the progress bar's ETA).
     """
     from tqdm.auto import tqdm
 
     out = Path(out)
     parts = _parts_dir(out)
     skip = done_keys(out) if resume else set()
-    if not resume:
-        if parts.exists():
-            shutil.rmtree(parts)
+    if not resume and parts.exists():
+        shutil.rmtree(parts)
     parts.mkdir(parents=True, exist_ok=True)
-    todo = []
-    for w in windows:
-        if all((w.track_id, w.start, m) in skip for m in opts.models):
-            continue
-        todo.append(w)
     existing = sorted(parts.glob("part-*.parquet"))
     next_part = 1 + max((int(p.stem.split("-")[1]) for p in existing), default=0)
     units = column_units(opts.models, opts.inertial_frequency, opts.observation)
-    bar = tqdm(total=len(todo), unit="window", disable=not progress, desc="fitting", smoothing=0.05)
+    bar = tqdm(total=total, unit="window", disable=not progress, desc="fitting", smoothing=0.05)
     written = 0
 
     def save(df):
@@ -226,34 +225,53 @@ def run_fits(windows: Iterable[Window], out, opts: FitOptions, *, workers: int =
             next_part += 1
         written += 1
 
-    chunks = list(_chunks(todo, chunk_size))
+    # windows are consumed lazily and at most a few chunks are in flight, so memory stays bounded
+    todo = (w for w in windows if not all((w.track_id, w.start, m) in skip for m in opts.models))
+    chunks = _chunks(todo, chunk_size)
+    stopped = False
     try:
         if dask_address:
-            _run_dask(chunks, opts, dask_address, save, bar, stop_after_chunks, lambda: written)
+            stopped = _run_dask(chunks, opts, dask_address, save, bar, stop_after_chunks, lambda: written)
         elif workers > 1:
-            with ProcessPoolExecutor(max_workers=workers) as pool:
-                futures = {pool.submit(fit_chunk, c, opts): len(c) for c in chunks}
-                for fut in as_completed(futures):
-                    save(fut.result())
-                    bar.update(futures[fut])
-                    if stop_after_chunks and written >= stop_after_chunks:
-                        for f in futures:
-                            f.cancel()
-                        return None
+            stopped = _run_pool(chunks, opts, workers, save, bar, stop_after_chunks, lambda: written)
         else:
             for c in chunks:
                 save(fit_chunk(c, opts))
                 bar.update(len(c))
                 if stop_after_chunks and written >= stop_after_chunks:
-                    return None
+                    stopped = True
+                    break
     finally:
+        if not stopped and bar.total is not None and bar.n != bar.total:
+            bar.total = bar.n  # the total was an estimate
+            bar.refresh()
         bar.close()
-    if stop_after_chunks and written >= stop_after_chunks:
+    if stopped:
         return None
     return combine(out, units)
 
 
-def _run_dask(chunks, opts, address, save, bar, stop_after_chunks, written):
+def _run_pool(chunks, opts, workers, save, bar, stop_after_chunks, written) -> bool:
+    from concurrent.futures import FIRST_COMPLETED, wait
+
+    in_flight = {}
+    with ProcessPoolExecutor(max_workers=workers) as pool:
+        for c in itertools.chain(chunks, [None]):
+            if c is not None:
+                in_flight[pool.submit(fit_chunk, c, opts)] = len(c)
+            while in_flight and (c is None or len(in_flight) >= 2 * workers):
+                done, _ = wait(in_flight, return_when=FIRST_COMPLETED)
+                for fut in done:
+                    save(fut.result())
+                    bar.update(in_flight.pop(fut))
+                if stop_after_chunks and written() >= stop_after_chunks:
+                    for f in in_flight:
+                        f.cancel()
+                    return True
+    return False
+
+
+def _run_dask(chunks, opts, address, save, bar, stop_after_chunks, written) -> bool:
     from dask.distributed import Client, LocalCluster
     from dask.distributed import as_completed as dask_completed
 
@@ -265,14 +283,30 @@ def _run_dask(chunks, opts, address, save, bar, stop_after_chunks, written):
     else:
         client = Client(address)
     try:
-        futures = [client.submit(fit_chunk, c, opts, pure=False) for c in chunks]
-        sizes = {f.key: len(c) for f, c in zip(futures, chunks)}
-        for fut in dask_completed(futures):
-            save(fut.result())
-            bar.update(sizes[fut.key])
-            if stop_after_chunks and written() >= stop_after_chunks:
-                client.cancel(futures)
+        n_workers = max(1, len(client.scheduler_info().get("workers", {})))
+        sizes = {}
+        queue = dask_completed()
+        iterator = iter(chunks)
+
+        def submit_next():
+            c = next(iterator, None)
+            if c is None:
+                return False
+            fut = client.submit(fit_chunk, c, opts, pure=False)
+            sizes[fut.key] = len(c)
+            queue.add(fut)
+            return True
+
+        for _ in range(2 * n_workers):
+            if not submit_next():
                 break
+        for fut in queue:
+            save(fut.result())
+            bar.update(sizes.pop(fut.key))
+            if stop_after_chunks and written() >= stop_after_chunks:
+                return True
+            submit_next()
+        return False
     finally:
         client.close()
         if cluster is not None:

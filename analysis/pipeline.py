@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from dataclasses import asdict, dataclass
 
+import numpy as np
 import pandas as pd
 
 from .io import read_fixes
@@ -26,6 +27,34 @@ class PrepOptions:
         return asdict(self)
 
 
+def grid_velocities(fixes: pd.DataFrame, options: PrepOptions | None = None) -> pd.DataFrame:
+    """Regular grid and velocities for cleaned fixes (the second half of :func:`load_velocities`)."""
+    o = options or PrepOptions()
+    grid = regular_grid(fixes, step=pd.Timedelta(o.step), split_gap=pd.Timedelta(o.split_gap),
+                        mask_distance=pd.Timedelta(o.mask_distance))
+    return add_velocity(grid, method=o.velocity_method)
+
+
+def iter_velocity_batches(fixes: pd.DataFrame, options: PrepOptions | None = None, tracks_per_batch: int = 200):
+    """Gridded velocities for groups of ``tracks_per_batch`` tracks at a time (fixes sorted by track), so that
+    a whole data set never needs its full hourly grid in memory."""
+    from .resample import track_codes
+
+    codes, _ = track_codes(fixes["id"])
+    starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]])
+    bounds = np.r_[starts[::tracks_per_batch], len(codes)]
+    for a, b in zip(bounds[:-1], bounds[1:]):
+        yield grid_velocities(fixes.iloc[a:b], options)
+
+
+def estimate_windows(fixes: pd.DataFrame, window_days: float, overlap: float) -> int:
+    """Upper estimate of the number of windows (from each track's time span), for progress bars."""
+    span = fixes.groupby("id", observed=True)["time"].agg(["min", "max"])
+    days = (span["max"] - span["min"]).dt.total_seconds().to_numpy() / 86400.0
+    hop = window_days * (1 - overlap)
+    return int(np.sum(np.maximum(0, np.floor((days - window_days) / hop) + 1)))
+
+
 def load_velocities(source, options: PrepOptions | None = None) -> tuple[pd.DataFrame, QCReport, pd.DataFrame]:
     """Read, quality-control, grid and difference a source of fixes.
 
@@ -36,7 +65,4 @@ def load_velocities(source, options: PrepOptions | None = None) -> tuple[pd.Data
     raw = read_fixes(source)
     name = source if isinstance(source, str) else getattr(source, "name", type(source).__name__)
     fixes, report = clean_fixes(raw, max_speed=o.max_speed, source=str(name))
-    grid = regular_grid(fixes, step=pd.Timedelta(o.step), split_gap=pd.Timedelta(o.split_gap),
-                        mask_distance=pd.Timedelta(o.mask_distance))
-    vel = add_velocity(grid, method=o.velocity_method)
-    return vel, report, fixes
+    return grid_velocities(fixes, o), report, fixes

@@ -158,7 +158,6 @@ def cmd_qc(args):
 def cmd_fit(args):
     from driftspec.analysis.batch import FitOptions, run_fits, summarise
     from driftspec.analysis.models import FAMILIES
-    from driftspec.analysis.pipeline import load_velocities
     from driftspec.analysis.windows import iter_windows
 
     models = [m.strip() for m in args.model.split(",") if m.strip()]
@@ -167,10 +166,19 @@ def cmd_fit(args):
             raise SystemExit(f"driftspec: unknown model {m!r}; choose from {', '.join(FAMILIES)}")
     if not 0 <= args.overlap < 1:
         raise SystemExit("driftspec: --overlap must be in [0, 1)")
-    vel, report, _ = load_velocities(args.input, _prep_options(args))
+    import itertools
+
+    from driftspec.analysis.io import read_fixes
+    from driftspec.analysis.pipeline import estimate_windows, iter_velocity_batches
+    from driftspec.analysis.qc import clean_fixes
+
+    prep = _prep_options(args)
+    fixes, report = clean_fixes(read_fixes(args.input), max_speed=prep.max_speed, source=str(args.input))
     print(report.summary(), file=sys.stderr)
-    windows = iter_windows(vel, args.window_days, args.overlap, args.min_coverage,
-                           use_measured=args.velocity == "measured")
+    # stream: grid and cut windows for a few hundred tracks at a time
+    windows = itertools.chain.from_iterable(
+        iter_windows(vel, args.window_days, args.overlap, args.min_coverage, use_measured=args.velocity == "measured")
+        for vel in iter_velocity_batches(fixes, prep))
     import pandas as pd
 
     from driftspec.analysis.observation import default_max_freq
@@ -198,7 +206,7 @@ def cmd_fit(args):
                       velocity_operator="central" if measured else args.velocity, position_noise=noise,
                       noise_from_input=args.position_noise == "input", bootstrap=args.bootstrap)
     df = run_fits(windows, args.out, opts, workers=args.workers, dask_address=args.dask, resume=args.resume,
-                  progress=not args.no_progress)
+                  progress=not args.no_progress, total=estimate_windows(fixes, args.window_days, args.overlap))
     print(summarise(df))
     print(f"wrote {args.out}")
     return 0
