@@ -17,13 +17,15 @@ exponential variables when the model is right; the p-value is the Kolmogorov-Smi
 
 Diffusivity: single-particle, per velocity component, ``kappa = S(0) / 4`` with ``S`` the fitted
 complex-velocity density converted to (m/s)^2 per Hz, in m^2/s (Taylor 1921; for the Matérn process
-Lilly et al. 2017, eq. 36).
+"Fractional Brownian motion, the Matérn process, and stochastic modeling of turbulent
+dispersion", Nonlinear Processes in Geophysics 24, 2017).
 
 References
 ----------
 Taylor, G. I. (1921). Diffusion by continuous movements. Proceedings of the London Mathematical Society
 s2-20, 196-212. doi:10.1112/plms/s2-20.1.196
-Sykulski et al. (2019), Biometrika 106, 251-266 (debiased Whittle; standard errors section 4).
+"The debiased Whittle likelihood", Biometrika 106, 251-266 (2019), doi:10.1093/biomet/asy071
+(standard errors: section 4).
 """
 
 from __future__ import annotations

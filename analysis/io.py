@@ -274,7 +274,7 @@ def fixes_to_cf_dataset(fixes: pd.DataFrame, attrs: dict | None = None) -> xr.Da
         {
             "trajectory": ("trajectory", ids.astype(object),
                            {"cf_role": "trajectory_id", "long_name": "track identifier"}),
-            "rowSize": ("trajectory", counts.astype(np.int32),
+            "fix_count": ("trajectory", counts.astype(np.int32),
                         {"sample_dimension": "obs", "long_name": "number of fixes in this track"}),
             "time": ("obs", fixes["time"].to_numpy(), {"standard_name": "time", "axis": "T"}),
             "lat": ("obs", fixes["lat"].to_numpy(float),

@@ -24,8 +24,7 @@ likelihood is the Gaussian density of the valid samples with the Toeplitz covari
 
 References
 ----------
-Sykulski, A. M., Olhede, S. C., Guillaumin, A. P., Lilly, J. M., Early, J. J. (2019). The debiased
-Whittle likelihood. Biometrika 106, 251-266. doi:10.1093/biomet/asy071
+"The debiased Whittle likelihood". Biometrika 106, 251-266 (2019). doi:10.1093/biomet/asy071
 Whittle, P. (1953). Estimation and information in stationary time series. Arkiv för Matematik 2,
 423-434. doi:10.1007/BF02590998
 """

@@ -718,8 +718,9 @@ class Explorer(param.Parameterized):
         return pn.pane.Markdown(
             "### About\n" + CAUTION + "\n\n"
             "Rotary spectra of complex velocity *u + iv*: positive frequencies turn counterclockwise, negative "
-            "clockwise; frequencies in cycles per day. Fits use the debiased Whittle likelihood (Sykulski et "
-            "al. 2019, Biometrika 106, 251-266) unless another estimator is chosen. Shoreline: GSHHG coarse "
+            "clockwise; frequencies in cycles per day. Fits use the debiased Whittle likelihood "
+            "(*The debiased Whittle likelihood*, Biometrika 106, 251-266, 2019) unless another estimator is "
+            "chosen. Shoreline: GSHHG coarse "
             "(LGPL-3), shipped with the package.", sizing_mode="stretch_width")
 
     def main_area(self):

@@ -54,7 +54,7 @@ def test_inertial_frequency_at_30n_recovered():
 
 def test_exact_and_debiased_agree_on_short_windows():
     # the exact Gaussian likelihood is the reference; the debiased estimate is close to it, window by
-    # window, and unbiased relative to it on average (Sykulski et al. 2019, section 6)
+    # window, and unbiased relative to it on average ("The debiased Whittle likelihood", Biometrika 2019, section 6)
     theta = [0.02, 1.3, 1.0]
     a_all, b_all = [], []
     for seed in range(6):
@@ -85,8 +85,8 @@ def _replicates(theta, n_rep, estimator="debiased", mask_fn=None, max_freq=None)
 
 
 def test_debiased_is_unbiased_where_whittle_is_not():
-    # Sykulski et al. (2019), Biometrika, section 6: aliasing and leakage bias the standard Whittle
-    # estimator for a rough, strongly damped process; the debiased estimator removes it.
+    # "The debiased Whittle likelihood", Biometrika 106 (2019), section 6: aliasing and leakage bias the
+    # standard Whittle estimator for a rough, strongly damped process; the debiased estimator removes it.
     theta = [0.02, 1.0, 2.0]
     deb = _replicates(theta, 24)
     whi = _replicates(theta, 24, estimator="whittle")
@@ -175,7 +175,8 @@ def test_exact_warns_on_long_windows():
 
 def test_parametric_bootstrap_agrees_with_curvature_errors():
     # the bootstrap (simulate from the fit by circulant embedding, refit) and the Fisher-information
-    # standard errors estimate the same spread (Sykulski et al. 2019, section 4); 60 replicates
+    # standard errors estimate the same spread ("The debiased Whittle likelihood", Biometrika 2019,
+    # section 4); 60 replicates
     from driftspec.analysis.fitting import bootstrap_stderr
 
     z = simulate("matern", [0.02, 1.2, 1.0], n=1440, dt=HOUR, seed=11)

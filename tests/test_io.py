@@ -31,7 +31,7 @@ def _contiguous(df):  # CF H.4.3
     counts = df.groupby("id").size()
     return xr.Dataset(
         {"trajectory": ("trajectory", counts.index.to_numpy().astype(str), {"cf_role": "trajectory_id"}),
-         "rowSize": ("trajectory", counts.to_numpy().astype("i4"), {"sample_dimension": "obs"}),
+         "fix_count": ("trajectory", counts.to_numpy().astype("i4"), {"sample_dimension": "obs"}),
          "time": ("obs", ((df["time"] - pd.Timestamp(T0)).dt.total_seconds()).to_numpy(), _time_attrs()),
          "lat": ("obs", df["lat"].to_numpy(), {"standard_name": "latitude", "units": "degrees_north"}),
          "lon": ("obs", df["lon"].to_numpy(), {"standard_name": "longitude", "units": "degrees_east"})},
@@ -97,9 +97,9 @@ def test_written_netcdf_is_cf_contiguous_ragged(tmp_path):
     path = write_fixes(fixes, tmp_path / "clean.nc")
     ds = xr.open_dataset(path)
     assert ds.attrs["featureType"] == "trajectory"
-    assert ds["rowSize"].attrs["sample_dimension"] == "obs"
+    assert ds["fix_count"].attrs["sample_dimension"] == "obs"
     assert ds["trajectory"].attrs["cf_role"] == "trajectory_id"
-    assert int(ds["rowSize"].sum()) == ds.sizes["obs"] == len(df)
+    assert int(ds["fix_count"].sum()) == ds.sizes["obs"] == len(df)
     assert ds["lat"].attrs["standard_name"] == "latitude"
     _same_fixes(read_fixes(path), df)
 

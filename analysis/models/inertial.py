@@ -17,9 +17,8 @@ each evaluation stays one FFT.
 References
 ----------
 Arnold, L. (1974). Stochastic Differential Equations: Theory and Applications. Wiley (the OU process).
-Sykulski, A. M., Olhede, S. C., Lilly, J. M., Danioux, E. (2016). Lagrangian time series models for
-ocean surface drifter trajectories. Journal of the Royal Statistical Society C 65, 29-50.
-doi:10.1111/rssc.12112
+"Lagrangian time series models for ocean surface drifter trajectories". Journal of the Royal
+Statistical Society C 65, 29-50 (2016). doi:10.1111/rssc.12112
 """
 
 from __future__ import annotations

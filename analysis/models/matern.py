@@ -24,9 +24,8 @@ are the exact derivatives of the interpolant, which the optimiser needs.
 
 References
 ----------
-Lilly, J. M., Sykulski, A. M., Early, J. J., Olhede, S. C. (2017). Fractional Brownian motion, the Matérn
-process, and stochastic modeling of turbulent dispersion. Nonlinear Processes in Geophysics 24, 481-514.
-doi:10.5194/npg-24-481-2017
+"Fractional Brownian motion, the Matérn process, and stochastic modeling of turbulent dispersion".
+Nonlinear Processes in Geophysics 24, 481-514 (2017). doi:10.5194/npg-24-481-2017
 
 Gneiting, T., Kleiber, W., Schlather, M. (2010). Matérn cross-covariance functions for multivariate
 random fields. Journal of the American Statistical Association 105, 1167-1177 (the Matérn form).
