@@ -482,6 +482,7 @@ class Explorer(param.Parameterized):
             ov = hv.Overlay(layers).opts(
                 hv.opts.Overlay(logx=True, logy=True, responsive=True, height=int(330 * min(fs, 1.3)), ylim=ylim,
                                 title=title, fontscale=fs, legend_position="bottom_left",
+                                legend_opts={"background_fill_alpha": 0.55},
                                 show_legend=side == "ccw", invert_xaxis=side == "cw"))
             panels.append(pn.pane.HoloViews(ov, sizing_mode="stretch_width", min_width=300))
         return pn.Row(*panels, sizing_mode="stretch_width")

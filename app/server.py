@@ -72,7 +72,12 @@ def make_app(input_path: Path, fits_path: Path | None = None):
         path = resolve_in(data_dir, name)
         if path is None:
             return pn.pane.Markdown(f"### Not available\n`{name}` is not a data file in the served folder.")
-        vel, report = _velocities(str(path))
+        from driftspec.analysis.errors import InputError
+
+        try:
+            vel, report = _velocities(str(path))
+        except InputError as exc:
+            return pn.pane.Markdown(f"### Cannot open `{name}`\n{exc}")
         fits = _fits(str(fits_path)) if fits_path else None
         theme = pn.state.session_args.get("theme", [b"light"])[0].decode() if pn.state.session_args else "light"
         state = ExplorerState(theme=theme if theme in ("light", "dark") else "light")
