@@ -95,16 +95,28 @@ def _blank(series: pd.Series) -> np.ndarray:
     return missing
 
 
+def _track_ids(ids: pd.Series) -> pd.Categorical:
+    """Track ids as a categorical with sorted, stripped names (one string per track, not per fix); empty
+    or missing ids are NaN."""
+    if isinstance(ids.dtype, pd.CategoricalDtype):
+        names = pd.Index(ids.cat.categories.astype(str)).str.strip()
+        if names.is_unique:
+            cat = ids.cat.rename_categories(names)
+            cat = cat.cat.remove_categories([n for n in names if n == ""]) if (names == "").any() else cat
+            return pd.Categorical(cat).reorder_categories(sorted(cat.cat.categories))
+        ids = ids.astype(object)
+    missing = _blank(ids)
+    text = ids.astype("string").str.strip() if _is_text(ids) else ids.astype("string")
+    return pd.Categorical(text.where(~missing).to_numpy(dtype=object, na_value=None))
+
+
 def _coerce(df: pd.DataFrame) -> pd.DataFrame:
     """Parse columns; keep every row; record which raw values were present but unparseable.
 
     Typed columns (as Parquet and netCDF deliver them) skip the string handling that CSV needs.
     """
     out = pd.DataFrame(index=np.arange(len(df)))
-    ids = df["id"]
-    id_missing = _blank(ids)
-    id_str = ids.astype("string").str.strip() if _is_text(ids) else ids.astype(str)
-    out["id"] = np.where(id_missing, None, id_str.to_numpy(dtype=object, na_value=None))
+    out["id"] = _track_ids(df["id"])
     raw_time = df["time"]
     time_missing = _blank(raw_time)
     out["time"] = _parse_times(raw_time.to_numpy())
@@ -130,7 +142,13 @@ def _read_table(path: Path) -> pd.DataFrame:
     suffix = path.suffix.lower()
     try:
         if suffix in (".parquet", ".pq"):
-            return pd.read_parquet(path)
+            import pyarrow.parquet as pq
+
+            # read the id column dictionary-encoded: a categorical, not one Python string per fix
+            names = pq.read_schema(path).names
+            id_col = next((c for c in names if c.strip().lower() in COLUMN_ALIASES["id"]), None)
+            table = pq.read_table(path, read_dictionary=[id_col] if id_col else None)
+            return table.to_pandas()
         return pd.read_csv(path, dtype=str, keep_default_na=False, na_values=[""], skipinitialspace=True,
                            comment="#", on_bad_lines="error")
     except pd.errors.ParserError as exc:

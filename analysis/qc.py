@@ -133,38 +133,41 @@ def clean_fixes(raw: pd.DataFrame, max_speed: float = DEFAULT_MAX_SPEED, source:
     # any NaN left in lat/lon at this point was counted above; guard anyway
     mark(np.isnan(lat) | np.isnan(lon), "missing_value")
 
-    ok = reason == 0
-    # integer track codes once for the whole input (sorted names, so code order is name order)
-    all_codes, uniques = pd.factorize(raw["id"].to_numpy(), sort=True)
-    work = raw.loc[ok].copy()
-    work["lon"] = wrap_lon(work["lon"].to_numpy())
-    codes = all_codes[ok]
-    t_ns = work["time"].to_numpy().astype("datetime64[ns]").astype(np.int64)
+    # work on index arrays into the input and copy the table once at the end (memory: one copy)
+    if isinstance(raw["id"].dtype, pd.CategoricalDtype) and raw["id"].cat.categories.is_monotonic_increasing:
+        all_codes, uniques = raw["id"].cat.codes.to_numpy(), np.asarray(raw["id"].cat.categories, dtype=object)
+    else:  # sorted: code order is name order
+        all_codes, uniques = pd.factorize(raw["id"].to_numpy(), sort=True)
+    rows = np.flatnonzero(reason == 0)
+    codes = all_codes[rows]
+    t_ns = raw["time"].to_numpy().astype("datetime64[ns]").view(np.int64)[rows]
     order = np.lexsort((t_ns, codes))
     reordered = int(np.count_nonzero(order != np.arange(len(order))))
-    work = work.iloc[order]
-    codes, t_ns = codes[order], t_ns[order]
-    dup = np.zeros(len(work), dtype=bool)
+    rows, codes, t_ns = rows[order], codes[order], t_ns[order]
+    dup = np.zeros(len(rows), dtype=bool)
     dup[1:] = (codes[1:] == codes[:-1]) & (t_ns[1:] == t_ns[:-1])
-    reason[work["row"].to_numpy()[dup]] = code["duplicate_time"]
-    work = work.loc[~dup]
-    codes, t_ns = codes[~dup], t_ns[~dup]
+    reason[rows[dup]] = code["duplicate_time"]
+    rows, codes, t_ns = rows[~dup], codes[~dup], t_ns[~dup]
 
-    ids = codes
     t_s = t_ns / 1e9
-    la, lo = work["lat"].to_numpy(float), work["lon"].to_numpy(float)
-    keep = np.ones(len(work), dtype=bool)
+    la = lat[rows]
+    lo = wrap_lon(lon[rows])
+    keep = np.ones(len(rows), dtype=bool)
     for _ in range(20):  # each pass removes isolated spikes; clusters take a few passes
         idx = np.flatnonzero(keep)
         if len(idx) < 2:
             break
-        flags = _spike_flags(ids[idx], t_s[idx], la[idx], lo[idx], max_speed)
+        flags = _spike_flags(codes[idx], t_s[idx], la[idx], lo[idx], max_speed)
         if not flags.any():
             break
         keep[idx[flags]] = False
-    reason[work["row"].to_numpy()[~keep]] = code["speed_spike"]
-    fixes = work.loc[keep].drop(columns=["time_unparseable", "value_unparseable"]).reset_index(drop=True)
-    fixes["id"] = pd.Categorical.from_codes(codes[keep], categories=pd.Index(uniques, dtype=object))
+    reason[rows[~keep]] = code["speed_spike"]
+    rows = rows[keep]
+    cols = [c for c in raw.columns if c not in ("id", "lon", "time_unparseable", "value_unparseable")]
+    fixes = raw[cols].take(rows).reset_index(drop=True)
+    fixes.insert(0, "id", pd.Categorical.from_codes(codes[keep], categories=pd.Index(uniques, dtype=object)))
+    fixes["lon"] = lo[keep]
+    fixes = fixes[["id", "time", "lat", "lon", *[c for c in cols if c not in ("time", "lat")]]]
 
     counts = np.bincount(reason, minlength=len(REASONS) + 1)
     dropped = {r: int(counts[code[r]]) for r in REASONS}
