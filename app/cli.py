@@ -98,6 +98,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="processes (default: all cores)")
     p.add_argument("--dask", metavar="ADDRESS", help="a Dask scheduler address, or 'local' for a LocalCluster")
     p.add_argument("--resume", action="store_true", help="skip windows already in --out")
+    p.add_argument("--chunk-size", type=int, default=64, help="windows per unit of work and per written part")
     p.add_argument("--no-progress", action="store_true")
     _add_prep_options(p)
 
@@ -206,7 +207,8 @@ def cmd_fit(args):
                       velocity_operator="central" if measured else args.velocity, position_noise=noise,
                       noise_from_input=args.position_noise == "input", bootstrap=args.bootstrap)
     df = run_fits(windows, args.out, opts, workers=args.workers, dask_address=args.dask, resume=args.resume,
-                  progress=not args.no_progress, total=estimate_windows(fixes, args.window_days, args.overlap))
+                  progress=not args.no_progress, total=estimate_windows(fixes, args.window_days, args.overlap),
+                  chunk_size=args.chunk_size)
     print(summarise(df))
     print(f"wrote {args.out}")
     return 0

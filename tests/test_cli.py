@@ -70,3 +70,26 @@ def test_fit_command_end_to_end(tmp_path, demo_dir):
     assert "fits:" in r.stdout
     bad = run("fit", demo_dir / "fixes.parquet", "--out", out, "--model", "nonsense")
     assert bad.returncode == 2 and "unknown model" in bad.stderr
+
+
+def test_killed_fit_resumes_to_the_same_table(tmp_path, demo_dir):
+    # a real interruption: SIGKILL once the first parts are on disk, then --resume
+    import signal
+    import time
+
+    args = [sys.executable, "-m", "driftspec.app.cli", "fit", str(demo_dir / "fixes.parquet"), "--window-days", "30",
+            "--model", "matern", "--workers", "1", "--chunk-size", "4", "--no-progress"]
+    ref = tmp_path / "ref.parquet"
+    assert subprocess.run([*args, "--out", str(ref)], capture_output=True, timeout=600).returncode == 0
+    out = tmp_path / "fits.parquet"
+    proc = subprocess.Popen([*args, "--out", str(out)], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    parts = tmp_path / "fits.parquet.partial"
+    deadline = time.time() + 300
+    while time.time() < deadline and len(list(parts.glob("part-*.parquet"))) < 2:
+        time.sleep(0.05)
+    proc.send_signal(signal.SIGKILL)
+    proc.wait(30)
+    assert not out.exists() and len(list(parts.glob("part-*.parquet"))) >= 2
+    r = subprocess.run([*args, "--out", str(out), "--resume"], capture_output=True, text=True, timeout=600)
+    assert r.returncode == 0, r.stderr
+    pd.testing.assert_frame_equal(pd.read_parquet(out), pd.read_parquet(ref))
