@@ -135,7 +135,8 @@ def clean_fixes(raw: pd.DataFrame, max_speed: float = DEFAULT_MAX_SPEED, source:
 
     # work on index arrays into the input and copy the table once at the end (memory: one copy)
     if isinstance(raw["id"].dtype, pd.CategoricalDtype) and raw["id"].cat.categories.is_monotonic_increasing:
-        all_codes, uniques = raw["id"].cat.codes.to_numpy(), np.asarray(raw["id"].cat.categories, dtype=object)
+        all_codes = raw["id"].cat.codes.to_numpy().astype(np.int64)  # small int types overflow in arithmetic
+        uniques = np.asarray(raw["id"].cat.categories, dtype=object)
     else:  # sorted: code order is name order
         all_codes, uniques = pd.factorize(raw["id"].to_numpy(), sort=True)
     rows = np.flatnonzero(reason == 0)
@@ -181,7 +182,7 @@ def _per_track(codes, uniques, reason, fixes) -> pd.DataFrame:
     """Rows in, kept and dropped by reason for every track (rows without an id form their own line)."""
     names = ["", *REASONS]
     ntr = len(uniques) + 1  # last line: rows without an id
-    codes = np.where(codes < 0, ntr - 1, codes)
+    codes = np.where(codes < 0, ntr - 1, codes).astype(np.int64)
     counts = np.bincount(codes * len(names) + reason.astype(np.int64),
                          minlength=ntr * len(names)).reshape(-1, len(names))
     table = pd.DataFrame(counts, columns=["kept_rows", *REASONS])

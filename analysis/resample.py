@@ -28,7 +28,7 @@ DEFAULT_MASK_DISTANCE = pd.Timedelta(hours=3)
 def track_codes(ids) -> tuple[np.ndarray, np.ndarray]:
     """Integer codes and names of a track-id column; cheap for the categorical columns driftspec writes."""
     if isinstance(ids, pd.Series) and isinstance(ids.dtype, pd.CategoricalDtype):
-        return ids.cat.codes.to_numpy(), np.asarray(ids.cat.categories, dtype=object)
+        return ids.cat.codes.to_numpy().astype(np.int64), np.asarray(ids.cat.categories, dtype=object)
     codes, names = pd.factorize(np.asarray(ids), sort=False)
     return codes, np.asarray(names, dtype=object)
 

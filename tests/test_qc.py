@@ -89,3 +89,18 @@ def test_random_malformed_rows_never_crash_or_vanish(rows):
     if len(fixes):
         assert fixes["lat"].between(-90, 90).all()
         assert ((fixes["lon"] >= -180) & (fixes["lon"] < 180)).all()
+
+
+def test_accounting_with_many_tracks(rng):
+    # 60 tracks: categorical codes are int8, and code * 8 reasons overflows int8 unless widened
+    n_tracks, per = 60, 6
+    ids = np.repeat([f"K{k:04d}" for k in range(n_tracks)], per)
+    t = np.tile(pd.date_range("2030-01-01", periods=per, freq="h").to_numpy(), n_tracks)
+    df = pd.DataFrame({"id": ids, "time": t, "lat": 10 + rng.normal(0, 1e-3, ids.size),
+                       "lon": 20 + rng.normal(0, 1e-3, ids.size)})
+    df.loc[::50, "lat"] = 120.0
+    fixes, report = clean_fixes(read_fixes(df))
+    assert len(report.per_track) == n_tracks
+    assert report.per_track["input_rows"].sum() == ids.size
+    assert report.per_track["latitude_range"].sum() == report.dropped["latitude_range"] == len(df.loc[::50])
+    assert report.kept_rows + sum(report.dropped.values()) == ids.size
