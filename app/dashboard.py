@@ -88,10 +88,7 @@ class Explorer(param.Parameterized):
         self._refresh_param_choices()
         if not self.state.track or self.state.track not in self.track_ids:
             self.state.track = self.track_ids[0] if len(self.track_ids) else ""
-        self.tap = hv.streams.Tap(x=np.nan, y=np.nan)
-        self.tap.add_subscriber(self._on_tap)
-        self.bounds = hv.streams.BoundsXY(bounds=None)
-        self.bounds.add_subscriber(self._on_bounds)
+        self.tap = self.bounds = None  # made with the map (map_view)
         self.pointer = hv.streams.PointerXY(x=np.nan, y=np.nan)
         self.state.param.watch(self._on_settings, ["window_days", "overlap", "model", "estimator", "observation",
                                                     "auto_band", "max_freq", "taper", "inertial", "track"])
@@ -207,7 +204,7 @@ class Explorer(param.Parameterized):
         return float(x.max() - x.min()) if len(x) else 1.0
 
     def _on_bounds(self, bounds=None, **_):
-        if not bounds:
+        if not bounds or bounds[0] == bounds[2] or bounds[1] == bounds[3]:
             return
         x0, y0, x1, y1 = bounds
         ll = ccrs.PlateCarree().transform_points(self.crs, np.array([x0, x1]), np.array([y0, y1]))
@@ -320,13 +317,21 @@ class Explorer(param.Parameterized):
                                    responsive=True, min_height=420, clabel=pn.bind(self._clabel,
                                                                                    self.state.param.color_by),
                                    bgcolor="#eef2f5")
-        self.tap.source = shaded
-        self.bounds.source = shaded
+        # the streams are bound to the plot they listen to when it is made
+        self.tap = hv.streams.Tap(source=shaded, x=np.nan, y=np.nan)
+        self.tap.add_subscriber(self._on_tap)
+        # box select acts on glyphs that support selection: an invisible, thinned copy of the samples
+        step = max(1, len(self.points) // 5000)
+        picker = hv.Points((self.points["x"].to_numpy()[::step], self.points["y"].to_numpy()[::step]),
+                           kdims=["x", "y"]).opts(alpha=0, nonselection_alpha=0, selection_alpha=0, size=1,
+                                                  tools=["box_select"])
+        self.bounds = hv.streams.BoundsXY(source=picker, bounds=(0, 0, 0, 0))
+        self.bounds.add_subscriber(self._on_bounds)
         self.pointer.source = shaded
         sel = hv.DynamicMap(pn.bind(self._selected_path, self.state.param.track))
         box = hv.DynamicMap(pn.bind(self._region_box, self.state.param.region))
         (x0, x1), (y0, y1) = self.extent
-        return (shaded * self._coast() * sel * box).opts(hv.opts.Overlay(
+        return (shaded * picker * self._coast() * sel * box).opts(hv.opts.Overlay(
             responsive=True, min_height=420, title="All tracks", xlim=(x0, x1), ylim=(y0, y1),
             data_aspect=1))
 
@@ -388,7 +393,7 @@ class Explorer(param.Parameterized):
             f"{lonlat[1]:.2f}°N {lonlat[0]:.2f}°E", css_classes=["ds-readout"], margin=(10, 10, 4, 10))
 
     @param.depends("state.track", "state.window", "state.window_days", "state.overlap", "state.model",
-                   "state.estimator")
+                   "state.estimator", "state.region")
     def summary_view(self):
         """One line saying what is selected (also what a browser test reads)."""
         ws = self.windows()
@@ -397,7 +402,9 @@ class Explorer(param.Parameterized):
         when = f" ({cur.start:%Y-%m-%d} to {cur.end:%Y-%m-%d})" if cur is not None else ""
         return pn.pane.Markdown(
             f"**Track {st.track}** · window {min(st.window, max(len(ws) - 1, 0)) + 1} of {len(ws)}{when} · "
-            f"{len(ws)} windows of {st.window_days:g} days · model {st.model} · {st.estimator} estimator",
+            f"{len(ws)} windows of {st.window_days:g} days · model {st.model} · {st.estimator} estimator"
+            + (f" · region {st.region[1]:.1f}..{st.region[3]:.1f}°N, {st.region[0]:.1f}..{st.region[2]:.1f}°E "
+               f"({len(self.tracks_in_region())} tracks)" if st.region else ""),
             css_classes=["ds-summary"], sizing_mode="stretch_width")
 
     @param.depends("state.track", "state.window", "state.window_days", "state.overlap", "state.presentation")
