@@ -372,7 +372,7 @@ class Explorer(param.Parameterized):
 
     def _region_box(self, region):
         if not region:
-            return hv.Bounds((0, 0, 0, 0)).opts(alpha=0)
+            return hv.Bounds((np.nan,) * 4).opts(color="#2b5fd9", line_width=2)  # same style: only data change
         lon0, lat0, lon1, lat1 = region
         xy = self.crs.transform_points(ccrs.PlateCarree(), np.array([lon0, lon1]), np.array([lat0, lat1]))
         return hv.Bounds((xy[0, 0], xy[0, 1], xy[1, 0], xy[1, 1])).opts(color="#2b5fd9", line_width=2)
