@@ -252,10 +252,15 @@ def run_fits(windows: Iterable[Window], out, opts: FitOptions, *, workers: int =
 
 
 def _run_pool(chunks, opts, workers, save, bar, stop_after_chunks, written) -> bool:
+    import multiprocessing
     from concurrent.futures import FIRST_COMPLETED, wait
 
     in_flight = {}
-    with ProcessPoolExecutor(max_workers=workers) as pool:
+    # forkserver: workers start from a small process, not a copy of this one (which may hold a whole data
+    # set), and no threads are forked
+    ctx = multiprocessing.get_context("forkserver") if "forkserver" in multiprocessing.get_all_start_methods() \
+        else None
+    with ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
         for c in itertools.chain(chunks, [None]):
             if c is not None:
                 in_flight[pool.submit(fit_chunk, c, opts)] = len(c)
