@@ -349,10 +349,14 @@ class Explorer(param.Parameterized):
         """Shoreline rings near the data (projected), so the map opens on the data, not the globe."""
         (x0, x1), (y0, y1) = self.extent
         w, h = x1 - x0, y1 - y0
-        keep = [p for p in shoreline_paths(self.crs)
-                if p[:, 0].max() > x0 - w and p[:, 0].min() < x1 + w and p[:, 1].max() > y0 - h
-                and p[:, 1].min() < y1 + h]
-        return hv.Path(keep, kdims=["x", "y"]).opts(color="#5b5b5b", line_width=0.8)
+        if getattr(self, "_coast_xy", None) is None:
+            keep = [p for p in shoreline_paths(self.crs)
+                    if p[:, 0].max() > x0 - w and p[:, 0].min() < x1 + w and p[:, 1].max() > y0 - h
+                    and p[:, 1].min() < y1 + h]
+            # one NaN-separated path draws as fast as one line; hundreds of separate paths do not
+            gap = np.full((1, 2), np.nan)
+            self._coast_xy = np.concatenate([a for p in keep for a in (p, gap)]) if keep else np.zeros((0, 2))
+        return hv.Path([self._coast_xy], kdims=["x", "y"]).opts(color="#5b5b5b", line_width=0.8)
 
     @staticmethod
     def _cmap(color_by):

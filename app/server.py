@@ -99,6 +99,20 @@ def make_app(input_path: Path, fits_path: Path | None = None):
     return session
 
 
+def _warm_up():
+    """Compile datashader's aggregation kernels (numba) before the first page asks for them."""
+    import datashader as dsh
+    import holoviews as hv
+    import numpy as np
+    from holoviews.operation.datashader import dynspread, rasterize
+
+    hv.extension("bokeh", logo=False)
+    pts = hv.Points((np.random.default_rng(0).random(100), np.random.default_rng(1).random(100), np.ones(100)),
+                    vdims=["value"])
+    hv.render(dynspread(rasterize(pts, aggregator=dsh.mean("value"), dynamic=False, width=50, height=50),
+                        threshold=0.6, max_px=2))
+
+
 def serve(input_path=None, fits=None, port=5006, address="127.0.0.1", show=False, extra_origins=()):
     """Start the dashboard server and block; prints the URL."""
     from driftspec.analysis.errors import InputError
@@ -114,6 +128,7 @@ def serve(input_path=None, fits=None, port=5006, address="127.0.0.1", show=False
     from driftspec.analysis.models.matern import _tables
 
     _tables()  # build the Matérn table before the first click
+    _warm_up()
     origins = [f"{address}:{port}", f"localhost:{port}", f"127.0.0.1:{port}", *extra_origins]
     url = f"http://{address}:{port}/driftspec"
     print(f"driftspec: dashboard at {url}  (Ctrl+C to stop)", flush=True)
