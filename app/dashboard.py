@@ -291,6 +291,10 @@ class Explorer(param.Parameterized):
         self.poll()
 
     # ------------------------------------------------------------------ views
+    def _ink(self):
+        """Colour of model lines: dark on the light theme, light on the dark one."""
+        return "#e6e6f0" if self.state.theme == "dark" else COLOURS["model"]
+
     def _fontscale(self):
         return 1.8 if self.state.presentation else 1.0
 
@@ -463,10 +467,10 @@ class Explorer(param.Parameterized):
                 om = np.argsort(fa)
                 e_side, in_side = ee[side_sel][om], inb[side_sel][om]
                 layers.append(hv.Curve((fa[om], np.where(in_side, e_side, np.nan)), kd, vd,
-                                       label="fitted model").opts(color=COLOURS["model"], line_width=2.2 * fs,
+                                       label="fitted model").opts(color=self._ink(), line_width=2.2 * fs,
                                                                   line_dash="dashed"))
                 layers.append(hv.Curve((fa[om], np.where(in_side, np.nan, e_side)), kd, vd,
-                                       label="model beyond fitted band").opts(color=COLOURS["model"],
+                                       label="model beyond fitted band").opts(color=self._ink(),
                                                                               line_width=1.2 * fs,
                                                                               line_dash="dotted"))
                 floor = res.noise_floor(fa[om] * sign)
@@ -625,7 +629,7 @@ class Explorer(param.Parameterized):
                          label="observed κ(τ)").opts(color=COLOURS["ccw"], line_width=2)
         a, b = res.plateau_lags
         plateau = hv.Curve(([a, b], [res.plateau, res.plateau]), "lag (days)", "kappa",
-                           label=f"plateau {res.plateau:.0f} m²/s").opts(color=COLOURS["model"], line_width=4)
+                           label=f"plateau {res.plateau:.0f} m²/s").opts(color=self._ink(), line_width=4)
         layers = [band, curve, plateau]
         text = (f"observed plateau ({a:g}-{b:g} days) **{res.plateau:.0f} m²/s** "
                 f"[{res.plateau_lower:.0f}, {res.plateau_upper:.0f}], {res.n_tracks} track segments")
