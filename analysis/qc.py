@@ -192,3 +192,36 @@ def _per_track(codes, uniques, reason, fixes) -> pd.DataFrame:
     span = fixes.groupby("id", observed=True)["time"].agg(first_time="min", last_time="max")
     span.index = span.index.astype(str)
     return table.merge(span, left_on="id", right_index=True, how="left")
+
+
+def clean_fixes_in_batches(raw: pd.DataFrame, max_speed: float = DEFAULT_MAX_SPEED, source: str = "",
+                           tracks_per_batch: int = 500):
+    """:func:`clean_fixes` a few hundred tracks at a time, for inputs too large to clean in one piece.
+
+    Quality control is per track, so the result is the same as one pass. Yields ``(fixes, report)`` for
+    each batch (rows without a track id go with the first); :func:`merge_reports` combines the reports.
+    """
+    from .resample import track_codes
+
+    codes, _ = track_codes(raw["id"]) if isinstance(raw["id"].dtype, pd.CategoricalDtype) else \
+        (pd.factorize(raw["id"].to_numpy(), sort=True)[0].astype(np.int64), None)
+    order = np.argsort(codes, kind="stable")
+    sorted_codes = codes[order]
+    starts = np.flatnonzero(np.r_[True, sorted_codes[1:] != sorted_codes[:-1]])
+    first_real = int(np.searchsorted(sorted_codes[starts], 0))  # skip the block of missing ids (-1)
+    bounds = np.r_[0, starts[first_real:][tracks_per_batch::tracks_per_batch], len(order)]
+    for a, b in zip(bounds[:-1], bounds[1:]):
+        rows = np.sort(order[a:b])
+        yield clean_fixes(raw.take(rows).reset_index(drop=True), max_speed=max_speed, source=source)
+
+
+def merge_reports(reports, source: str = "") -> QCReport:
+    """One report for several batches of the same input."""
+    reports = list(reports)
+    if not reports:
+        return QCReport(0, 0, {r: 0 for r in REASONS}, 0, DEFAULT_MAX_SPEED, pd.DataFrame(), source)
+    dropped = {r: sum(rep.dropped[r] for rep in reports) for r in REASONS}
+    per_track = pd.concat([rep.per_track for rep in reports], ignore_index=True).sort_values("id", kind="stable")
+    return QCReport(sum(r.input_rows for r in reports), sum(r.kept_rows for r in reports), dropped,
+                    sum(r.reordered_rows for r in reports), reports[0].max_speed_m_s,
+                    per_track.reset_index(drop=True), source or reports[0].source)

@@ -167,19 +167,21 @@ def cmd_fit(args):
             raise SystemExit(f"driftspec: unknown model {m!r}; choose from {', '.join(FAMILIES)}")
     if not 0 <= args.overlap < 1:
         raise SystemExit("driftspec: --overlap must be in [0, 1)")
-    import itertools
-
     from driftspec.analysis.io import read_fixes
     from driftspec.analysis.pipeline import estimate_windows, iter_velocity_batches
-    from driftspec.analysis.qc import clean_fixes
+    from driftspec.analysis.qc import clean_fixes_in_batches, merge_reports
 
     prep = _prep_options(args)
-    fixes, report = clean_fixes(read_fixes(args.input), max_speed=prep.max_speed, source=str(args.input))
-    print(report.summary(), file=sys.stderr)
-    # stream: grid and cut windows for a few hundred tracks at a time
-    windows = itertools.chain.from_iterable(
-        iter_windows(vel, args.window_days, args.overlap, args.min_coverage, use_measured=args.velocity == "measured")
-        for vel in iter_velocity_batches(fixes, prep))
+    raw = read_fixes(args.input)
+    total = estimate_windows(raw[["id", "time"]].dropna(), args.window_days, args.overlap)
+    reports = []
+
+    def batches():  # stream: clean, grid and cut windows a few hundred tracks at a time
+        for fixes, report in clean_fixes_in_batches(raw, max_speed=prep.max_speed, source=str(args.input)):
+            reports.append(report)
+            for vel in iter_velocity_batches(fixes, prep):
+                yield from iter_windows(vel, args.window_days, args.overlap, args.min_coverage,
+                                        use_measured=args.velocity == "measured")
     import pandas as pd
 
     from driftspec.analysis.observation import default_max_freq
@@ -206,9 +208,9 @@ def cmd_fit(args):
                       inertial_frequency=args.inertial_frequency, observation=observation,
                       velocity_operator="central" if measured else args.velocity, position_noise=noise,
                       noise_from_input=args.position_noise == "input", bootstrap=args.bootstrap)
-    df = run_fits(windows, args.out, opts, workers=args.workers, dask_address=args.dask, resume=args.resume,
-                  progress=not args.no_progress, total=estimate_windows(fixes, args.window_days, args.overlap),
-                  chunk_size=args.chunk_size)
+    df = run_fits(batches(), args.out, opts, workers=args.workers, dask_address=args.dask, resume=args.resume,
+                  progress=not args.no_progress, total=total, chunk_size=args.chunk_size)
+    print(merge_reports(reports, str(args.input)).summary(), file=sys.stderr)
     print(summarise(df))
     print(f"wrote {args.out}")
     return 0
