@@ -12,6 +12,7 @@ from __future__ import annotations
 import itertools
 import os
 import shutil
+import zlib
 from collections.abc import Iterable, Sequence
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
@@ -19,7 +20,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from .fitting import fit_series
+from .fitting import bootstrap_stderr, fit_series
 from .models import get_family
 from .observation import observed
 from .windows import Window
@@ -86,10 +87,6 @@ def fit_window(w: Window, opts: FitOptions) -> list[dict]:
                            position_noise=_noise_for(w, opts))
             row = r.to_row()
             if opts.bootstrap and r.ok:
-                import zlib
-
-                from .fitting import bootstrap_stderr
-
                 seed = zlib.crc32(f"{w.track_id}|{w.start.value}|{m}".encode())  # same in every process
                 row.update({f"{k}_se_boot": v for k, v in bootstrap_stderr(r, opts.bootstrap, seed).items()})
         except Exception as exc:  # noqa: BLE001 - a failed fit is a row, not a crash

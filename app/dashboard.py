@@ -785,8 +785,7 @@ class Explorer(param.Parameterized):
 
     def _sync_url(self):
         if pn.state.location is not None:
-            pn.state.location.sync(self.state, {p: p for p in URL_PARAMS if p != "region"})
-            pn.state.location.sync(self.state, {"region": "region"})
+            pn.state.location.sync(self.state, {p: p for p in URL_PARAMS})
 
     def _start_poller(self):
         if getattr(self, "_poller", None) is None:

@@ -120,6 +120,12 @@ def _table_text(page):
     return page.locator(".tabulator").first.inner_text(timeout=30_000)
 
 
+def _map_box(page):
+    """Bounding box of the map: the largest canvas on the page."""
+    boxes = [c.bounding_box() for c in page.locator("canvas").all()]
+    return max((b for b in boxes if b), key=lambda b: b["width"] * b["height"])
+
+
 def _wait_change(fn, old, timeout=30.0):
     deadline = time.time() + timeout
     while time.time() < deadline:
@@ -143,9 +149,8 @@ def test_clicking_a_track_selects_it(server, page, artifacts_dir):
     _open(page, server)
     before = _velocity_title(page)
     table_before = _table_text(page)
-    # the map is the largest canvas; click points across it until a different track is selected
-    boxes = [c.bounding_box() for c in page.locator("canvas").all()]
-    box = max((b for b in boxes if b), key=lambda b: b["width"] * b["height"])
+    # click points across the map until a different track is selected
+    box = _map_box(page)
     after = before
     for fx in (0.5, 0.3, 0.7, 0.4, 0.6, 0.2, 0.8):
         for fy in (0.5, 0.3, 0.7, 0.4, 0.6):
@@ -166,8 +171,7 @@ def test_box_select_sets_the_region(server, page, artifacts_dir):
     _open(page, server)
     before = _velocity_title(page)
     assert "region" not in before
-    boxes = [c.bounding_box() for c in page.locator("canvas").all()]
-    box = max((b for b in boxes if b), key=lambda b: b["width"] * b["height"])
+    box = _map_box(page)
     page.locator("[title='Box Select']").first.click()
     x, y = box["x"] + 0.25 * box["width"], box["y"] + 0.25 * box["height"]
     page.mouse.move(x, y)
