@@ -31,6 +31,7 @@ Whittle, P. (1953). Estimation and information in stationary time series. Arkiv 
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -64,6 +65,17 @@ class PreparedWindow:
     @property
     def n(self) -> int:
         return self.z.size
+
+    @functools.cached_property
+    def band_index(self) -> np.ndarray:
+        """FFT-order indices of the fitted band."""
+        return np.flatnonzero(self.band)
+
+    @functools.cached_property
+    def band_fold(self) -> np.ndarray:
+        """``|k|`` for each band index (its place in a one-sided real FFT)."""
+        k = self.band_index
+        return np.minimum(k, self.n - k)
 
     @property
     def n_valid(self) -> int:
@@ -152,6 +164,45 @@ def expected_periodogram(family: ModelFamily, theta, prep: PreparedWindow, conte
     spec = scipy.fft.fft(stack, axis=-1)
     e = prep.dt_days * (2 * spec.real - stack[:, :1].real)
     return (e[0], e[1:]) if jacobian else e[0]
+
+
+def expected_in_band(family: ModelFamily, theta, prep: PreparedWindow, context: FitContext):
+    """``E[I_k]`` and ``dE/dx`` over the fitted band only (what the optimiser needs), in band order.
+
+    Same values as :func:`expected_periodogram`; components with a real autocovariance and real lag weights
+    (a stationary Matérn, position noise, any component of a real-valued series) go through a real FFT and
+    are read off at ``|k|``, the others through a complex FFT.
+    """
+    theta = np.asarray(theta, float)
+    n, nb = prep.n, prep.band_index.size
+    e = np.zeros(nb)
+    de = np.empty((len(theta), nb))
+    for comp, sl in family.components():
+        r, jac = comp.autocovariance_jacobian(theta[sl], prep.lags_days, context)
+        q = sl.stop - sl.start
+        weights = prep.modulated_weights if comp.modulated else prep.lag_weights
+        if comp.modulated and prep.real_valued:
+            rows = np.real(weights * np.vstack([r, jac]))
+            spec = scipy.fft.rfft(rows, axis=-1).real[:, prep.band_fold]
+        elif prep.real_valued or (comp.real_autocovariance and not comp.modulated):
+            rows = np.empty((1 + q, n))
+            rows[0] = np.real(r)
+            rows[1:] = np.real(jac)
+            rows *= weights
+            spec = scipy.fft.rfft(rows, axis=-1).real[:, prep.band_fold]
+        else:
+            rows = np.empty((1 + q, n), dtype=complex)
+            rows[0] = r
+            rows[1:] = jac
+            rows *= weights
+            spec = scipy.fft.fft(rows, axis=-1)[:, prep.band_index].real
+        spec *= 2.0
+        spec -= rows[:, :1].real
+        e += spec[0]
+        de[sl] = spec[1:]
+    e *= prep.dt_days
+    de *= prep.dt_days
+    return e, de
 
 
 def whittle_expectation(family: ModelFamily, theta, prep: PreparedWindow, context: FitContext):

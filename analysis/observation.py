@@ -50,6 +50,7 @@ about ``0.25 f_N`` (3 cpd for hourly data), and even then the Matérn slope is b
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -101,6 +102,7 @@ OPERATORS = {
 }
 
 
+@functools.lru_cache(maxsize=8)
 def _simpson_weights(h: int) -> tuple[np.ndarray, np.ndarray]:
     """Offsets (in samples, step 1/2) and weights of Simpson's rule for the triangle of half-width h."""
     s = np.arange(-2 * h, 2 * h + 1) / 2.0
@@ -114,6 +116,7 @@ def _simpson_weights(h: int) -> tuple[np.ndarray, np.ndarray]:
     return s, w
 
 
+@functools.lru_cache(maxsize=8)
 def _moment_weights(h: int) -> np.ndarray:
     """Weights on nodes -h..h (samples) matching the triangle's even moments 0, 2, .., 2h exactly.
 
@@ -136,6 +139,7 @@ class _AveragedComponent(ModelFamily):
         self.name = base.name
         self.parameters = base.parameters
         self.modulated = base.modulated
+        self.real_autocovariance = base.real_autocovariance  # a symmetric average of a real, even function
         self._s, self._w = _simpson_weights(op.half_width)
         self._w_int = _moment_weights(op.half_width)
 
@@ -173,11 +177,14 @@ class _AveragedComponent(ModelFamily):
         rows = [r_all[None, :]] + ([j_all] if jac else [])
         stack = np.concatenate(rows, axis=0)  # (1 + p, points): value and derivatives together
         v_int, v_half, v_near = stack[:, :a], stack[:, a:b], stack[:, b:]
-        out = np.zeros((stack.shape[0], n), complex)
-        # far lags: the moment-matched rule on integer nodes j-h .. j+h (exact for polynomials of degree 2h)
+        out = np.zeros((stack.shape[0], n), stack.dtype)  # real for a real autocovariance
+        # far lags: the moment-matched rule on integer nodes j-h .. j+h (exact for polynomials of degree 2h);
+        # its weights are symmetric, so nodes j-m and j+m share one multiplication
         if n > n_mid:
-            for m, w in zip(range(-h, h + 1), self._w_int):
-                out[:, n_mid:] += w * v_int[:, n_mid + m:n + m]
+            far = out[:, n_mid:]
+            np.multiply(v_int[:, n_mid:n], self._w_int[h], out=far)
+            for m in range(1, h + 1):
+                far += self._w_int[h + m] * (v_int[:, n_mid - m:n - m] + v_int[:, n_mid + m:n + m])
         # middle lags: Simpson on half samples; v_half[q - 2] is the value at q / 2 samples
         if n_mid > h + 1:
             mids = np.arange(h + 1, n_mid)
@@ -231,6 +238,7 @@ class PositionNoise(ModelFamily):
 
     name = "position_noise"
     parameters = (Parameter("position_noise", "m", 0.5, 5000.0, "white position noise per component"),)
+    real_autocovariance = True
 
     def __init__(self, op: DifferenceOperator):
         self.op = op
@@ -261,8 +269,9 @@ class PositionNoise(ModelFamily):
         if not top.any():
             return np.array([50.0])
         shape = self.spectral_density([1.0], freq_cpd[top], context)
-        sigma2 = np.median(p[top] / np.maximum(shape, 1e-300))
-        return np.array([float(np.clip(np.sqrt(max(sigma2, 0)) * 0.5, 2.0, 2000.0))])
+        # the mean ratio to the unit-noise spectrum, less a fifth for the ocean's share up there
+        sigma2 = 0.8 * np.mean(p[top] / np.maximum(shape, 1e-300))
+        return np.array([float(np.clip(np.sqrt(max(sigma2, 0)), 2.0, 2000.0))])
 
 
 class ObservedFamily(ModelFamily):
@@ -314,10 +323,16 @@ class ObservedFamily(ModelFamily):
         return b
 
     def initial_guess(self, freq_cpd, power, context: FitContext):
-        g = self.base.initial_guess(freq_cpd, power, context)
+        # noise from the top of the band first; the ocean from what is left, with the operator's
+        # averaging undone where it still passes a tenth of the power
+        f, p = np.asarray(freq_cpd, float), np.asarray(power, float)
+        g_noise = np.zeros(0)
         if len(self.parameters) > len(self.base.parameters):
-            g = np.concatenate([g, self._parts[-1][0].initial_guess(freq_cpd, power, context)])
-        return g
+            noise = self._parts[-1][0]
+            g_noise = noise.initial_guess(f, p, context)
+            p = np.maximum(p - np.real(noise.spectral_density(g_noise, f, context)), 0.05 * p)
+        p = p / np.maximum(self.operator.power_response(f, context.dt_days), 0.1)
+        return np.concatenate([self.base.initial_guess(f, p, context), g_noise])
 
     def derived(self, theta, context):
         return self.base.derived(np.asarray(theta, float)[: len(self.base.parameters)], context)

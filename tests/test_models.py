@@ -72,31 +72,54 @@ def test_ou_diffusivity_is_taylor_value():
     assert t_int == pytest.approx(num, rel=1e-5)
 
 
-@pytest.mark.parametrize("model,theta,modulated", [
-    ("matern+inertial", [0.02, 1.3, 1.0, 0.01, -1.0, 0.3], False),
-    ("matern+inertial", [0.02, 1.3, 1.0, 0.01, 0.3], True),
+@pytest.mark.parametrize("model,theta,modulated,real,observation", [
+    ("matern+inertial", [0.02, 1.3, 1.0, 0.01, -1.0, 0.3], False, False, "none"),
+    ("matern+inertial", [0.02, 1.3, 1.0, 0.01, 0.3], True, False, "none"),
+    ("matern+inertial", [0.02, 1.3, 1.0, 0.01, -1.0, 0.3], False, True, "none"),
+    ("matern+inertial", [0.02, 1.3, 1.0, 0.01, 0.3], True, True, "none"),
+    ("matern+inertial", [0.02, 1.3, 1.0, 0.01, -1.0, 0.3, 150.0], False, False, "differenced+noise"),
 ])
-def test_expected_periodogram_equals_quadratic_form(model, theta, modulated, rng):
+def test_expected_periodogram_equals_quadratic_form(model, theta, modulated, real, observation, rng):
     # E|sum_t h_t z_t e^{-i theta t}|^2 = b^H Sigma b with b_t = h_t e^{+i theta t} and
-    # Sigma_ts = E[z_t conj z_s]: a brute-force O(N^2) evaluation of the same expectation
+    # Sigma_ts = E[z_t conj z_s]: a brute-force O(N^2) evaluation of the same expectation, for the full
+    # FFT-order expected periodogram and for the optimiser's band-only path (real FFT for real parts)
+    from driftspec.analysis.likelihood import expected_in_band
+    from driftspec.analysis.observation import observed
+
     n = 200
-    fam = get_family(model, "follow-latitude" if modulated else "free")
-    z = rng.standard_normal(n) + 1j * rng.standard_normal(n)
+    fam = observed(get_family(model, "follow-latitude" if modulated else "free"), observation)
+    z = rng.standard_normal(n) + (0 if real else 1j * rng.standard_normal(n))
     z[50:80] = np.nan
     lat = np.linspace(25, 35, n)
-    prep = prepare_window(z, 1 / 24, taper="hann", modulated=modulated, latitude_series=lat)
+    prep = prepare_window(z, 1 / 24, taper="hann", modulated=modulated, latitude_series=lat, max_freq=9.0)
     ctx = FitContext(dt_days=1 / 24, latitude=30.0, inertial_frequency_cpd=-1.0, latitude_series=lat)
     e = expected_periodogram(fam, theta, prep, ctx)
+    e_band, de_band = expected_in_band(fam, theta, prep, ctx)
+    in_band = dict(zip(prep.band_index, e_band))
     t = np.arange(n)
     lag = t[:, None] - t[None, :]
     sigma = np.zeros((n, n), complex)
     for comp, sl in fam.components():
-        r = comp.autocovariance(np.asarray(theta)[sl], np.abs(lag).ravel() / 24.0, ctx).reshape(n, n)
+        r = np.asarray(comp.autocovariance(np.asarray(theta)[sl], np.arange(n) / 24.0, ctx))[np.abs(lag)]
         r = np.where(lag >= 0, r, np.conj(r))
         if comp.modulated:
             r = r * np.outer(prep.modulation, np.conj(prep.modulation))
         sigma += r
-    for k in (1, 7, 40, 100, 150):
+    if real:
+        sigma = sigma.real
+    for k in (1, 7, 40, 100, 150, 190):
         b = prep.taper * np.exp(2j * np.pi * k * t / n)
         ref = (1 / 24) * np.real(np.conj(b) @ sigma @ b)
         assert e[k] == pytest.approx(ref, rel=1e-9)
+        if k in in_band:
+            assert in_band[k] == pytest.approx(ref, rel=1e-9)
+    assert len(in_band) == prep.band.sum() > 20
+    # the band path's derivatives (optimiser coordinates: log for scale parameters) by central differences
+    x = np.array([np.log(v) if p.scale == "log" else v for v, p in zip(theta, fam.parameters)])
+    for j in range(len(theta)):
+        step = np.zeros(len(theta))
+        step[j] = 1e-6
+        up, dn = ([np.exp(v) if p.scale == "log" else v for v, p in zip(x + sgn * step, fam.parameters)]
+                  for sgn in (1, -1))
+        fd = (expected_in_band(fam, up, prep, ctx)[0] - expected_in_band(fam, dn, prep, ctx)[0]) / 2e-6
+        assert np.allclose(de_band[j], fd, rtol=1e-5, atol=1e-6 * np.abs(fd).max())

@@ -67,6 +67,9 @@ class ModelFamily:
     #: ``True`` when the component is a stationary process multiplied by the known unit-modulus
     #: sequence ``exp(i phase(t))`` of the window (see :mod:`driftspec.analysis.likelihood`).
     modulated: bool = False
+    #: ``True`` when the autocovariance is real (so even in the lag): its expected periodogram is then
+    #: symmetric and comes from a real FFT of half the cost (see ``likelihood.expected_in_band``).
+    real_autocovariance: bool = False
 
     # --- what a family must provide -------------------------------------------------------------
     def autocovariance(self, theta, lags_days, context: FitContext) -> np.ndarray:

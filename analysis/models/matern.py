@@ -27,13 +27,14 @@ References
 "Fractional Brownian motion, the Matérn process, and stochastic modeling of turbulent dispersion".
 Nonlinear Processes in Geophysics 24, 481-514 (2017). doi:10.5194/npg-24-481-2017
 
-Gneiting, T., Kleiber, W., Schlather, M. (2010). Matérn cross-covariance functions for multivariate
-random fields. Journal of the American Statistical Association 105, 1167-1177 (the Matérn form).
+"Matérn cross-covariance functions for multivariate random fields". Journal of the American Statistical
+Association 105, 1167-1177 (2010) (the Matérn form).
 """
 
 from __future__ import annotations
 
 import functools
+import math
 
 import numpy as np
 from scipy.special import gammaln, kv
@@ -41,7 +42,9 @@ from scipy.special import gammaln, kv
 from .base import FitContext, ModelFamily, Parameter
 
 _NU_MIN, _NU_MAX, _NU_STEP = 0.06, 4.52, 0.01
-_U_MIN, _U_MAX, _U_N = np.log(1e-7), np.log(80.0), 1601
+_U_MIN, _U_MAX, _U_N = float(np.log(1e-7)), float(np.log(80.0)), 1601
+_INV_H = (_U_N - 1) / (_U_MAX - _U_MIN)
+_X_TINY = 1e-300
 
 
 @functools.lru_cache(maxsize=1)
@@ -53,7 +56,21 @@ def _tables():
     logc = (1 - n) * np.log(2.0) - gammaln(n)
     rho = np.exp(logc + n * np.log(x)) * kv(n, x)
     drho = -np.exp(logc + (n + 1) * np.log(x)) * kv(n - 1, x)
-    return nu, u, rho, drho
+    # the cubic Hermite interpolant on each u-interval as a polynomial in q = (u - u_i)/h:
+    # c0 + c1 q + c2 q^2 + c3 q^3, stored as (nu row, coefficient, interval) for row-wise combination
+    h = u[1] - u[0]
+    y0, y1, m0, m1 = rho[:, :-1], rho[:, 1:], h * drho[:, :-1], h * drho[:, 1:]
+    coef = np.stack([y0, m0, 3 * (y1 - y0) - 2 * m0 - m1, 2 * (y0 - y1) + m0 + m1], axis=1)
+    return nu, u, rho, drho, np.ascontiguousarray(coef)
+
+
+def _lagrange(t: float):
+    """Cubic Lagrange weights over rows k-1 .. k+2 at offset ``t`` from row k, and their t-derivatives."""
+    w = np.array([-t * (t - 1) * (t - 2) / 6, (t + 1) * (t - 1) * (t - 2) / 2,
+                  -(t + 1) * t * (t - 2) / 2, (t + 1) * t * (t - 1) / 6])
+    dw = np.array([-(3 * t * t - 6 * t + 2) / 6, (3 * t * t - 4 * t - 1) / 2,
+                   -(3 * t * t - 2 * t - 2) / 2, (3 * t * t - 1) / 6])
+    return w, dw
 
 
 def matern_correlation_exact(nu, x):
@@ -67,46 +84,38 @@ def matern_correlation_exact(nu, x):
 
 def matern_correlation(nu: float, x: np.ndarray, derivatives: bool = False):
     """Tabulated ``rho_nu(x)`` for ``x >= 0``, optionally with ``d rho/d nu`` and ``d rho/d log x``."""
-    nus, us, rho, drho = _tables()
+    nus, _, _, _, coef = _tables()
+    nu = float(nu)
     if not (_NU_MIN - 1e-12 <= nu <= _NU_MAX + 1e-12):
         raise ValueError(f"Matérn order nu={nu} outside the tabulated range [{_NU_MIN}, {_NU_MAX}]")
     x = np.asarray(x, float)
-    # cubic Lagrange weights in nu over rows k-1 .. k+2
-    s = (nu - nus[0]) / _NU_STEP
-    k = int(np.clip(np.floor(s), 1, len(nus) - 3))
-    t = s - k
-    w = np.array([-t * (t - 1) * (t - 2) / 6, (t + 1) * (t - 1) * (t - 2) / 2,
-                  -(t + 1) * t * (t - 2) / 2, (t + 1) * t * (t - 1) / 6])
-    rows = slice(k - 1, k + 3)
-    zero = x <= 0
-    u = np.log(np.where(zero, 1.0, x))
-    h = us[1] - us[0]
-    j = (np.clip(u, _U_MIN, _U_MAX) - _U_MIN) / h
+    s = (nu - float(nus[0])) / _NU_STEP
+    k = min(max(math.floor(s), 1), len(nus) - 3)
+    w, dw = _lagrange(s - k)
+    block = coef[k - 1:k + 3].reshape(4, -1)
+    # combine the four nu rows first (table length), then evaluate the interval polynomials at the lags
+    c = (w @ block).reshape(4, -1)
+    u = np.log(np.maximum(x, _X_TINY))
+    j = np.minimum(np.maximum(u, _U_MIN), _U_MAX)
+    j -= _U_MIN
+    j *= _INV_H
     i = np.minimum(j.astype(np.int64), _U_N - 2)
     q = j - i
-    q2, q3 = q * q, q * q * q
-    h00, h10, h01, h11 = 2 * q3 - 3 * q2 + 1, q3 - 2 * q2 + q, -2 * q3 + 3 * q2, q3 - q2
-
-    def hermite(values, slopes, basis):
-        b00, b10, b01, b11 = basis
-        return b00 * values[i] + b10 * slopes[i] * h + b01 * values[i + 1] + b11 * slopes[i + 1] * h
-
-    # combine the four nu rows first (cheap, table length), then interpolate in u at the lags
-    r_row, d_row = w @ rho[rows], w @ drho[rows]
-    beyond = u >= _U_MAX
-    val = hermite(r_row, d_row, (h00, h10, h01, h11))
-    val[beyond] = 0.0
+    c0, c1, c2, c3 = c[0][i], c[1][i], c[2][i], c[3][i]
+    val = ((c3 * q + c2) * q + c1) * q + c0
+    zero = x <= 0
+    outside = zero | (u >= _U_MAX)  # rho = 1 at 0 and 0 beyond the table, both with zero derivatives
+    val[outside] = 0.0
     val[zero] = 1.0
     if not derivatives:
         return val
-    dw = np.array([-(3 * t * t - 6 * t + 2) / 6, (3 * t * t - 4 * t - 1) / 2,
-                   -(3 * t * t - 2 * t - 2) / 2, (3 * t * t - 1) / 6]) / _NU_STEP
-    d_nu = hermite(dw @ rho[rows], dw @ drho[rows], (h00, h10, h01, h11))
-    du_basis = ((6 * q2 - 6 * q) / h, (3 * q2 - 4 * q + 1) / h, (-6 * q2 + 6 * q) / h, (3 * q2 - 2 * q) / h)
-    d_u = hermite(r_row, d_row, du_basis)
+    d = (dw @ block).reshape(4, -1)
+    d *= 1.0 / _NU_STEP
+    d_nu = ((d[3][i] * q + d[2][i]) * q + d[1][i]) * q + d[0][i]
+    d_u = ((3 * c3 * q + 2 * c2) * q + c1) * _INV_H
     d_u[u < _U_MIN] = 0.0  # clamped region: treated as constant
-    for d in (d_nu, d_u):
-        d[beyond | zero] = 0.0
+    d_nu[outside] = 0.0
+    d_u[outside] = 0.0
     return val, d_nu, d_u
 
 
@@ -114,6 +123,7 @@ class Matern(ModelFamily):
     """Matérn background: ``matern_variance``, ``matern_alpha``, ``matern_damping``."""
 
     name = "matern"
+    real_autocovariance = True
     parameters = (
         Parameter("matern_variance", "m2 s-2", 1e-8, 10.0, "variance E|z|^2 of the background"),
         Parameter("matern_alpha", "1", _NU_MIN + 0.5 + 0.03, _NU_MAX + 0.5 - 0.03,
@@ -123,13 +133,16 @@ class Matern(ModelFamily):
 
     def autocovariance(self, theta, lags_days, context=None):
         var, alpha, lam = theta
-        return var * matern_correlation(alpha - 0.5, lam * np.abs(lags_days)).astype(complex)
+        return var * matern_correlation(alpha - 0.5, lam * np.abs(lags_days))
 
     def autocovariance_jacobian(self, theta, lags_days, context=None):
         var, alpha, lam = theta
         rho, d_nu, d_u = matern_correlation(alpha - 0.5, lam * np.abs(lags_days), derivatives=True)
         r = var * rho
-        return r.astype(complex), np.stack([r, var * d_nu, var * d_u]).astype(complex)
+        jac = np.empty((3, r.size))
+        jac[0], jac[1], jac[2] = r, d_nu, d_u
+        jac[1:] *= var
+        return r, jac
 
     @staticmethod
     def _norm(var, alpha, lam):
@@ -150,7 +163,9 @@ class Matern(ModelFamily):
         var = max(float(np.sum(p) * df), 1e-6)
         af = np.abs(f)
         fmax = af.max() if af.size else 1.0
-        hi = (af > 0.2 * fmax) & (p > 0)
+        # the slope from the upper band, but below half the Nyquist frequency, where aliasing flattens it
+        top = min(fmax, 0.25 / context.dt_days) if context.dt_days else fmax
+        hi = (af > 0.25 * top) & (af <= top) & (p > 0)
         if context.inertial_frequency_cpd is not None:
             hi &= np.abs(np.abs(f) - abs(context.inertial_frequency_cpd)) > 0.3
         alpha = 1.0
