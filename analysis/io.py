@@ -38,7 +38,7 @@ import xarray as xr
 
 from .errors import InputError
 
-__all__ = ["read_fixes", "write_fixes", "fixes_to_cf_dataset", "COLUMN_ALIASES"]
+__all__ = ["read_fixes", "FixReader", "write_fixes", "fixes_to_cf_dataset", "COLUMN_ALIASES"]
 
 #: accepted column names (case-insensitive) for each standard column
 COLUMN_ALIASES = {
@@ -54,8 +54,9 @@ REQUIRED = ("id", "time", "lat", "lon")
 OPTIONAL_NUMERIC = ("position_error_m", "u", "v")
 
 
-def _standardise_columns(df: pd.DataFrame, where: str) -> pd.DataFrame:
-    lower = {str(c).strip().lower(): c for c in df.columns}
+def _column_map(columns, where: str) -> dict:
+    """``{source column: standard column}`` for the columns driftspec reads (first alias found wins)."""
+    lower = {str(c).strip().lower(): c for c in columns}
     rename = {}
     for std, aliases in COLUMN_ALIASES.items():
         for a in aliases:
@@ -65,8 +66,13 @@ def _standardise_columns(df: pd.DataFrame, where: str) -> pd.DataFrame:
     missing = [c for c in REQUIRED if c not in rename.values()]
     if missing:
         raise InputError(
-            f"{where}: missing column(s) {', '.join(missing)}; found {', '.join(map(str, df.columns))}"
+            f"{where}: missing column(s) {', '.join(missing)}; found {', '.join(map(str, columns))}"
         )
+    return rename
+
+
+def _standardise_columns(df: pd.DataFrame, where: str) -> pd.DataFrame:
+    rename = _column_map(df.columns, where)
     return df.rename(columns=rename)[[c for c in COLUMN_ALIASES if c in rename.values()]]
 
 
@@ -110,10 +116,11 @@ def _track_ids(ids: pd.Series) -> pd.Categorical:
     return pd.Categorical(text.where(~missing).to_numpy(dtype=object, na_value=None))
 
 
-def _coerce(df: pd.DataFrame) -> pd.DataFrame:
+def _coerce(df: pd.DataFrame, first_row: int = 0) -> pd.DataFrame:
     """Parse columns; keep every row; record which raw values were present but unparseable.
 
     Typed columns (as Parquet and netCDF deliver them) skip the string handling that CSV needs.
+    ``first_row`` is the source row of ``df``'s first row (for chunks of a larger input).
     """
     out = pd.DataFrame(index=np.arange(len(df)))
     out["id"] = _track_ids(df["id"])
@@ -134,7 +141,7 @@ def _coerce(df: pd.DataFrame) -> pd.DataFrame:
             bad_value |= (~_blank(raw)) & num.isna().to_numpy()
         out[col] = num.to_numpy()
     out["value_unparseable"] = bad_value
-    out["row"] = np.arange(len(df), dtype=np.int64)
+    out["row"] = np.arange(first_row, first_row + len(df), dtype=np.int64)
     return out
 
 
@@ -281,6 +288,112 @@ def read_fixes(source) -> pd.DataFrame:
         else:
             raw = _standardise_columns(_read_table(path), where)
     return _coerce(raw)
+
+
+class FixReader:
+    """Fixes from a source, whole or a few hundred thousand rows at a time, each chunk holding whole tracks.
+
+    A Parquet file whose tracks are contiguous (each track's rows together, as ``driftspec qc`` and
+    ``driftspec demo`` write them) is read in chunks of about ``rows_per_chunk`` rows, so that memory stays
+    bounded however large the input; any other source is read whole by :func:`read_fixes`. Either way every
+    chunk is in the form ``read_fixes`` returns, ``row`` numbering the source rows, and the chunks together
+    hold every input row exactly once.
+
+    >>> reader = FixReader("demo_data/fixes.parquet")        # doctest: +SKIP
+    >>> for chunk in reader: ...                             # doctest: +SKIP
+    """
+
+    def __init__(self, source, rows_per_chunk: int = 1_000_000):
+        self.source = source
+        self.rows_per_chunk = int(rows_per_chunk)
+        self._whole = None
+        self._spans = None
+        self.streaming = False
+        path = None if isinstance(source, (pd.DataFrame, xr.Dataset)) else Path(os.fspath(source))
+        if path is not None and path.suffix.lower() in (".parquet", ".pq") and path.exists():
+            self._open_parquet(path)
+        if not self.streaming:
+            self._whole = read_fixes(source)
+
+    def _open_parquet(self, path: Path) -> None:
+        import pyarrow.parquet as pq
+
+        try:
+            schema = pq.read_schema(path)
+        except (OSError, ValueError) as exc:
+            raise InputError(f"{path}: cannot read ({str(exc).strip().splitlines()[0]})") from exc
+        rename = _column_map(schema.names, str(path))
+        self._path, self._rename = path, rename
+        src = {std: col for col, std in rename.items()}
+        import pyarrow as pa
+
+        if not pa.types.is_timestamp(schema.field(src["time"]).type):
+            return  # times as text: parsed in one piece by read_fixes
+        table = pq.read_table(path, columns=[src["id"], src["time"]], read_dictionary=[src["id"]])
+        ids = table.column(0).to_pandas()
+        names = pd.Index(ids.cat.categories.astype(str)).str.strip() if isinstance(
+            ids.dtype, pd.CategoricalDtype) else None
+        if names is None or not names.is_unique:
+            return
+        codes = ids.cat.codes.to_numpy()
+        t = table.column(1).cast(pa.timestamp("ns")).to_numpy(zero_copy_only=False).view(np.int64)
+        del table, ids
+        has = codes >= 0
+        c, t = codes[has], t[has]
+        starts = np.flatnonzero(np.r_[True, c[1:] != c[:-1]]) if c.size else np.zeros(0, np.int64)
+        if starts.size != np.unique(c).size:
+            return  # a track's rows are split: read whole
+        nat = np.iinfo(np.int64).min
+        first = np.minimum.reduceat(np.where(t == nat, np.iinfo(np.int64).max, t), starts) if c.size else t
+        last = np.maximum.reduceat(t, starts) if c.size else t
+        ok = (first != np.iinfo(np.int64).max) & (last != nat)
+        self._spans = pd.DataFrame({"id": names[c[starts]][ok], "first": first[ok].astype("datetime64[ns]"),
+                                    "last": last[ok].astype("datetime64[ns]")})
+        self.streaming = True
+
+    def spans(self) -> pd.DataFrame:
+        """First and last fix time of each track (``id``, ``first``, ``last``), for progress estimates."""
+        if self._spans is None:
+            span = self._whole.dropna(subset=["id", "time"]).groupby("id", observed=True)["time"].agg(
+                first="min", last="max")
+            self._spans = span.reset_index()
+        return self._spans
+
+    def __iter__(self):
+        if not self.streaming:
+            yield self._whole
+            return
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        src = {std: col for col, std in self._rename.items()}
+        cols = [src[c] for c in COLUMN_ALIASES if c in src]
+        pf = pq.ParquetFile(self._path, read_dictionary=[src["id"]])
+        carry, first_row = None, 0
+        where = str(self._path)
+        for batch in pf.iter_batches(batch_size=self.rows_per_chunk, columns=cols):
+            table = pa.Table.from_batches([batch])
+            if carry is not None:
+                table = pa.concat_tables([carry, table])
+            codes = table.column(src["id"]).to_pandas().cat.codes.to_numpy()
+            # hold back the last track (it may go on in the next batch), with any id-less rows after it
+            real = np.flatnonzero(codes >= 0)
+            cut = table.num_rows
+            if real.size:
+                last = codes[real[-1]]
+                other = real[codes[real] != last]
+                cut = int(other[-1]) + 1 if other.size else 0
+            if cut == 0:
+                carry = table
+                continue
+            carry = table.slice(cut) if cut < table.num_rows else None
+            yield self._chunk(table.slice(0, cut), where, first_row)
+            first_row += cut
+        if carry is not None and carry.num_rows:
+            yield self._chunk(carry, where, first_row)
+
+    def _chunk(self, table, where, first_row):
+        return _coerce(_standardise_columns(table.to_pandas(), where), first_row)
 
 
 def fixes_to_cf_dataset(fixes: pd.DataFrame, attrs: dict | None = None) -> xr.Dataset:

@@ -47,10 +47,13 @@ def iter_velocity_batches(fixes: pd.DataFrame, options: PrepOptions | None = Non
         yield grid_velocities(fixes.iloc[a:b], options)
 
 
-def estimate_windows(fixes: pd.DataFrame, window_days: float, overlap: float) -> int:
-    """Upper estimate of the number of windows (from each track's time span), for progress bars."""
-    span = fixes.groupby("id", observed=True)["time"].agg(["min", "max"])
-    days = (span["max"] - span["min"]).dt.total_seconds().to_numpy() / 86400.0
+def estimate_windows(spans: pd.DataFrame, window_days: float, overlap: float) -> int:
+    """Upper estimate of the number of windows from each track's time span (columns ``first``, ``last``, as
+    :meth:`~driftspec.analysis.io.FixReader.spans` gives them, or fixes with ``id``, ``time``), for progress."""
+    if "time" in spans:
+        spans = spans.dropna(subset=["id", "time"]).groupby("id", observed=True)["time"].agg(
+            first="min", last="max")
+    days = (spans["last"] - spans["first"]).dt.total_seconds().to_numpy() / 86400.0
     hop = window_days * (1 - overlap)
     return int(np.sum(np.maximum(0, np.floor((days - window_days) / hop) + 1)))
 

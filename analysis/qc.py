@@ -29,6 +29,8 @@ REASONS = ("missing_value", "unparseable_time", "unparseable_value", "latitude_r
 
 #: Default speed ceiling, m/s. Common practice for surface drifters (no single published source).
 DEFAULT_MAX_SPEED = 3.0
+#: the per-track table's line for rows without a track id
+MISSING_ID = "<missing id>"
 
 
 @dataclass
@@ -187,7 +189,7 @@ def _per_track(codes, uniques, reason, fixes) -> pd.DataFrame:
                          minlength=ntr * len(names)).reshape(-1, len(names))
     table = pd.DataFrame(counts, columns=["kept_rows", *REASONS])
     table.insert(0, "input_rows", counts.sum(axis=1))
-    table.insert(0, "id", [*map(str, uniques), "<missing id>"])
+    table.insert(0, "id", [*map(str, uniques), MISSING_ID])
     table = table[table["input_rows"] > 0].reset_index(drop=True)
     span = fixes.groupby("id", observed=True)["time"].agg(first_time="min", last_time="max")
     span.index = span.index.astype(str)
@@ -221,7 +223,13 @@ def merge_reports(reports, source: str = "") -> QCReport:
     if not reports:
         return QCReport(0, 0, {r: 0 for r in REASONS}, 0, DEFAULT_MAX_SPEED, pd.DataFrame(), source)
     dropped = {r: sum(rep.dropped[r] for rep in reports) for r in REASONS}
-    per_track = pd.concat([rep.per_track for rep in reports], ignore_index=True).sort_values("id", kind="stable")
+    per_track = pd.concat([rep.per_track for rep in reports], ignore_index=True)
+    missing = (per_track["id"] == MISSING_ID).to_numpy()
+    lines = [per_track.loc[~missing].sort_values("id", kind="stable")]
+    if missing.any():  # rows without an id, met in one batch or several: one line, last
+        counts = per_track.loc[missing].drop(columns=["id", "first_time", "last_time"]).sum()
+        lines.append(pd.DataFrame([{"id": MISSING_ID, **counts.to_dict()}]))
+    per_track = pd.concat(lines, ignore_index=True)
     return QCReport(sum(r.input_rows for r in reports), sum(r.kept_rows for r in reports), dropped,
                     sum(r.reordered_rows for r in reports), reports[0].max_speed_m_s,
                     per_track.reset_index(drop=True), source or reports[0].source)

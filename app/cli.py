@@ -167,21 +167,22 @@ def cmd_fit(args):
             raise SystemExit(f"driftspec: unknown model {m!r}; choose from {', '.join(FAMILIES)}")
     if not 0 <= args.overlap < 1:
         raise SystemExit("driftspec: --overlap must be in [0, 1)")
-    from driftspec.analysis.io import read_fixes
+    from driftspec.analysis.io import FixReader
     from driftspec.analysis.pipeline import estimate_windows, iter_velocity_batches
     from driftspec.analysis.qc import clean_fixes_in_batches, merge_reports
 
     prep = _prep_options(args)
-    raw = read_fixes(args.input)
-    total = estimate_windows(raw[["id", "time"]].dropna(), args.window_days, args.overlap)
+    reader = FixReader(args.input)  # track-contiguous Parquet: read a million rows at a time
+    total = estimate_windows(reader.spans(), args.window_days, args.overlap)
     reports = []
 
-    def batches():  # stream: clean, grid and cut windows a few hundred tracks at a time
-        for fixes, report in clean_fixes_in_batches(raw, max_speed=prep.max_speed, source=str(args.input)):
-            reports.append(report)
-            for vel in iter_velocity_batches(fixes, prep):
-                yield from iter_windows(vel, args.window_days, args.overlap, args.min_coverage,
-                                        use_measured=args.velocity == "measured")
+    def batches():  # stream: read, clean, grid and cut windows a few hundred tracks at a time
+        for raw in reader:
+            for fixes, report in clean_fixes_in_batches(raw, max_speed=prep.max_speed, source=str(args.input)):
+                reports.append(report)
+                for vel in iter_velocity_batches(fixes, prep):
+                    yield from iter_windows(vel, args.window_days, args.overlap, args.min_coverage,
+                                            use_measured=args.velocity == "measured")
     import pandas as pd
 
     from driftspec.analysis.observation import default_max_freq
