@@ -290,6 +290,20 @@ def read_fixes(source) -> pd.DataFrame:
     return _coerce(raw)
 
 
+def _reraise_as_input_error(batches, where):
+    """Record batches, with a damaged file reported as bad input rather than a traceback."""
+    import pyarrow as pa
+
+    while True:
+        try:
+            batch = next(batches)
+        except StopIteration:
+            return
+        except (OSError, ValueError, pa.ArrowException) as exc:
+            raise InputError(f"{where}: cannot read ({str(exc).strip().splitlines()[0]})") from exc
+        yield batch
+
+
 class FixReader:
     """Fixes from a source, whole or a few hundred thousand rows at a time, each chunk holding whole tracks.
 
@@ -329,7 +343,10 @@ class FixReader:
 
         if not pa.types.is_timestamp(schema.field(src["time"]).type):
             return  # times as text: parsed in one piece by read_fixes
-        table = pq.read_table(path, columns=[src["id"], src["time"]], read_dictionary=[src["id"]])
+        try:
+            table = pq.read_table(path, columns=[src["id"], src["time"]], read_dictionary=[src["id"]])
+        except (OSError, ValueError, pa.ArrowException) as exc:
+            raise InputError(f"{path}: cannot read ({str(exc).strip().splitlines()[0]})") from exc
         ids = table.column(0).to_pandas()
         names = pd.Index(ids.cat.categories.astype(str)).str.strip() if isinstance(
             ids.dtype, pd.CategoricalDtype) else None
@@ -368,10 +385,14 @@ class FixReader:
 
         src = {std: col for col, std in self._rename.items()}
         cols = [src[c] for c in COLUMN_ALIASES if c in src]
-        pf = pq.ParquetFile(self._path, read_dictionary=[src["id"]])
-        carry, first_row = None, 0
         where = str(self._path)
-        for batch in pf.iter_batches(batch_size=self.rows_per_chunk, columns=cols):
+        try:
+            pf = pq.ParquetFile(self._path, read_dictionary=[src["id"]])
+            batches = pf.iter_batches(batch_size=self.rows_per_chunk, columns=cols)
+        except (OSError, ValueError, pa.ArrowException) as exc:
+            raise InputError(f"{where}: cannot read ({str(exc).strip().splitlines()[0]})") from exc
+        carry, first_row = None, 0
+        for batch in _reraise_as_input_error(batches, where):
             table = pa.Table.from_batches([batch])
             if carry is not None:
                 table = pa.concat_tables([carry, table])

@@ -55,6 +55,23 @@ def test_bad_input_is_one_line_exit_2(tmp_path, content, needle):
     assert not (tmp_path / "o.parquet").exists()
 
 
+def test_damaged_parquet_is_one_line_exit_2(tmp_path, demo_dir):
+    # a file whose footer is intact but whose data pages are damaged (zstd frames overwritten) fails when
+    # its rows are decoded, in the middle of a streamed read: still one line and exit status 2
+    fixes = pd.read_parquet(demo_dir / "fixes.parquet")
+    path = tmp_path / "damaged.parquet"
+    fixes.to_parquet(path, compression="zstd", row_group_size=20_000)
+    data = bytearray(path.read_bytes())
+    mid = len(data) // 2
+    data[mid:mid + 4096] = bytes(4096)
+    path.write_bytes(bytes(data))
+    r = run("fit", path, "--out", tmp_path / "f.parquet", "--workers", 1, "--no-progress")
+    assert r.returncode == 2, r.stderr[-2000:]
+    assert "damaged.parquet" in r.stderr and "Traceback" not in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
+    assert not (tmp_path / "f.parquet").exists()
+
+
 def test_missing_file_exit_2(tmp_path):
     r = run("fit", tmp_path / "nope.parquet", "--out", tmp_path / "f.parquet")
     assert r.returncode == 2 and "no such file" in r.stderr
