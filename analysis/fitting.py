@@ -261,7 +261,10 @@ def _fisher_scoring(family, prep, context, full, x0, lo, hi, free, counter, max_
         dlog = de if all_free else de[free]
         dlog /= eb
         grad = dlog @ (1.0 - ratio)
+        last[xf.tobytes()] = eb
         return val, grad, dlog @ dlog.T
+
+    last = {}  # expected periodogram in the band at each evaluated point (the optimum's is kept)
 
     x = np.clip(x0, lo, hi)
     val, grad, fisher = evaluate(x)
@@ -308,7 +311,8 @@ def _fisher_scoring(family, prep, context, full, x0, lo, hi, free, counter, max_
         if small and decrement < 1e-5:
             success, message = True, "converged (objective change)"
             break
-    return scipy.optimize.OptimizeResult(x=x, fun=val, success=success, message=message, fisher=fisher)
+    return scipy.optimize.OptimizeResult(x=x, fun=val, success=success, message=message, fisher=fisher,
+                                         expected_band=last.get(np.asarray(x).tobytes()))
 
 
 def _empty(model, estimator, family, status, message, n=0, n_valid=0):
@@ -561,11 +565,14 @@ def _optimise(family, model_name, estimator, prep, context, fixed, free, start):
     kap_se = float(np.sqrt(max(grad @ cov_x @ grad, 0))) if np.all(np.isfinite(cov_x)) else np.nan
 
     # goodness of fit over the band
-    if estimator == "whittle":
-        e_fit = whittle_expectation(family, theta, prep, context)
-    else:
-        e_fit = expected_periodogram(family, theta, prep, context)
-    ratios = prep.periodogram[prep.band] / np.maximum(e_fit[prep.band], 1e-300)
+    e_band = getattr(res, "expected_band", None) if estimator == "debiased" else None
+    if e_band is None:
+        if estimator == "whittle":
+            e_fit = whittle_expectation(family, theta, prep, context)
+        else:
+            e_fit = expected_periodogram(family, theta, prep, context)
+        e_band = e_fit[prep.band_index]
+    ratios = prep.periodogram[prep.band_index] / np.maximum(e_band, 1e-300)
     gof = ks_exponential_pvalue(ratios)
 
     # status

@@ -170,11 +170,20 @@ class Matern(ModelFamily):
             hi &= np.abs(np.abs(f) - abs(context.inertial_frequency_cpd)) > 0.3
         alpha = 1.0
         if hi.sum() > 8:
-            slope = np.polyfit(np.log(af[hi]), np.log(p[hi]), 1)[0]
+            lx, ly = np.log(af[hi]), np.log(p[hi])
+            lx = lx - lx.mean()
+            slope = float(lx @ (ly - ly.mean()) / (lx @ lx))  # least-squares slope in log-log
             alpha = float(np.clip(-slope / 2, 0.6, 3.5))
+        # S(0) = var 2 sqrt(pi) Gamma(alpha) / Gamma(alpha - 1/2) / lambda, with S(0) from the lowest bins
+        # corrected for the fall-off (1 + (omega/lambda)^2)^(-alpha) across them (a few fixed-point steps)
         lo = np.argsort(af)[: max(3, int(0.02 * af.size))]
-        s0 = float(np.mean(p[lo])) if lo.size else var
-        lam = var * 2 * np.sqrt(np.pi) * np.exp(gammaln(alpha) - gammaln(alpha - 0.5)) / max(s0, 1e-12)
+        num = var * 2 * np.sqrt(np.pi) * np.exp(gammaln(alpha) - gammaln(alpha - 0.5))
+        w2 = (2 * np.pi * af[lo]) ** 2
+        lam = num / max(float(np.mean(p[lo])), 1e-12) if lo.size else 1.0
+        for _ in range(4 if lo.size else 0):
+            lam = float(np.clip(lam, 0.02, 20.0))
+            s0 = float(np.mean(p[lo] * (1 + w2 / lam**2) ** alpha))
+            lam = num / max(s0, 1e-12)
         lam = float(np.clip(lam, 0.02, 20.0))
         return np.array([var, alpha, lam])
 
