@@ -270,7 +270,12 @@ def _fisher_scoring(family, prep, context, full, x0, lo, hi, free, counter, max_
     val, grad, fisher = evaluate(x)
     if not np.isfinite(val):
         return None
-    mu = 1e-3
+    # the longest step per coordinate: a factor e^3 for log-scaled parameters, half the range for linear
+    # ones; a poorly determined parameter (tiny curvature) would otherwise jump from bound to bound
+    scales = [p.scale for p, f in zip(family.parameters, free) if f]
+    cap = np.array([3.0 if sc == "log" else 0.5 * (h - l) for sc, l, h in zip(scales, lo, hi)])
+    mu, nu = 1e-3, 2.0
+    flat = 0  # accepted steps in a row that changed the objective by a negligible amount
     success, message = False, "maximum iterations reached"
     for _ in range(max_iter):
         active = ((x <= lo) & (grad > 0)) | ((x >= hi) & (grad < 0))
@@ -295,20 +300,31 @@ def _fisher_scoring(family, prep, context, full, x0, lo, hi, free, counter, max_
             except np.linalg.LinAlgError:
                 mu *= 10
                 continue
+            longest = float(np.max(np.abs(step) / cap))
+            if longest > 1.0:
+                step /= longest
             x_new = np.clip(x + step, lo, hi)
             val_new, grad_new, fisher_new = evaluate(x_new)
             if val_new < val:
                 improved = True
                 small = val - val_new < 1e-10 * max(1.0, abs(val))
+                flat = flat + 1 if val - val_new < 1e-7 else 0
+                # gain ratio: actual decrease over the quadratic model's (Nielsen's damping update), so
+                # that a poor quadratic model (a curved valley) keeps the steps damped instead of zig-zagging
+                s_act = (x_new - x)[act]
+                predicted = -(g_act @ s_act + 0.5 * s_act @ f_act @ s_act)
+                rho = (val - val_new) / predicted if predicted > 0 else 0.0
                 x, val, grad, fisher = x_new, val_new, grad_new, fisher_new
-                mu = max(mu / 10, 1e-7)
+                mu = max(mu * max(1 / 3, 1 - (2 * rho - 1) ** 3), 1e-7)
+                nu = 2.0
                 break
-            mu *= 10
+            mu *= nu
+            nu *= 2
         if not improved:
             success = decrement < 1e-4
             message = "no further decrease" if success else "line search failed"
             break
-        if small and decrement < 1e-5:
+        if (small and decrement < 1e-5) or flat >= 3:
             success, message = True, "converged (objective change)"
             break
     return scipy.optimize.OptimizeResult(x=x, fun=val, success=success, message=message, fisher=fisher,
