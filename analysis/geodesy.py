@@ -54,6 +54,32 @@ def displacement_east_north_m(lat0, lon0, lat1, lon1, lat_ref=None, lon_ref=None
     return e * scale, n * scale
 
 
+class PointFrames:
+    """Unit vectors and local east/north frames of many points, computed once (four trigonometric calls per
+    point) and shared by every displacement between them, as finite differences on a grid need."""
+
+    def __init__(self, lat_deg, lon_deg):
+        phi, lam = np.deg2rad(np.asarray(lat_deg, float)), np.deg2rad(np.asarray(lon_deg, float))
+        self.sin_phi, self.cos_phi = np.sin(phi), np.cos(phi)
+        self.sin_lam, self.cos_lam = np.sin(lam), np.cos(lam)
+        self.xyz = np.stack([self.cos_phi * self.cos_lam, self.cos_phi * self.sin_lam, self.sin_phi])
+
+    def displacement_east_north_m(self, i0, i1, iref):
+        """As :func:`displacement_east_north_m` from point ``i0`` to ``i1`` in the frame of point ``iref``
+        (index arrays). The great-circle length comes from the chord, ``2 R asin(|p1 - p0| / 2)``."""
+        d = self.xyz[:, i1] - self.xyz[:, i0]
+        sl, cl = self.sin_lam[iref], self.cos_lam[iref]
+        sp, cp = self.sin_phi[iref], self.cos_phi[iref]
+        east = -sl * d[0] + cl * d[1]
+        north = -sp * (cl * d[0] + sl * d[1]) + cp * d[2]
+        chord3 = np.sqrt(d[0] ** 2 + d[1] ** 2 + d[2] ** 2)
+        dist = 2.0 * EARTH_RADIUS_M * np.arcsin(np.minimum(0.5 * chord3, 1.0))
+        chord = np.hypot(east, north)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            scale = np.where(chord > 0, dist / np.where(chord > 0, chord, 1.0), 0.0)
+        return east * scale, north * scale
+
+
 def wrap_lon(lon):
     """Longitude wrapped to [-180, 180)."""
     return (np.asarray(lon, dtype=float) + 180.0) % 360.0 - 180.0

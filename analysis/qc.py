@@ -144,9 +144,13 @@ def clean_fixes(raw: pd.DataFrame, max_speed: float = DEFAULT_MAX_SPEED, source:
     rows = np.flatnonzero(reason == 0)
     codes = all_codes[rows]
     t_ns = raw["time"].to_numpy().astype("datetime64[ns]").view(np.int64)[rows]
-    order = np.lexsort((t_ns, codes))
-    reordered = int(np.count_nonzero(order != np.arange(len(order))))
-    rows, codes, t_ns = rows[order], codes[order], t_ns[order]
+    same = codes[1:] == codes[:-1]
+    if np.all(codes[1:] >= codes[:-1]) and np.all(t_ns[1:][same] >= t_ns[:-1][same]):
+        reordered = 0  # already in (id, time) order, as written files usually are: no sort needed
+    else:
+        order = np.lexsort((t_ns, codes))
+        reordered = int(np.count_nonzero(order != np.arange(len(order))))
+        rows, codes, t_ns = rows[order], codes[order], t_ns[order]
     dup = np.zeros(len(rows), dtype=bool)
     dup[1:] = (codes[1:] == codes[:-1]) & (t_ns[1:] == t_ns[:-1])
     reason[rows[dup]] = code["duplicate_time"]

@@ -17,7 +17,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .geodesy import displacement_east_north_m
+from .geodesy import PointFrames, displacement_east_north_m
 from .resample import track_codes
 
 VELOCITY_METHODS = ("central", "forward")
@@ -59,8 +59,7 @@ def add_velocity(grid: pd.DataFrame, method: str = "central") -> pd.DataFrame:
         ok[1:-1] = same_next[:-2] & same_next[1:-1] & valid[:-2] & valid[2:] & valid[1:-1]
         i = np.flatnonzero(ok)
         dt = (t_ns[i + 1] - t_ns[i - 1]) / 1e9
-        e, nn = displacement_east_north_m(lat[i - 1], lon[i - 1], lat[i + 1], lon[i + 1],
-                                          lat_ref=lat[i], lon_ref=lon[i])
+        e, nn = PointFrames(lat, lon).displacement_east_north_m(i - 1, i + 1, i)
         u[i], v[i] = e / dt, nn / dt
     else:
         ok = same_next & valid & np.append(valid[1:], False)

@@ -5,7 +5,7 @@ import pandas as pd
 import pytest
 from pyproj import Geod
 
-from driftspec.analysis.geodesy import displacement_east_north_m, great_circle_distance_m
+from driftspec.analysis.geodesy import PointFrames, displacement_east_north_m, great_circle_distance_m
 from driftspec.analysis.io import read_fixes
 from driftspec.analysis.qc import clean_fixes
 from driftspec.analysis.resample import regular_grid
@@ -30,6 +30,10 @@ def test_distance_and_azimuth_against_pyproj(lat0, lon0, lat1, lon1):
     assert np.hypot(e, n) == pytest.approx(dist, rel=SPHERE_TOL)
     # azimuth at the start point, clockwise from north
     assert np.degrees(np.arctan2(e, n)) % 360 == pytest.approx(az % 360, abs=0.5)
+    # the precomputed-frame form used on grids (chord-based length) gives the same displacement
+    frames = PointFrames(np.array([lat0, lat1]), np.array([lon0, lon1]))
+    e2, n2 = frames.displacement_east_north_m(np.array([0]), np.array([1]), np.array([0]))
+    assert (e2[0], n2[0]) == (pytest.approx(float(e), abs=1e-6), pytest.approx(float(n), abs=1e-6))
 
 
 def _track_along_geodesic(lat0, lon0, azimuth, speed, hours, tid="T1"):
