@@ -55,6 +55,7 @@ class FitOptions:
     position_noise: float | None = None
     noise_from_input: bool = False
     bootstrap: int = 0
+    stderr: str = "auto"
 
 
 def column_units(models: Iterable[str], inertial_frequency: str = "free", observation: str = "none") -> dict:
@@ -84,7 +85,7 @@ def fit_window(w: Window, opts: FitOptions) -> list[dict]:
                            latitude=lat, taper=opts.taper, exclude=opts.exclude or None,
                            inertial_frequency=opts.inertial_frequency, fixed=opts.fixed or None,
                            observation=opts.observation, velocity_operator=opts.velocity_operator,
-                           position_noise=_noise_for(w, opts))
+                           position_noise=_noise_for(w, opts), stderr=opts.stderr)
             row = r.to_row()
             if opts.bootstrap and r.ok:
                 seed = zlib.crc32(f"{w.track_id}|{w.start.value}|{m}".encode())  # same in every process

@@ -5,11 +5,14 @@ and the value itself for shape/frequency parameters, inside the family's bounds.
 objective comes with its exact gradient (one batched FFT); the others use finite differences.
 
 Standard errors (debiased and standard Whittle) come from the Fisher information of the Whittle form,
-``F = sum_band (d log E_k)(d log E_k)^T``, inflated by ``N sum_t h_t^4`` (the variance inflation of a
-tapered or masked periodogram, Percival & Walden 1993, section 6.4) because tapering and gaps correlate
-neighbouring periodogram ordinates; the exact likelihood uses its observed information (a
-finite-difference Hessian). Standard errors of positive parameters and of derived quantities follow by
-the delta method.
+``F = sum_band (d log E_k)(d log E_k)^T``. For a complete, untapered window the ordinates are nearly
+independent and ``F^-1`` is the variance (inflated by ``N sum_t h_t^4``, the variance inflation of a
+tapered or masked periodogram, Percival & Walden 1993, section 6.4). Gaps and tapers correlate ordinates
+by an amount that depends on the spectrum itself (a red spectrum leaks through the gaps' sidelobes), so
+for such windows the debiased estimator uses the sandwich ``F^-1 V F^-1`` with ``V`` the covariance of the
+score over periodograms simulated from the fitted model (:func:`score_covariance`); ``stderr=`` chooses.
+The exact likelihood uses its observed information (a finite-difference Hessian). Standard errors of
+positive parameters and of derived quantities follow by the delta method.
 
 Goodness of fit: over the fitted band the ratios ``I_k / E[I_k]`` are approximately independent standard
 exponential variables when the model is right; the p-value is the Kolmogorov-Smirnov test of that
@@ -31,9 +34,11 @@ s2-20, 196-212. doi:10.1112/plms/s2-20.1.196
 from __future__ import annotations
 
 import warnings
+import zlib
 from dataclasses import dataclass, field
 
 import numpy as np
+import scipy.fft
 import scipy.optimize
 from scipy.stats import kstwo
 
@@ -56,6 +61,8 @@ STATUSES = ("ok", "at_bound", "no_convergence", "too_few_samples", "failed")
 MIN_VALID_SAMPLES = 64
 #: above this many valid samples the exact likelihood warns (its cost grows as N^3)
 EXACT_WARN_SAMPLES = 3000
+#: how debiased-Whittle standard errors are computed (see :func:`fit_series`)
+STDERR_METHODS = ("auto", "fisher", "sandwich")
 
 
 @dataclass
@@ -81,6 +88,9 @@ class FitResult:
     n_samples, n_valid, n_freq : int
         Window length, valid samples, frequencies in the fitted band.
     n_evaluations : int
+    stderr_method : str
+        How the standard errors were computed: ``fisher`` (inflated inverse Fisher information),
+        ``sandwich`` (simulated score covariance), ``observed`` (exact likelihood's Hessian), or ``""``.
     """
 
     model: str
@@ -100,6 +110,7 @@ class FitResult:
     n_valid: int = 0
     n_freq: int = 0
     n_evaluations: int = 0
+    stderr_method: str = ""
     covariance: np.ndarray | None = field(default=None, repr=False)
     family: ModelFamily | None = field(default=None, repr=False)
     context: FitContext | None = field(default=None, repr=False)
@@ -143,6 +154,7 @@ class FitResult:
             "model": self.model, "estimator": self.estimator, "status": self.status,
             "message": self.message, "loglik": self.loglik, "aic": self.aic,
             "gof_pvalue": self.gof_pvalue, "n_valid": self.n_valid, "n_freq": self.n_freq,
+            "stderr_method": self.stderr_method,
         }
         for k, v in self.params.items():
             row[k] = v
@@ -200,35 +212,76 @@ def _numerical_hessian(fun, x, step=1e-4):
     return hess
 
 
+def _simulator(family, theta, prep, context):
+    """A function ``rng, size -> (size, n)`` series of the fitted (observed) process by circulant embedding,
+    modulated components multiplied by the window's modulation, with the window's missing samples NaN."""
+    from .simulate import embedding_autocovariance
+
+    comps = []
+    for comp, sl in family.components():
+        th = np.asarray(theta, float)[sl]
+        acov = np.asarray(embedding_autocovariance(lambda lag, c=comp, t=th: c.autocovariance(t, lag, context),
+                                                   prep.n, prep.dt_days), complex)
+        half = acov.size - 1
+        row = np.concatenate([acov, np.conj(acov[1:half][::-1])])
+        lam = np.clip(scipy.fft.fft(row).real, 0, None)  # the circulant embedding's eigenvalues
+        comps.append((comp, np.sqrt(lam * row.size)))
+
+    def draw(rng, size):
+        z = np.zeros((size, prep.n), complex)
+        for comp, amp in comps:
+            # z_j = sum_k sqrt(lam_k / m) eps_k exp(+2 pi i j k / m), eps standard complex normal
+            # (single-precision normals: twice as fast to draw, ample for a variance)
+            eps = rng.standard_normal((size, 2 * amp.size), dtype=np.float32).view(np.complex64)
+            x = scipy.fft.ifft(eps * (amp / np.sqrt(2.0)), axis=-1, overwrite_x=True)[:, :prep.n]
+            z += x * prep.modulation if comp.modulated else x
+        if prep.real_valued:
+            z = np.sqrt(2.0) * z.real  # the real part of a proper complex series carries half its variance
+        return np.where(prep.valid, z, np.nan)
+
+    return draw
+
+
+def score_covariance(family, theta, prep, context, free=None, n_sim: int = 64, seed=None) -> np.ndarray:
+    """Covariance of the debiased-Whittle score at ``theta`` (optimiser coordinates, free parameters) over
+    periodograms of series simulated from the model with the window's mask, taper and demeaning.
+
+    With independent ordinates it equals the Fisher information; gaps and tapers correlate them (by an
+    amount that depends on the spectrum's shape, which the ``N sum h^4`` factor ignores), and then the
+    sandwich ``F^-1 V F^-1`` is the variance of the estimator (the debiased Whittle paper, section 4).
+    ``seed`` defaults to one drawn from the window's periodogram, so a window always gets the same value.
+    """
+    free = np.ones(len(theta), bool) if free is None else np.asarray(free, bool)
+    e_band, de = expected_in_band(family, theta, prep, context)
+    dlog = de[free] / e_band
+    if seed is None:
+        seed = zlib.crc32(prep.periodogram.tobytes())
+    rng = np.random.default_rng(seed)
+    z = _simulator(family, theta, prep, context)(rng, n_sim)
+    valid = prep.valid
+    z = np.where(valid, z, 0.0)
+    zz = np.where(valid, z - z.sum(axis=1, keepdims=True) / max(prep.n_valid, 1), 0.0)
+    pg = prep.dt_days * np.abs(scipy.fft.fft(prep.taper * zz, axis=-1)[:, prep.band_index]) ** 2
+    scores = (1.0 - pg / e_band) @ dlog.T  # (n_sim, free)
+    return np.atleast_2d(np.cov(scores, rowvar=False))
+
+
 def bootstrap_stderr(result: FitResult, n_boot: int = 100, seed=0) -> dict:
     """Parametric-bootstrap standard errors: simulate from the fitted model by circulant embedding (the
     observed process, with the window's mask), refit each replicate, and take the standard deviation.
 
     Returns a dict keyed by parameter name (and ``diffusivity``); NaN when too few replicates fit.
     """
-    from .simulate import circulant_sample, embedding_autocovariance
-
     if result.family is None or not np.all(np.isfinite(result.theta)):
         return {k: np.nan for k in [*result.params, "diffusivity"]}
     prep, ctx, fam = result.prepared, result.context, result.family
     rng = np.random.default_rng(seed)
-    n = prep.n
-    comps = []
-    for comp, sl in fam.components():
-        theta = result.theta[sl]
-        acov = embedding_autocovariance(lambda lag, c=comp, t=theta: c.autocovariance(t, lag, ctx), n, prep.dt_days)
-        comps.append((comp, acov))
+    draw = _simulator(fam, result.theta, prep, ctx)
     top = float(np.abs(prep.freq_cpd[prep.band]).max())
     fixed = {k: v for k, v in result.params.items() if result.stderr.get(k) == 0.0}
     est = []
     for _ in range(n_boot):
-        z = np.zeros(n, complex)
-        for comp, acov in comps:
-            x = circulant_sample(acov, n, rng)[0]
-            z += x * prep.modulation if comp.modulated else x
-        if prep.real_valued:
-            z = z.real
-        z = np.where(prep.valid, z, np.nan)
+        z = draw(rng, 1)[0]
         r = _optimise(fam, result.model, "debiased", prepare_window(
             z, prep.dt_days, max_freq=top, modulated=fam.modulated, latitude_series=ctx.latitude_series),
             ctx, fixed, np.array([k not in fixed for k in fam.names]), None)
@@ -340,7 +393,7 @@ def _empty(model, estimator, family, status, message, n=0, n_valid=0):
 def fit_series(z, dt, *, model="matern+inertial", estimator="debiased", max_freq=None, latitude=None,
                mask=None, taper=None, exclude=None, fixed=None, inertial_frequency="free",
                observation="none", velocity_operator="central", position_noise=None,
-               start=None) -> FitResult:
+               start=None, stderr="auto") -> FitResult:
     """Fit a parametric model to the rotary spectrum of one window of complex velocity.
 
     Parameters
@@ -380,6 +433,12 @@ def fit_series(z, dt, *, model="matern+inertial", estimator="debiased", max_freq
         Hold ``position_noise`` (m) at this value instead of fitting it.
     start : dict, optional
         Starting values overriding the heuristic.
+    stderr : {"auto", "fisher", "sandwich"}
+        Debiased-Whittle standard errors: ``fisher`` inflates the inverse Fisher information by
+        ``N sum h^4`` (fast; right for complete, untapered windows); ``sandwich`` is ``F^-1 V F^-1`` with
+        ``V`` the variance of the score over periodograms simulated from the fitted model with the window's
+        mask and taper (honest when gaps correlate the ordinates; costs about one extra fit); ``auto``
+        (default) uses the sandwich exactly when the window has gaps or a taper.
 
     Returns
     -------
@@ -397,6 +456,8 @@ def fit_series(z, dt, *, model="matern+inertial", estimator="debiased", max_freq
     """
     if estimator not in ESTIMATORS:
         raise ValueError(f"estimator must be one of {ESTIMATORS}, got {estimator!r}")
+    if stderr not in STDERR_METHODS:
+        raise ValueError(f"stderr must be one of {STDERR_METHODS}, got {stderr!r}")
     family = observed(get_family(model, inertial_frequency), observation, velocity_operator)
     model_name = model if isinstance(model, str) else family.name
     dt_days = parse_timedelta_seconds(dt) / SECONDS_PER_DAY
@@ -448,12 +509,12 @@ def fit_series(z, dt, *, model="matern+inertial", estimator="debiased", max_freq
     if estimator == "exact" and n_valid > EXACT_WARN_SAMPLES:
         warnings.warn(f"exact likelihood with {n_valid} samples is slow (cost grows as N^3)", stacklevel=2)
     try:
-        return _optimise(family, model_name, estimator, prep, context, fixed, free, start)
+        return _optimise(family, model_name, estimator, prep, context, fixed, free, start, stderr)
     except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:
         return _empty(model_name, estimator, family, "failed", f"{type(exc).__name__}: {exc}", n, n_valid)
 
 
-def _optimise(family, model_name, estimator, prep, context, fixed, free, start):
+def _optimise(family, model_name, estimator, prep, context, fixed, free, start, stderr="fisher"):
     names = family.names
     bounds_nat = family.bounds(context)
     f_band = prep.freq_cpd[prep.band]
@@ -532,6 +593,7 @@ def _optimise(family, model_name, estimator, prep, context, fixed, free, start):
 
     # covariance in x coordinates for the free parameters
     cov_x = np.full((n_free, n_free), np.nan)
+    stderr_method = "observed" if estimator == "exact" else "fisher"
     with np.errstate(all="ignore"):
         try:
             if estimator == "exact":
@@ -558,7 +620,13 @@ def _optimise(family, model_name, estimator, prep, context, fixed, free, start):
                     b = prep.band
                     dlog = de[:, b] / e[b]
                     fisher = dlog @ dlog.T
-                cov_x = np.linalg.inv(fisher) * prep.variance_inflation
+                gappy = bool(np.ptp(prep.taper) > 0)  # missing samples or a taper
+                if estimator == "debiased" and (stderr == "sandwich" or (stderr == "auto" and gappy)):
+                    f_inv = np.linalg.inv(fisher)
+                    cov_x = f_inv @ score_covariance(family, theta, prep, context, free) @ f_inv
+                    stderr_method = "sandwich"
+                else:
+                    cov_x = np.linalg.inv(fisher) * prep.variance_inflation
         except np.linalg.LinAlgError:
             pass
     jac_nat = _nat_jacobian(theta, family)[free]
@@ -623,6 +691,7 @@ def _optimise(family, model_name, estimator, prep, context, fixed, free, start):
         units=family.units, loglik=loglik, aic=2 * n_free - 2 * loglik, gof_pvalue=gof,
         status=status, message=message, diffusivity=float(kap), diffusivity_se=kap_se,
         derived=family.derived(theta, context), n_samples=prep.n, n_valid=prep.n_valid,
-        n_freq=int(prep.band.sum()), n_evaluations=counter[0], covariance=cov_nat_free,
+        n_freq=int(prep.band.sum()), n_evaluations=counter[0], stderr_method=stderr_method,
+        covariance=cov_nat_free,
         family=family, context=context, prepared=prep,
     )

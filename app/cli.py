@@ -92,6 +92,10 @@ def build_parser() -> argparse.ArgumentParser:
                    help="leave out bands of |f| (cpd), e.g. 1.85:2.05 around semidiurnal tides")
     p.add_argument("--taper", choices=["none", "hann", "dpss"], default="none")
     p.add_argument("--inertial-frequency", choices=["free", "follow-latitude"], default="free")
+    p.add_argument("--stderr", choices=("auto", "fisher", "sandwich"), default="auto",
+                   help="standard errors: sandwich (score covariance simulated with the window's gaps) or "
+                        "fisher (inflated Fisher information; faster); auto: sandwich for windows with gaps "
+                        "(default: %(default)s)")
     p.add_argument("--bootstrap", type=int, default=0, metavar="B",
                    help="also parametric-bootstrap standard errors from B refits of simulated replicates "
                         "(columns *_se_boot)")
@@ -208,7 +212,8 @@ def cmd_fit(args):
                       taper=None if args.taper == "none" else args.taper, exclude=_exclusions(args.exclude),
                       inertial_frequency=args.inertial_frequency, observation=observation,
                       velocity_operator="central" if measured else args.velocity, position_noise=noise,
-                      noise_from_input=args.position_noise == "input", bootstrap=args.bootstrap)
+                      noise_from_input=args.position_noise == "input", bootstrap=args.bootstrap,
+                      stderr=args.stderr)
     df = run_fits(batches(), args.out, opts, workers=args.workers, dask_address=args.dask, resume=args.resume,
                   progress=not args.no_progress, total=total, chunk_size=args.chunk_size)
     print(merge_reports(reports, str(args.input)).summary(), file=sys.stderr)

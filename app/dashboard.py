@@ -522,7 +522,8 @@ class Explorer(param.Parameterized):
             f"**goodness of fit** p = {res.gof_pvalue:.3f} · log L = {res.loglik:.1f} · AIC = {res.aic:.1f}  \n"
             f"window {w.start:%Y-%m-%d} → {w.end:%Y-%m-%d} · {res.n_valid}/{res.n_samples} valid · "
             f"{res.n_freq} frequencies fitted · local f = {w.inertial_frequency_cpd:.3f} cpd · "
-            f"refit {self.refit_ms:.0f} ms", css_classes=["ds-fitinfo"])
+            f"{res.stderr_method or 'no'} standard errors · refit {self.refit_ms:.0f} ms",
+            css_classes=["ds-fitinfo"])
         return pn.Column(info, table, sizing_mode="stretch_width")
 
     @param.depends("track_fits", "state.presentation")

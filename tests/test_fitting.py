@@ -196,3 +196,70 @@ def test_goodness_of_fit_pvalue_matches_scipy_kstest(rng):
 
     for sample in (rng.exponential(1.0, 700), rng.exponential(1.3, 700), rng.gamma(2.0, 0.5, 50)):
         assert ks_exponential_pvalue(sample) == pytest.approx(kstest(sample, "expon").pvalue, rel=1e-6, abs=1e-12)
+
+
+def test_score_covariance_matches_gaussian_quadratic_form_formula():
+    # For a proper complex Gaussian series the tapered DFT J of the demeaned series is Gaussian with
+    # covariance C = dt F diag(h) P Sigma P^H diag(h) F^H (P removes the mean of the valid samples), and
+    # Cov(I_j, I_k) = |C_jk|^2 (Isserlis' theorem); the score covariance is then
+    # sum_jk u_j u_k |C_jk|^2 / (E_j E_k) with u = d log E. The simulated estimate used for sandwich
+    # standard errors must agree with this O(N^2) formula on a gappy window.
+    import scipy.linalg
+
+    from driftspec.analysis.fitting import score_covariance
+    from driftspec.analysis.likelihood import expected_in_band, prepare_window
+    from driftspec.analysis.models import FitContext, get_family
+
+    n, dt = 256, 1 / 24
+    theta = np.array([0.02, 1.2, 1.0])
+    fam = get_family("matern")
+    z = simulate("matern", theta, n=n, dt=HOUR, seed=3)
+    z[40:80] = np.nan
+    z[150:170] = np.nan
+    prep = prepare_window(z, dt, max_freq=6.0)
+    ctx = FitContext(dt_days=dt)
+    e, de = expected_in_band(fam, theta, prep, ctx)
+    u = de / e
+    r = fam.autocovariance(theta, prep.lags_days, ctx).astype(complex)
+    sigma = scipy.linalg.toeplitz(r, np.conj(r))
+    demean = np.eye(n) - np.outer(np.ones(n), prep.valid / prep.valid.sum())
+    sigma = demean @ sigma @ demean.T
+    h = prep.taper
+    m = (h[:, None] * sigma) * h[None, :]
+    c = dt * np.fft.fft(np.fft.fft(m, axis=0).conj().T, axis=0).conj().T
+    k = prep.band_index
+    exact = u @ (np.abs(c[np.ix_(k, k)]) ** 2 / np.outer(e, e)) @ u.T
+    sim = score_covariance(fam, theta, prep, ctx, n_sim=6000, seed=1)
+    assert np.allclose(np.diag(sim), np.diag(exact), rtol=0.06)  # 6000 draws: ~2 % sampling error
+    corr = lambda a: a / np.sqrt(np.outer(np.diag(a), np.diag(a)))  # noqa: E731
+    assert np.allclose(corr(sim), corr(exact), atol=0.03)
+    # and gaps make it far from the Fisher information times N sum h^4 for the damping (log lambda)
+    fisher = u @ u.T
+    assert exact[2, 2] > 1.3 * fisher[2, 2] * prep.variance_inflation
+
+
+def test_sandwich_errors_cover_the_damping_with_gaps():
+    # 20 % of samples missing in gaps: the spread of the damping estimate over replicates is matched by
+    # the default (sandwich) standard errors, not by the inflated inverse Fisher information
+    theta = [0.02, 1.2, 1.0]
+
+    def gaps(rng):
+        m = np.zeros(1440, bool)
+        for s in rng.choice(np.arange(0, 1440 - 48, 60), 6, replace=False):
+            m[s:s + 48] = True
+        return m
+
+    ratios = {}
+    for mode in ("fisher", "auto"):
+        est, se = [], []
+        for k in range(60):
+            rng = np.random.default_rng(500 + k)
+            z = simulate("matern", theta, n=1440, dt=HOUR, seed=rng)
+            z[gaps(rng)] = np.nan
+            r = fit_series(z, HOUR, model="matern", stderr=mode)
+            if r.ok:
+                est.append(np.log(r.params["matern_damping"]))
+                se.append(r.stderr["matern_damping"] / r.params["matern_damping"])
+        ratios[mode] = np.std(est) / np.mean(se)
+    assert ratios["fisher"] > 1.25  # overconfident
+    assert 0.75 < ratios["auto"] < 1.25
