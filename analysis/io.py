@@ -145,6 +145,11 @@ def _coerce(df: pd.DataFrame, first_row: int = 0) -> pd.DataFrame:
     return out
 
 
+def _unreadable(where, exc) -> InputError:
+    """The one-line error for a file that cannot be read or decoded."""
+    return InputError(f"{where}: cannot read ({str(exc).strip().splitlines()[0]})")
+
+
 def _read_table(path: Path) -> pd.DataFrame:
     suffix = path.suffix.lower()
     try:
@@ -161,7 +166,7 @@ def _read_table(path: Path) -> pd.DataFrame:
     except pd.errors.ParserError as exc:
         raise InputError(f"{path}: malformed CSV ({str(exc).strip().splitlines()[-1]})") from exc
     except (OSError, ValueError) as exc:
-        raise InputError(f"{path}: cannot read ({str(exc).strip().splitlines()[0]})") from exc
+        raise _unreadable(path, exc) from exc
 
 
 def _find_var(ds: xr.Dataset, std: str):
@@ -300,7 +305,7 @@ def _reraise_as_input_error(batches, where):
         except StopIteration:
             return
         except (OSError, ValueError, pa.ArrowException) as exc:
-            raise InputError(f"{where}: cannot read ({str(exc).strip().splitlines()[0]})") from exc
+            raise _unreadable(where, exc) from exc
         yield batch
 
 
@@ -335,7 +340,7 @@ class FixReader:
         try:
             schema = pq.read_schema(path)
         except (OSError, ValueError) as exc:
-            raise InputError(f"{path}: cannot read ({str(exc).strip().splitlines()[0]})") from exc
+            raise _unreadable(path, exc) from exc
         rename = _column_map(schema.names, str(path))
         self._path, self._rename = path, rename
         src = {std: col for col, std in rename.items()}
@@ -346,7 +351,7 @@ class FixReader:
         try:
             table = pq.read_table(path, columns=[src["id"], src["time"]], read_dictionary=[src["id"]])
         except (OSError, ValueError, pa.ArrowException) as exc:
-            raise InputError(f"{path}: cannot read ({str(exc).strip().splitlines()[0]})") from exc
+            raise _unreadable(path, exc) from exc
         ids = table.column(0).to_pandas()
         names = pd.Index(ids.cat.categories.astype(str)).str.strip() if isinstance(
             ids.dtype, pd.CategoricalDtype) else None
@@ -390,7 +395,7 @@ class FixReader:
             pf = pq.ParquetFile(self._path, read_dictionary=[src["id"]])
             batches = pf.iter_batches(batch_size=self.rows_per_chunk, columns=cols)
         except (OSError, ValueError, pa.ArrowException) as exc:
-            raise InputError(f"{where}: cannot read ({str(exc).strip().splitlines()[0]})") from exc
+            raise _unreadable(where, exc) from exc
         carry, first_row = None, 0
         for batch in _reraise_as_input_error(batches, where):
             table = pa.Table.from_batches([batch])

@@ -110,16 +110,16 @@ def test_standard_errors_cover_truth_quick():
     assert abs(r[:, 0].mean() - 1.2) < 0.5 * r[:, 1].mean()
 
 
+def _gaps(rng):  # 20 % missing in 6 gaps of 48 samples
+    m = np.zeros(1440, bool)
+    for s in rng.choice(np.arange(0, 1440 - 48, 60), 6, replace=False):
+        m[s:s + 48] = True
+    return m
+
+
 def test_missing_samples_do_not_bias_debiased_fit():
     theta = [0.02, 1.2, 1.0]
-
-    def gaps(rng):  # 20 % missing in 6 gaps of 48 samples
-        m = np.zeros(1440, bool)
-        for s in rng.choice(np.arange(0, 1440 - 48, 60), 6, replace=False):
-            m[s:s + 48] = True
-        return m
-
-    r = _replicates(theta, 24, mask_fn=gaps)
+    r = _replicates(theta, 24, mask_fn=_gaps)
     assert len(r) >= 22
     assert abs(r[:, 0].mean() - 1.2) < 0.5 * r[:, 1].mean()
     assert abs(np.log(r[:, 2].mean() / 1.0)) < 0.5 * (r[:, 3] / r[:, 2]).mean()
@@ -242,20 +242,13 @@ def test_sandwich_errors_cover_the_damping_with_gaps():
     # 20 % of samples missing in gaps: the spread of the damping estimate over replicates is matched by
     # the default (sandwich) standard errors, not by the inflated inverse Fisher information
     theta = [0.02, 1.2, 1.0]
-
-    def gaps(rng):
-        m = np.zeros(1440, bool)
-        for s in rng.choice(np.arange(0, 1440 - 48, 60), 6, replace=False):
-            m[s:s + 48] = True
-        return m
-
     ratios = {}
     for mode in ("fisher", "auto"):
         est, se = [], []
         for k in range(60):
             rng = np.random.default_rng(500 + k)
             z = simulate("matern", theta, n=1440, dt=HOUR, seed=rng)
-            z[gaps(rng)] = np.nan
+            z[_gaps(rng)] = np.nan
             r = fit_series(z, HOUR, model="matern", stderr=mode)
             if r.ok:
                 est.append(np.log(r.params["matern_damping"]))
