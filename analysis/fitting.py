@@ -212,29 +212,39 @@ def _numerical_hessian(fun, x, step=1e-4):
     return hess
 
 
-def _simulator(family, theta, prep, context):
+def _simulator(family, theta, prep, context, max_factor: int = 64):
     """A function ``rng, size -> (size, n)`` series of the fitted (observed) process by circulant embedding,
-    modulated components multiplied by the window's modulation, with the window's missing samples NaN."""
+    modulated components multiplied by the window's modulation, with the window's missing samples NaN.
+
+    ``max_factor`` bounds the embedding (at most ``2 n max_factor`` points; negative eigenvalues left are
+    set to zero): slowly decaying models otherwise need embeddings many times the window.
+    """
     from .simulate import embedding_autocovariance
 
+    theta = np.asarray(theta, float)
+    # independent stationary components add up to one stationary process: one embedding for all of them
+    parts = family.components()
+    steady = [(c, sl) for c, sl in parts if not c.modulated]
+    groups = [(False, lambda lag: sum(c.autocovariance(theta[sl], lag, context) for c, sl in steady))] if steady \
+        else []
+    groups += [(True, lambda lag, c=c, sl=sl: c.autocovariance(theta[sl], lag, context))
+               for c, sl in parts if c.modulated]
     comps = []
-    for comp, sl in family.components():
-        th = np.asarray(theta, float)[sl]
-        acov = np.asarray(embedding_autocovariance(lambda lag, c=comp, t=th: c.autocovariance(t, lag, context),
-                                                   prep.n, prep.dt_days), complex)
+    for modulated, fn in groups:
+        acov = np.asarray(embedding_autocovariance(fn, prep.n, prep.dt_days, max_factor), complex)
         half = acov.size - 1
         row = np.concatenate([acov, np.conj(acov[1:half][::-1])])
         lam = np.clip(scipy.fft.fft(row).real, 0, None)  # the circulant embedding's eigenvalues
-        comps.append((comp, np.sqrt(lam * row.size)))
+        comps.append((modulated, np.sqrt(lam * row.size)))
 
     def draw(rng, size):
         z = np.zeros((size, prep.n), complex)
-        for comp, amp in comps:
+        for modulated, amp in comps:
             # z_j = sum_k sqrt(lam_k / m) eps_k exp(+2 pi i j k / m), eps standard complex normal
             # (single-precision normals: twice as fast to draw, ample for a variance)
             eps = rng.standard_normal((size, 2 * amp.size), dtype=np.float32).view(np.complex64)
             x = scipy.fft.ifft(eps * (amp / np.sqrt(2.0)), axis=-1, overwrite_x=True)[:, :prep.n]
-            z += x * prep.modulation if comp.modulated else x
+            z += x * prep.modulation if modulated else x
         if prep.real_valued:
             z = np.sqrt(2.0) * z.real  # the real part of a proper complex series carries half its variance
         return np.where(prep.valid, z, np.nan)
@@ -257,7 +267,8 @@ def score_covariance(family, theta, prep, context, free=None, n_sim: int = 64, s
     if seed is None:
         seed = zlib.crc32(prep.periodogram.tobytes())
     rng = np.random.default_rng(seed)
-    z = _simulator(family, theta, prep, context)(rng, n_sim)
+    # an embedding of at most 4 N: a variance needs no exact long-lag covariance, and this bounds the cost
+    z = _simulator(family, theta, prep, context, max_factor=2)(rng, n_sim)
     valid = prep.valid
     z = np.where(valid, z, 0.0)
     zz = np.where(valid, z - z.sum(axis=1, keepdims=True) / max(prep.n_valid, 1), 0.0)
