@@ -335,6 +335,7 @@ class FixReader:
             self._whole = read_fixes(source)
 
     def _open_parquet(self, path: Path) -> None:
+        import pyarrow as pa
         import pyarrow.parquet as pq
 
         try:
@@ -344,8 +345,6 @@ class FixReader:
         rename = _column_map(schema.names, str(path))
         self._path, self._rename = path, rename
         src = {std: col for col, std in rename.items()}
-        import pyarrow as pa
-
         if not pa.types.is_timestamp(schema.field(src["time"]).type):
             return  # times as text: parsed in one piece by read_fixes
         try:

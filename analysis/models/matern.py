@@ -61,7 +61,7 @@ def _tables():
     h = u[1] - u[0]
     y0, y1, m0, m1 = rho[:, :-1], rho[:, 1:], h * drho[:, :-1], h * drho[:, 1:]
     coef = np.stack([y0, m0, 3 * (y1 - y0) - 2 * m0 - m1, 2 * (y0 - y1) + m0 + m1], axis=1)
-    return nu, u, rho, drho, np.ascontiguousarray(coef)
+    return nu, np.ascontiguousarray(coef)  # the values and slopes live on in the coefficients only
 
 
 def _lagrange(t: float):
@@ -84,7 +84,7 @@ def matern_correlation_exact(nu, x):
 
 def matern_correlation(nu: float, x: np.ndarray, derivatives: bool = False):
     """Tabulated ``rho_nu(x)`` for ``x >= 0``, optionally with ``d rho/d nu`` and ``d rho/d log x``."""
-    nus, _, _, _, coef = _tables()
+    nus, coef = _tables()
     nu = float(nu)
     if not (_NU_MIN - 1e-12 <= nu <= _NU_MAX + 1e-12):
         raise ValueError(f"Matérn order nu={nu} outside the tabulated range [{_NU_MIN}, {_NU_MAX}]")
