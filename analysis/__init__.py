@@ -22,12 +22,12 @@ from .errors import InputError
 from .fitting import FitResult, fit_series
 from .io import read_fixes, write_fixes
 from .models import FAMILIES, get_family
-from .qc import QCReport, clean_fixes
-from .resample import regular_grid
-from .simulate import simulate
-from .spectra import RotarySpectrum, multitaper_spectrum, rotary_periodogram
-from .velocity import add_velocity
-from .windows import Window, iter_windows
+from .simulation.simulate import simulate
+from .spectral.periodogram import RotarySpectrum, multitaper_spectrum, rotary_periodogram
+from .tracks.qc import QCReport, clean_fixes
+from .tracks.resample import regular_grid
+from .tracks.velocity import add_velocity
+from .tracks.windows import Window, iter_windows
 
 __all__ = [
     "FAMILIES", "FitResult", "InputError", "OMEGA_EARTH", "QCReport", "RotarySpectrum", "Window",

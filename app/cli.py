@@ -28,7 +28,7 @@ def _add_prep_options(p: argparse.ArgumentParser) -> None:
 
 
 def _prep_options(args):
-    from driftspec.analysis.pipeline import PrepOptions
+    from driftspec.analysis.tracks.pipeline import PrepOptions
 
     method = "central" if args.velocity == "measured" else args.velocity
     return PrepOptions(max_speed=args.max_speed, step=args.step, split_gap=args.split_gap,
@@ -137,7 +137,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def cmd_demo(args):
-    from driftspec.analysis.demo import write_demo
+    from driftspec.analysis.simulation.demo import write_demo
 
     info = write_demo(args.outdir, args.tracks, args.days, args.seed)
     print(f"wrote {info['n_fixes']} fixes of {info['n_tracks']} tracks to {info['fixes']}; "
@@ -147,7 +147,7 @@ def cmd_demo(args):
 
 def cmd_qc(args):
     from driftspec.analysis.io import read_fixes, write_fixes
-    from driftspec.analysis.qc import clean_fixes
+    from driftspec.analysis.tracks.qc import clean_fixes
 
     raw = read_fixes(args.input)
     fixes, report = clean_fixes(raw, max_speed=args.max_speed, source=str(args.input))
@@ -161,9 +161,9 @@ def cmd_qc(args):
 
 
 def cmd_fit(args):
-    from driftspec.analysis.batch import FitOptions, run_fits, summarise
+    from driftspec.analysis.fitting.batch import FitOptions, run_fits, summarise
     from driftspec.analysis.models import FAMILIES
-    from driftspec.analysis.windows import iter_windows
+    from driftspec.analysis.tracks.windows import iter_windows
 
     models = [m.strip() for m in args.model.split(",") if m.strip()]
     for m in models:
@@ -172,8 +172,8 @@ def cmd_fit(args):
     if not 0 <= args.overlap < 1:
         raise SystemExit("driftspec: --overlap must be in [0, 1)")
     from driftspec.analysis.io import FixReader
-    from driftspec.analysis.pipeline import estimate_windows, iter_velocity_batches
-    from driftspec.analysis.qc import clean_fixes_in_batches, merge_reports
+    from driftspec.analysis.tracks.pipeline import estimate_windows, iter_velocity_batches
+    from driftspec.analysis.tracks.qc import clean_fixes_in_batches, merge_reports
 
     prep = _prep_options(args)
     reader = FixReader(args.input)  # track-contiguous Parquet: read a million rows at a time
@@ -189,7 +189,7 @@ def cmd_fit(args):
                                             use_measured=args.velocity == "measured")
     import pandas as pd
 
-    from driftspec.analysis.observation import default_max_freq
+    from driftspec.analysis.models.observation import default_max_freq
 
     measured = args.velocity == "measured"
     observation = args.observation or ("none" if measured else "differenced+noise")
@@ -246,9 +246,9 @@ def _floats(text, n, what):
 
 
 def cmd_dispersion(args):
-    from driftspec.analysis.batch import read_table
-    from driftspec.analysis.dispersion import model_diffusivity, single_particle_dispersion
-    from driftspec.analysis.pipeline import load_velocities
+    from driftspec.analysis.io.tables import read_table
+    from driftspec.analysis.regional.dispersion import model_diffusivity, single_particle_dispersion
+    from driftspec.analysis.tracks.pipeline import load_velocities
 
     region = _floats(args.region, 4, "--region") if args.region else None
     plateau = tuple(_floats(args.plateau, 2, "--plateau"))

@@ -22,15 +22,15 @@ import param
 from holoviews.operation.datashader import dynspread, rasterize
 from scipy.spatial import cKDTree
 
-from driftspec.analysis.batch import FitOptions, fit_window
 from driftspec.analysis.conventions import tidal_frequencies_cpd
 from driftspec.analysis.fitting import fit_series
-from driftspec.analysis.geodesy import circular_mean_lon
+from driftspec.analysis.fitting.batch import FitOptions, fit_window
 from driftspec.analysis.models import get_family
-from driftspec.analysis.pipeline import load_velocities
 from driftspec.analysis.regional import default_params, grid_fits
-from driftspec.analysis.spectra import multitaper_spectrum, rotary_periodogram
-from driftspec.analysis.windows import iter_windows
+from driftspec.analysis.runs import circular_mean_lon, run_bounds
+from driftspec.analysis.spectral.periodogram import multitaper_spectrum, rotary_periodogram
+from driftspec.analysis.tracks.pipeline import load_velocities
+from driftspec.analysis.tracks.windows import iter_windows
 
 from .coastline import shoreline_paths
 from .state import URL_PARAMS, ExplorerState
@@ -111,8 +111,7 @@ class Explorer(param.Parameterized):
             "time": (t_ns - self.t0) / 86400e9, "track_code": codes.astype(np.int32), "t_ns": t_ns,
         })[ok].reset_index(drop=True)
         self.tree = cKDTree(self.points[["x", "y"]].to_numpy()) if len(self.points) else None
-        starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]])
-        stops = np.r_[starts[1:], len(codes)]
+        starts, stops = run_bounds(codes)
         self.slices = {self.track_ids[codes[s]]: (s, e) for s, e in zip(starts, stops)}
         self.time_range = (pd.Timestamp(t_ns.min()), pd.Timestamp(t_ns.max())) if len(t_ns) else None
         self.date_range = pn.widgets.DatetimeRangeSlider(
@@ -583,7 +582,7 @@ class Explorer(param.Parameterized):
 
     def _ellipses(self, fits, b, lat_range, lon_range, xe, ye):
         """Variance ellipses of each bin (mean covariance of its windows), scaled so the largest fills a bin."""
-        from driftspec.analysis.anisotropy import ellipse_from_covariance
+        from driftspec.analysis.tracks.ellipse import ellipse_from_covariance
 
         cov = grid_fits(fits, ["cov_uu", "cov_vv", "cov_uv"], b, "mean", lat_range=(max(lat_range[0], -90),
                         min(lat_range[1], 90)), lon_range=lon_range)
@@ -604,7 +603,7 @@ class Explorer(param.Parameterized):
         return hv.Overlay(shapes).opts(hv.opts.Ellipse(color="#ff2d7a", line_width=1.5))
 
     def compute_dispersion(self, *_):
-        from driftspec.analysis.dispersion import single_particle_dispersion
+        from driftspec.analysis.regional.dispersion import single_particle_dispersion
 
         region = self.state.region or None
         try:
@@ -621,7 +620,7 @@ class Explorer(param.Parameterized):
         if res is None:
             return pn.pane.Markdown("Select a region with the box tool on the map (or use everything), then "
                                     "press **Compute dispersion**.")
-        from driftspec.analysis.dispersion import model_diffusivity
+        from driftspec.analysis.regional.dispersion import model_diffusivity
 
         band = hv.Area((res.lag_days, res.kappa_lower, res.kappa_upper), "lag (days)",
                        ["kappa", "kappa2"]).opts(color=COLOURS["ccw"], alpha=0.2, line_alpha=0)
@@ -831,7 +830,7 @@ def explore(source, fits=None, title="driftspec", **state) -> Explorer:
     else:
         vel, _, _ = load_velocities(source)
     if isinstance(fits, str):
-        from driftspec.analysis.batch import read_table
+        from driftspec.analysis.io.tables import read_table
 
         fits = read_table(fits)
     return Explorer(vel, fits=fits, state=ExplorerState(**state), title=title)

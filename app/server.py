@@ -24,7 +24,7 @@ def demo_path() -> Path:
     cache = Path(os.environ.get("XDG_CACHE_HOME", Path.home() / ".cache")) / "driftspec" / "demo"
     target = cache / "fixes.parquet"
     if not target.exists():
-        from driftspec.analysis.demo import write_demo
+        from driftspec.analysis.simulation.demo import write_demo
 
         write_demo(cache)
     return target
@@ -32,7 +32,7 @@ def demo_path() -> Path:
 
 @functools.lru_cache(maxsize=8)
 def _velocities(path: str):
-    from driftspec.analysis.pipeline import load_velocities
+    from driftspec.analysis.tracks.pipeline import load_velocities
 
     vel, report, _ = load_velocities(path)
     return vel, report
@@ -40,7 +40,7 @@ def _velocities(path: str):
 
 @functools.lru_cache(maxsize=4)
 def _fits(path: str):
-    from driftspec.analysis.batch import read_table
+    from driftspec.analysis.io.tables import read_table
 
     return read_table(path)
 

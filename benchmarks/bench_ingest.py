@@ -21,9 +21,9 @@ import pandas as pd
 CHILD = r"""
 import json, resource, sys, time
 from driftspec.analysis.io import FixReader, read_fixes
-from driftspec.analysis.pipeline import iter_velocity_batches
-from driftspec.analysis.qc import clean_fixes, clean_fixes_in_batches
-from driftspec.analysis.windows import iter_windows
+from driftspec.analysis.tracks.pipeline import iter_velocity_batches
+from driftspec.analysis.tracks.qc import clean_fixes, clean_fixes_in_batches
+from driftspec.analysis.tracks.windows import iter_windows
 t = {}
 n = samples = kept = 0
 if sys.argv[2] == "whole":  # read and clean in one piece, then grid a few hundred tracks at a time

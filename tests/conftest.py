@@ -22,7 +22,7 @@ def rng():
 @pytest.fixture(scope="session")
 def demo_dir(tmp_path_factory):
     """A small demo deployment written by the demo generator (fixes.parquet, truth.csv)."""
-    from driftspec.analysis.demo import write_demo
+    from driftspec.analysis.simulation.demo import write_demo
 
     out = tmp_path_factory.mktemp("demo")
     write_demo(out, n_tracks=12, days=130, seed=7)

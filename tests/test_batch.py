@@ -3,9 +3,10 @@
 import pandas as pd
 import pytest
 
-from driftspec.analysis.batch import FitOptions, read_table, run_fits
-from driftspec.analysis.pipeline import load_velocities
-from driftspec.analysis.windows import iter_windows
+from driftspec.analysis.fitting.batch import FitOptions, run_fits
+from driftspec.analysis.io.tables import read_table
+from driftspec.analysis.tracks.pipeline import load_velocities
+from driftspec.analysis.tracks.windows import iter_windows
 
 OPTS = FitOptions(models=("matern", "matern+inertial"), max_freq=6.0)
 
@@ -41,7 +42,7 @@ def test_table_layout(serial, windows):
 def test_units_in_parquet_metadata(serial, tmp_path):
     import pyarrow.parquet as pq
 
-    from driftspec.analysis.batch import write_table
+    from driftspec.analysis.io.tables import write_table
 
     path = write_table(serial, tmp_path / "f.parquet", {"diffusivity": "m2 s-1"})
     field = pq.read_schema(path).field("diffusivity")

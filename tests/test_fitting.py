@@ -207,8 +207,8 @@ def test_score_covariance_matches_gaussian_quadratic_form_formula():
     import scipy.linalg
 
     from driftspec.analysis.fitting import score_covariance
-    from driftspec.analysis.likelihood import expected_in_band, prepare_window
     from driftspec.analysis.models import FitContext, get_family
+    from driftspec.analysis.spectral.likelihood import expected_in_band, prepare_window
 
     n, dt = 256, 1 / 24
     theta = np.array([0.02, 1.2, 1.0])

@@ -8,7 +8,7 @@ import xarray as xr
 
 from driftspec.analysis.errors import InputError
 from driftspec.analysis.io import fixes_to_cf_dataset, read_fixes, write_fixes
-from driftspec.analysis.qc import clean_fixes
+from driftspec.analysis.tracks.qc import clean_fixes
 
 T0 = np.datetime64("2030-05-01T00:00:00", "ns")
 

@@ -5,9 +5,9 @@ import pytest
 from scipy.integrate import quad
 from scipy.special import gamma
 
-from driftspec.analysis.likelihood import expected_periodogram, prepare_window
 from driftspec.analysis.models import Inertial, Matern, get_family, matern_correlation
 from driftspec.analysis.models.base import FitContext
+from driftspec.analysis.spectral.likelihood import expected_periodogram, prepare_window
 
 CTX = FitContext(dt_days=1 / 24, latitude=30.0, inertial_frequency_cpd=-1.0027)
 
@@ -83,8 +83,8 @@ def test_expected_periodogram_equals_quadratic_form(model, theta, modulated, rea
     # E|sum_t h_t z_t e^{-i theta t}|^2 = b^H Sigma b with b_t = h_t e^{+i theta t} and
     # Sigma_ts = E[z_t conj z_s]: a brute-force O(N^2) evaluation of the same expectation, for the full
     # FFT-order expected periodogram and for the optimiser's band-only path (real FFT for real parts)
-    from driftspec.analysis.likelihood import expected_in_band
-    from driftspec.analysis.observation import observed
+    from driftspec.analysis.models.observation import observed
+    from driftspec.analysis.spectral.likelihood import expected_in_band
 
     n = 200
     fam = observed(get_family(model, "follow-latitude" if modulated else "free"), observation)

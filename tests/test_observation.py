@@ -5,10 +5,10 @@ import pytest
 from scipy.integrate import quad
 
 from driftspec.analysis import fit_series, simulate
-from driftspec.analysis.likelihood import expected_periodogram, prepare_window
 from driftspec.analysis.models import Matern, get_family
 from driftspec.analysis.models.base import FitContext
-from driftspec.analysis.observation import OPERATORS, ObservedFamily, PositionNoise, observed
+from driftspec.analysis.models.observation import OPERATORS, ObservedFamily, PositionNoise, observed
+from driftspec.analysis.spectral.likelihood import expected_periodogram, prepare_window
 
 HOUR = 3600.0
 CTX = FitContext(dt_days=1 / 24, latitude=30.0, inertial_frequency_cpd=-1.0027)

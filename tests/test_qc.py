@@ -9,7 +9,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from driftspec.analysis.io import read_fixes
-from driftspec.analysis.qc import REASONS, clean_fixes
+from driftspec.analysis.tracks.qc import REASONS, clean_fixes
 
 CSV = """id,time,lat,lon
 A,2030-01-01T00:00:00Z,10.00,20.00
@@ -108,7 +108,7 @@ def test_accounting_with_many_tracks(rng):
 
 def test_batched_cleaning_equals_one_pass(tmp_path, rng):
     # quality control is per track: cleaning a few tracks at a time gives the same fixes and accounting
-    from driftspec.analysis.qc import clean_fixes_in_batches, merge_reports
+    from driftspec.analysis.tracks.qc import clean_fixes_in_batches, merge_reports
 
     path = tmp_path / "fixes.csv"
     path.write_text(CSV)
@@ -133,7 +133,7 @@ def test_chunked_parquet_reading_loses_nothing(tmp_path, rng):
     # together every source row once with its source row number, and cleaning them chunk by chunk gives the
     # fixes and the accounting of one pass over the whole file; other layouts are read whole
     from driftspec.analysis.io import FixReader
-    from driftspec.analysis.qc import MISSING_ID, clean_fixes_in_batches, merge_reports
+    from driftspec.analysis.tracks.qc import MISSING_ID, clean_fixes_in_batches, merge_reports
 
     n_tracks, per = 30, 23
     df = pd.DataFrame({"Platform": np.repeat([f"K{k:03d}" for k in range(n_tracks)], per),

@@ -6,9 +6,9 @@ import pytest
 import xarray as xr
 
 from driftspec.analysis import fit_series, simulate
-from driftspec.analysis.anisotropy import variance_ellipse
-from driftspec.analysis.dispersion import model_diffusivity, single_particle_dispersion
 from driftspec.analysis.regional import grid_fits, grid_fits_file
+from driftspec.analysis.regional.dispersion import model_diffusivity, single_particle_dispersion
+from driftspec.analysis.tracks.ellipse import variance_ellipse
 
 HOUR = 3600.0
 
@@ -44,7 +44,7 @@ def test_gridded_counts_and_medians(rng):
 
 
 def test_map_file_is_cf_netcdf_with_provenance(tmp_path, rng):
-    from driftspec.analysis.batch import write_table
+    from driftspec.analysis.io.tables import write_table
 
     path = write_table(_fits_table(rng), tmp_path / "fits.parquet", {"diffusivity": "m2 s-1"})
     out = tmp_path / "map.nc"

@@ -3,10 +3,10 @@ import pandas as pd
 import pytest
 
 from driftspec.analysis.io import read_fixes
-from driftspec.analysis.qc import clean_fixes
-from driftspec.analysis.resample import regular_grid
-from driftspec.analysis.velocity import add_velocity
-from driftspec.analysis.windows import iter_windows, window_bounds
+from driftspec.analysis.tracks.qc import clean_fixes
+from driftspec.analysis.tracks.resample import regular_grid
+from driftspec.analysis.tracks.velocity import add_velocity
+from driftspec.analysis.tracks.windows import iter_windows, window_bounds
 
 
 def _fixes(times_h, lat=None, lon=None, tid="A"):

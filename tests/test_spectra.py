@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from driftspec.analysis.spectra import multitaper_spectrum, rotary_periodogram
+from driftspec.analysis.spectral.periodogram import multitaper_spectrum, rotary_periodogram
 
 
 def test_parseval_with_gaps(rng):

@@ -5,11 +5,11 @@ import pandas as pd
 import pytest
 from pyproj import Geod
 
-from driftspec.analysis.geodesy import PointFrames, displacement_east_north_m, great_circle_distance_m
 from driftspec.analysis.io import read_fixes
-from driftspec.analysis.qc import clean_fixes
-from driftspec.analysis.resample import regular_grid
-from driftspec.analysis.velocity import add_velocity
+from driftspec.analysis.tracks.geodesy import PointFrames, displacement_east_north_m, great_circle_distance_m
+from driftspec.analysis.tracks.qc import clean_fixes
+from driftspec.analysis.tracks.resample import regular_grid
+from driftspec.analysis.tracks.velocity import add_velocity
 
 GEOD = Geod(ellps="WGS84")
 # sphere versus ellipsoid: distances differ by up to ~0.5 % (flattening 1/298)

@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..conventions import inertial_frequency_cpd
 from .base import FitContext, ModelFamily, Parameter
 
 
@@ -126,3 +127,12 @@ class InertialFollowing(ModelFamily):
 
     def derived(self, theta, context=None):
         return {"inertial_efold_days": float(1.0 / theta[1])}
+
+
+def modulation_sequence(latitude_series, dt_days) -> np.ndarray:
+    """``exp(i phase_t)`` with ``phase`` the running integral of ``2 pi f_inertial(latitude_t)``."""
+    lat = np.asarray(latitude_series, float)
+    lat = np.interp(np.arange(lat.size), np.flatnonzero(np.isfinite(lat)), lat[np.isfinite(lat)])
+    f = inertial_frequency_cpd(lat)
+    phase = 2 * np.pi * dt_days * (np.cumsum(f) - f[0])
+    return np.exp(1j * phase)

@@ -31,7 +31,7 @@ import scipy.fft
 from scipy.signal import windows
 from scipy.stats import chi2
 
-from .conventions import SECONDS_PER_DAY, parse_timedelta_seconds
+from ..conventions import SECONDS_PER_DAY, parse_timedelta_seconds
 
 TAPERS = ("none", "hann", "dpss")
 

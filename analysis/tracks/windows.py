@@ -13,8 +13,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .conventions import inertial_frequency_cpd
-from .geodesy import circular_mean_lon
+from ..conventions import inertial_frequency_cpd
+from ..runs import circular_mean_lon, run_bounds, track_codes
 
 
 @dataclass
@@ -129,8 +129,6 @@ def iter_windows(vel: pd.DataFrame, window_days: float = 60.0, overlap: float = 
     ucol, vcol = ("u_meas", "v_meas") if use_measured else ("u", "v")
     if ucol not in vel:
         raise ValueError("the input carries no measured velocities (u, v)")
-    from .resample import track_codes
-
     ids, names = track_codes(vel["id"])
     seg = vel["segment"].to_numpy()
     t_ns = vel["time"].to_numpy().astype("datetime64[ns]").astype(np.int64)
@@ -140,9 +138,7 @@ def iter_windows(vel: pd.DataFrame, window_days: float = 60.0, overlap: float = 
     lat, lon = vel["lat"].to_numpy(float), vel["lon"].to_numpy(float)
     perr = vel["position_error_m"].to_numpy(float) if "position_error_m" in vel else None
     fixd = vel["fix_distance_s"].to_numpy(float) if "fix_distance_s" in vel else None
-    change = np.flatnonzero((ids[1:] != ids[:-1]) | (seg[1:] != seg[:-1])) + 1
-    starts = np.concatenate([[0], change])
-    stops = np.concatenate([change, [len(ids)]])
+    starts, stops = run_bounds(ids, seg)
     for a, b in zip(starts, stops):
         if b - a < 2:
             continue

@@ -22,7 +22,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .geodesy import great_circle_distance_m, wrap_lon
+from ..runs import run_bounds, track_codes, wrap_lon
+from .geodesy import great_circle_distance_m
 
 REASONS = ("missing_value", "unparseable_time", "unparseable_value", "latitude_range",
            "longitude_range", "duplicate_time", "speed_spike")
@@ -207,13 +208,11 @@ def clean_fixes_in_batches(raw: pd.DataFrame, max_speed: float = DEFAULT_MAX_SPE
     Quality control is per track, so the result is the same as one pass. Yields ``(fixes, report)`` for
     each batch (rows without a track id go with the first); :func:`merge_reports` combines the reports.
     """
-    from .resample import track_codes
-
     codes, _ = track_codes(raw["id"]) if isinstance(raw["id"].dtype, pd.CategoricalDtype) else \
         (pd.factorize(raw["id"].to_numpy(), sort=True)[0].astype(np.int64), None)
     order = np.argsort(codes, kind="stable")
     sorted_codes = codes[order]
-    starts = np.flatnonzero(np.r_[True, sorted_codes[1:] != sorted_codes[:-1]])
+    starts, _ = run_bounds(sorted_codes)
     first_real = int(np.searchsorted(sorted_codes[starts], 0))  # skip the block of missing ids (-1)
     bounds = np.r_[0, starts[first_real:][tracks_per_batch::tracks_per_batch], len(order)]
     for a, b in zip(bounds[:-1], bounds[1:]):

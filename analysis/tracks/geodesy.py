@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .conventions import EARTH_RADIUS_M
+from ..conventions import EARTH_RADIUS_M
 
 
 def unit_vectors(lat_deg, lon_deg) -> np.ndarray:
@@ -78,14 +78,3 @@ class PointFrames:
         with np.errstate(invalid="ignore", divide="ignore"):
             scale = np.where(chord > 0, dist / np.where(chord > 0, chord, 1.0), 0.0)
         return east * scale, north * scale
-
-
-def wrap_lon(lon):
-    """Longitude wrapped to [-180, 180)."""
-    return (np.asarray(lon, dtype=float) + 180.0) % 360.0 - 180.0
-
-
-def circular_mean_lon(lon_deg) -> float:
-    """Mean longitude that is sane across the antimeridian, in [-180, 180)."""
-    lam = np.deg2rad(np.asarray(lon_deg, dtype=float))
-    return float(wrap_lon(np.rad2deg(np.arctan2(np.nanmean(np.sin(lam)), np.nanmean(np.cos(lam))))))

@@ -42,8 +42,10 @@ import scipy.fft
 import scipy.optimize
 from scipy.stats import kstwo
 
-from .conventions import SECONDS_PER_DAY, inertial_frequency_cpd, parse_timedelta_seconds
-from .likelihood import (
+from ..conventions import SECONDS_PER_DAY, inertial_frequency_cpd, parse_timedelta_seconds
+from ..models import FitContext, ModelFamily, get_family
+from ..models.observation import default_max_freq, observed
+from ..spectral.likelihood import (
     ESTIMATORS,
     PreparedWindow,
     exact_negloglik,
@@ -53,8 +55,6 @@ from .likelihood import (
     prepare_window,
     whittle_expectation,
 )
-from .models import FitContext, ModelFamily, get_family
-from .observation import default_max_freq, observed
 
 STATUSES = ("ok", "at_bound", "no_convergence", "too_few_samples", "failed")
 #: windows with fewer valid samples than this are not fitted
@@ -219,7 +219,7 @@ def _simulator(family, theta, prep, context, max_factor: int = 64):
     ``max_factor`` bounds the embedding (at most ``2 n max_factor`` points; negative eigenvalues left are
     set to zero): slowly decaying models otherwise need embeddings many times the window.
     """
-    from .simulate import embedding_autocovariance
+    from ..simulation.simulate import embedding_autocovariance
 
     theta = np.asarray(theta, float)
     # independent stationary components add up to one stationary process: one embedding for all of them

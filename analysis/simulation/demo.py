@@ -22,9 +22,9 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .conventions import EARTH_RADIUS_M, inertial_frequency_cpd
-from .likelihood import modulation_sequence
-from .models import Inertial, Matern
+from ..conventions import EARTH_RADIUS_M, inertial_frequency_cpd
+from ..models import Inertial, Matern
+from ..models.inertial import modulation_sequence
 from .simulate import circulant_sample, embedding_autocovariance
 
 DOMAIN = {"lat": (-5.0, 40.0), "lon": (-150.0, -128.0)}
@@ -177,7 +177,7 @@ def write_demo(outdir, n_tracks=60, days=180.0, seed=2031) -> dict:
     """Write ``fixes.parquet`` and ``truth.csv`` into ``outdir``; returns the paths."""
     from pathlib import Path
 
-    from .io import write_fixes
+    from ..io import write_fixes
 
     out = Path(outdir)
     out.mkdir(parents=True, exist_ok=True)

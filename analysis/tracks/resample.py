@@ -16,21 +16,13 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .geodesy import wrap_lon
+from ..runs import run_bounds, track_codes, wrap_lon
 
 DEFAULT_STEP = pd.Timedelta(hours=1)
 #: Split a track where consecutive fixes are further apart than this.
 DEFAULT_SPLIT_GAP = pd.Timedelta(days=3)
 #: A grid sample further than this from every real fix is marked invalid (common practice, no source).
 DEFAULT_MASK_DISTANCE = pd.Timedelta(hours=3)
-
-
-def track_codes(ids) -> tuple[np.ndarray, np.ndarray]:
-    """Integer codes and names of a track-id column; cheap for the categorical columns driftspec writes."""
-    if isinstance(ids, pd.Series) and isinstance(ids.dtype, pd.CategoricalDtype):
-        return ids.cat.codes.to_numpy().astype(np.int64), np.asarray(ids.cat.categories, dtype=object)
-    codes, names = pd.factorize(np.asarray(ids), sort=False)
-    return codes, np.asarray(names, dtype=object)
 
 
 def _segment_starts(ids: np.ndarray, t_ns: np.ndarray, split_gap_ns: int) -> np.ndarray:
@@ -75,10 +67,10 @@ def regular_grid(fixes: pd.DataFrame, step=DEFAULT_STEP, split_gap=DEFAULT_SPLIT
     dlon = (dlon + 180.0) % 360.0 - 180.0
     same = ids[1:] == ids[:-1]
     steps = np.concatenate([[0.0], np.where(same, dlon, 0.0)])
-    starts_track = np.flatnonzero(np.concatenate([[True], ~same]))
+    starts_track, stops_track = run_bounds(ids)
     cum = np.cumsum(steps)
-    cum -= np.repeat(cum[starts_track], np.diff(np.append(starts_track, len(ids))))
-    lon_unwrapped = np.repeat(lon[starts_track], np.diff(np.append(starts_track, len(ids)))) + cum
+    cum -= np.repeat(cum[starts_track], stops_track - starts_track)
+    lon_unwrapped = np.repeat(lon[starts_track], stops_track - starts_track) + cum
 
     seg_new = _segment_starts(ids, t_ns, split_ns)
     seg_index = np.cumsum(seg_new) - 1  # global segment number per fix

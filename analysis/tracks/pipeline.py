@@ -7,7 +7,8 @@ from dataclasses import asdict, dataclass
 import numpy as np
 import pandas as pd
 
-from .io import read_fixes
+from ..io import read_fixes
+from ..runs import run_bounds, track_codes
 from .qc import DEFAULT_MAX_SPEED, QCReport, clean_fixes
 from .resample import DEFAULT_MASK_DISTANCE, DEFAULT_SPLIT_GAP, DEFAULT_STEP, regular_grid
 from .velocity import add_velocity
@@ -38,10 +39,8 @@ def grid_velocities(fixes: pd.DataFrame, options: PrepOptions | None = None) -> 
 def iter_velocity_batches(fixes: pd.DataFrame, options: PrepOptions | None = None, tracks_per_batch: int = 200):
     """Gridded velocities for groups of ``tracks_per_batch`` tracks at a time (fixes sorted by track), so that
     a whole data set never needs its full hourly grid in memory."""
-    from .resample import track_codes
-
     codes, _ = track_codes(fixes["id"])
-    starts = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]])
+    starts, _ = run_bounds(codes)
     bounds = np.r_[starts[::tracks_per_batch], len(codes)]
     for a, b in zip(bounds[:-1], bounds[1:]):
         yield grid_velocities(fixes.iloc[a:b], options)

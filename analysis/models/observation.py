@@ -55,8 +55,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .conventions import SECONDS_PER_DAY
-from .models.base import FitContext, ModelFamily, Parameter
+from ..conventions import SECONDS_PER_DAY
+from .base import FitContext, ModelFamily, Parameter
 
 OBSERVATIONS = ("none", "differenced", "differenced+noise")
 #: fraction of the Nyquist frequency fitted by default, per velocity operator (see module docstring)

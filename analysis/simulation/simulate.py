@@ -18,9 +18,9 @@ from __future__ import annotations
 import numpy as np
 import scipy.fft
 
-from .conventions import SECONDS_PER_DAY, parse_timedelta_seconds
-from .likelihood import modulation_sequence
-from .models import FitContext, get_family
+from ..conventions import SECONDS_PER_DAY, parse_timedelta_seconds
+from ..models import FitContext, get_family
+from ..models.inertial import modulation_sequence
 
 
 def circulant_sample(acov: np.ndarray, n: int, rng: np.random.Generator, size: int = 1,
@@ -97,7 +97,7 @@ def simulate(model, theta, n: int, dt, *, seed=None, size: int | None = None, la
     lat_series = None
     if latitude is not None:
         lat_series = np.broadcast_to(np.asarray(latitude, float), (n,)).copy()
-    from .conventions import inertial_frequency_cpd
+    from ..conventions import inertial_frequency_cpd
 
     ctx = FitContext(dt_days=dt_days,
                      latitude=None if lat_series is None else float(np.mean(lat_series)),

@@ -20,7 +20,7 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from .errors import InputError
+from ..errors import InputError
 
 #: columns that are never gridded (identifiers, bookkeeping)
 NOT_GRIDDED = {"track_id", "window_start", "window_end", "lat", "lon", "model", "estimator", "status",
@@ -145,7 +145,7 @@ def grid_fits_file(path, params=None, bin_deg=2.0, stat="median", out=None, comm
     """Read a fits table, grid it, and write CF netCDF with provenance to ``out``."""
     import pyarrow.parquet as pq
 
-    from .batch import read_table
+    from ..io.tables import read_table
 
     path = Path(path)
     if not path.exists():

@@ -36,7 +36,8 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-from .errors import InputError
+from ..errors import InputError
+from ..runs import run_bounds
 
 __all__ = ["read_fixes", "FixReader", "write_fixes", "fixes_to_cf_dataset", "COLUMN_ALIASES"]
 
@@ -361,7 +362,7 @@ class FixReader:
         del table, ids
         has = codes >= 0
         c, t = codes[has], t[has]
-        starts = np.flatnonzero(np.r_[True, c[1:] != c[:-1]]) if c.size else np.zeros(0, np.int64)
+        starts, _ = run_bounds(c)
         if starts.size != np.unique(c).size:
             return  # a track's rows are split: read whole
         nat = np.iinfo(np.int64).min

@@ -20,10 +20,11 @@ from pathlib import Path
 
 import pandas as pd
 
-from .fitting import bootstrap_stderr, fit_series
-from .models import get_family
-from .observation import observed
-from .windows import Window
+from ..io.tables import naive_utc, read_table, write_table
+from ..models import get_family
+from ..models.observation import observed
+from ..tracks.windows import Window
+from .core import bootstrap_stderr, fit_series
 
 KEY = ["track_id", "window_start", "model"]
 WINDOW_COLUMNS = ["track_id", "window_start", "window_end", "lat", "lon", "n_samples", "coverage",
@@ -59,7 +60,7 @@ class FitOptions:
 
 
 def column_units(models: Iterable[str], inertial_frequency: str = "free", observation: str = "none") -> dict:
-    from .anisotropy import ELLIPSE_UNITS
+    from ..tracks.ellipse import ELLIPSE_UNITS
 
     units = {**COLUMN_UNITS, **ELLIPSE_UNITS}
     for m in models:
@@ -71,7 +72,7 @@ def column_units(models: Iterable[str], inertial_frequency: str = "free", observ
 
 def fit_window(w: Window, opts: FitOptions) -> list[dict]:
     """One row per model for one window; a failure is a row with a status, never an exception."""
-    from .anisotropy import variance_ellipse
+    from ..tracks.ellipse import variance_ellipse
 
     rows = []
     base = {"track_id": w.track_id, "window_start": w.start, "window_end": w.end, "lat": w.lat, "lon": w.lon,
@@ -118,42 +119,6 @@ def fit_chunk(windows: list[Window], opts: FitOptions) -> pd.DataFrame:
 
 def _parts_dir(out: Path) -> Path:
     return out.with_name(out.name + ".partial")
-
-
-def read_table(path) -> pd.DataFrame:
-    path = Path(path)
-    df = pd.read_csv(path) if path.suffix.lower() == ".csv" else pd.read_parquet(path)
-    for col in ("window_start", "window_end"):
-        if col in df:
-            df[col] = _naive_utc(df[col])
-    return df
-
-
-def _naive_utc(values) -> pd.Series:
-    t = pd.to_datetime(values, utc=True)
-    return t.dt.tz_localize(None).astype("datetime64[ns]")
-
-
-def write_table(df: pd.DataFrame, path, units: dict | None = None, metadata: dict | None = None) -> Path:
-    """Write a table atomically; Parquet columns carry ``units`` in their field metadata."""
-    import pyarrow as pa
-    import pyarrow.parquet as pq
-
-    path = Path(path)
-    tmp = path.with_name(path.name + ".tmp")
-    if path.suffix.lower() == ".csv":
-        df.to_csv(tmp, index=False, date_format="%Y-%m-%dT%H:%M:%SZ")
-    else:
-        table = pa.Table.from_pandas(df, preserve_index=False)
-        fields = []
-        for f in table.schema:
-            meta = {"units": units[f.name]} if units and f.name in units else None
-            fields.append(f.with_metadata(meta) if meta else f)
-        schema = pa.schema(fields, metadata={**(table.schema.metadata or {}),
-                                             **{k.encode(): str(v).encode() for k, v in (metadata or {}).items()}})
-        pq.write_table(table.cast(schema), tmp)
-    os.replace(tmp, path)
-    return path
 
 
 def done_keys(out: Path) -> set:
@@ -324,8 +289,8 @@ def combine(out: Path, units: dict | None = None) -> pd.DataFrame:
     frames = [f for f in frames if len(f)]
     df = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=KEY)
     if len(df):
-        df["window_start"] = _naive_utc(df["window_start"])
-        df["window_end"] = _naive_utc(df["window_end"])
+        df["window_start"] = naive_utc(df["window_start"])
+        df["window_end"] = naive_utc(df["window_end"])
         df = df.drop_duplicates(KEY, keep="last").sort_values(KEY, kind="stable").reset_index(drop=True)
     front = [c for c in WINDOW_COLUMNS + ["model", "estimator", "status", "message", "loglik", "aic",
                                           "gof_pvalue"] if c in df]

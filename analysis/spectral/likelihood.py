@@ -38,8 +38,9 @@ import numpy as np
 import scipy.fft
 import scipy.linalg
 
-from .models.base import FitContext, ModelFamily
-from .spectra import masked_taper
+from ..models.base import FitContext, ModelFamily
+from ..models.inertial import modulation_sequence
+from .periodogram import masked_taper
 
 ESTIMATORS = ("debiased", "whittle", "exact")
 
@@ -88,17 +89,6 @@ def _autocorrelate(x: np.ndarray) -> np.ndarray:
     m = scipy.fft.next_fast_len(2 * n)
     f = scipy.fft.fft(x, m)
     return scipy.fft.ifft(np.abs(f) ** 2 if np.isrealobj(x) else f * np.conj(f))[:n]
-
-
-def modulation_sequence(latitude_series, dt_days) -> np.ndarray:
-    """``exp(i phase_t)`` with ``phase`` the running integral of ``2 pi f_inertial(latitude_t)``."""
-    from .conventions import inertial_frequency_cpd
-
-    lat = np.asarray(latitude_series, float)
-    lat = np.interp(np.arange(lat.size), np.flatnonzero(np.isfinite(lat)), lat[np.isfinite(lat)])
-    f = inertial_frequency_cpd(lat)
-    phase = 2 * np.pi * dt_days * (np.cumsum(f) - f[0])
-    return np.exp(1j * phase)
 
 
 def prepare_window(z, dt_days: float, *, mask=None, taper=None, max_freq=None, exclude=None,

@@ -17,8 +17,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from ..runs import track_codes
 from .geodesy import PointFrames, displacement_east_north_m
-from .resample import track_codes
 
 VELOCITY_METHODS = ("central", "forward")
 

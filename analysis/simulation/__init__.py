@@ -1,0 +1,1 @@
+"""Stage 5, simulation: circulant-embedding draws of the model families, and the synthetic demo."""
