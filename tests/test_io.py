@@ -7,7 +7,7 @@ import pytest
 import xarray as xr
 
 from driftspec.analysis.errors import InputError
-from driftspec.analysis.io import fixes_to_cf_dataset, read_fixes, write_fixes
+from driftspec.analysis.io import FixBackend, FixReader, find_backend, fixes_to_cf_dataset, read_fixes, write_fixes
 from driftspec.analysis.tracks.qc import clean_fixes
 
 T0 = np.datetime64("2030-05-01T00:00:00", "ns")
@@ -147,3 +147,181 @@ def test_round_trip_keeps_position_error_and_velocity(tmp_path):
     assert ds["u"].attrs["standard_name"] == "eastward_sea_water_velocity"
     back = read_fixes(ds)
     assert np.allclose(back["position_error_m"], 25.0) and np.allclose(back["v"], -0.2)
+
+
+# ---- the registry of readers -------------------------------------------------------------------------------------
+
+class _WhitespaceBackend(FixBackend):
+    """A tiny format made up for these tests: whitespace-separated columns under a header line."""
+
+    name = "ws"
+    description = "whitespace-separated columns"
+    suffixes = (".ws",)
+
+    def read_table(self, source):
+        # pandas' own whitespace-delimited parser, independent of driftspec's CSV reader
+        return pd.read_csv(source, sep=r"\s+", dtype=str, keep_default_na=False, na_values=[""])
+
+
+@pytest.fixture
+def registry(monkeypatch):
+    """The registry module with a private copy of its table, so that test registrations do not leak."""
+    from driftspec.analysis.io import registry as reg
+
+    monkeypatch.setattr(reg, "BACKENDS", dict(reg.BACKENDS))
+    return reg
+
+
+def _write_ws(df, path):
+    lines = ["Platform Time Latitude Longitude"]
+    lines += [f"{r.id} {pd.Timestamp(r.time).isoformat()}Z {r.lat!r} {r.lon!r}" for r in df.itertuples()]
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+@pytest.mark.parametrize("name, engine", [("f.csv", "csv"), ("f.CSV", "csv"), ("f.txt", "csv"),
+                                          ("f.csv.gz", "csv"), ("f.parquet", "parquet"), ("f.pq", "parquet"),
+                                          ("f.nc", "netcdf"), ("f.nc4", "netcdf")])
+def test_registry_picks_the_reader_by_ending(tmp_path, name, engine):
+    df = _tracks()
+    path = tmp_path / name
+    if engine == "csv":
+        df.to_csv(path, index=False)  # pandas infers gzip from the ".gz" ending
+    elif engine == "parquet":
+        df.to_parquet(path)
+    else:
+        _contiguous(df).to_netcdf(path)
+    assert find_backend(path).name == engine
+    assert find_backend(str(path)).name == engine
+    _same_fixes(read_fixes(path), df)  # the reader chosen reads the rows pandas/xarray wrote
+
+
+def test_registry_picks_the_reader_for_objects_in_memory():
+    df = _tracks()
+    assert find_backend(df).name == "dataframe"
+    assert find_backend(_contiguous(df)).name == "dataset"
+    _same_fixes(read_fixes(_contiguous(df)), df)
+    with pytest.raises(InputError, match=r"^list: no reader claims this object; known formats: .*dataframe"):
+        read_fixes(df.to_dict("records"))
+
+
+def test_registry_recognises_parquet_and_netcdf_by_content(tmp_path):
+    # magic numbers from the Apache Parquet format specification ("PAR1") and the netCDF classic format
+    # specification ("CDF\x01"/"CDF\x02"); scipy writes netCDF-3 classic files
+    df = _tracks()
+    pq_path, nc_path = tmp_path / "fixes.data", tmp_path / "traj.data"
+    df.to_parquet(pq_path)
+    _contiguous(df).to_netcdf(nc_path, engine="scipy")
+    assert pq_path.read_bytes()[:4] == b"PAR1" and nc_path.read_bytes()[:3] == b"CDF"
+    assert find_backend(pq_path).name == "parquet"
+    assert find_backend(nc_path).name == "netcdf"
+    _same_fixes(read_fixes(pq_path), df)
+    _same_fixes(read_fixes(nc_path), df)
+    reader = FixReader(pq_path, rows_per_chunk=4)  # tracks contiguous, times typed: streamed by the Parquet reader
+    assert reader.streaming and reader.backend.name == "parquet"
+    _same_fixes(pd.concat(list(reader), ignore_index=True), df)
+
+
+def test_engine_overrides_a_misleading_ending(tmp_path):
+    df = _tracks()
+    reference = tmp_path / "fixes.csv"
+    df.to_csv(reference, index=False)
+    for name in ("fixes.nc", "fixes.parquet"):
+        wrong = tmp_path / name
+        wrong.write_bytes(reference.read_bytes())
+        with pytest.raises(InputError, match=rf"{name}: cannot read"):
+            read_fixes(wrong)
+        # the same rows, numbered and flagged the same, as the correctly named file
+        pd.testing.assert_frame_equal(read_fixes(wrong, engine="csv"), read_fixes(reference))
+        pd.testing.assert_frame_equal(read_fixes(wrong, engine="CSV"), read_fixes(reference))
+        assert list(FixReader(wrong, engine="csv"))[0].equals(read_fixes(reference))
+    # and the other way round: a Parquet file named .csv read as Parquet
+    pq_as_csv = tmp_path / "really_parquet.csv"
+    df.to_parquet(pq_as_csv)
+    _same_fixes(read_fixes(pq_as_csv, engine="parquet"), df)
+
+
+def test_an_engine_that_does_not_fit_the_source_is_a_one_line_error(tmp_path):
+    df = _tracks()
+    path = tmp_path / "f.csv"
+    df.to_csv(path, index=False)
+    for source, engine, msg in ((path, "dataframe", "takes a pandas.DataFrame"),
+                                (path, "dataset", "takes an xarray.Dataset"),
+                                (df, "csv", r"^DataFrame: the csv reader takes a file path")):
+        with pytest.raises(InputError, match=msg) as exc:
+            read_fixes(source, engine=engine)
+        assert "\n" not in str(exc.value)
+
+
+def test_a_registered_reader_is_found_and_reads_like_csv(tmp_path, registry):
+    df = _tracks()
+    csv = tmp_path / "same.csv"
+    df.to_csv(csv, index=False, date_format="%Y-%m-%dT%H:%M:%SZ")
+    ws = _write_ws(df, tmp_path / "same.ws")
+    with pytest.raises(InputError, match="no reader claims"):
+        read_fixes(ws)  # not yet registered
+    backend = registry.register_backend(_WhitespaceBackend())
+    assert registry.BACKENDS["ws"] is backend
+    assert find_backend(ws) is backend
+    expected = read_fixes(csv)
+    _same_fixes(expected, df)
+    # every column, dtype, row number and flag as the CSV of the same rows gives
+    pd.testing.assert_frame_equal(read_fixes(ws), expected)
+    pd.testing.assert_frame_equal(read_fixes(ws, engine="ws"), expected)
+    reader = FixReader(ws)  # no open_chunks: read whole, one chunk
+    assert not reader.streaming
+    chunks = list(reader)
+    assert len(chunks) == 1
+    pd.testing.assert_frame_equal(chunks[0], expected)
+    # the shared column handling applies: a missing column is reported as for any format
+    (tmp_path / "short.ws").write_text("id time lat\nA 2030-01-01 1\n")
+    with pytest.raises(InputError, match=r"short\.ws: missing column\(s\) lon"):
+        read_fixes(tmp_path / "short.ws")
+
+
+def test_a_later_registration_takes_over_an_ending(tmp_path, registry):
+    df = _tracks()
+
+    class TxtWhitespace(_WhitespaceBackend):
+        name = "ws-txt"
+        suffixes = (".txt",)
+
+    ws_txt = _write_ws(df, tmp_path / "rows.txt")
+    csv_txt = tmp_path / "comma.txt"
+    df.to_csv(csv_txt, index=False)
+    assert find_backend(csv_txt).name == "csv"
+    registry.register_backend(TxtWhitespace())
+    assert find_backend(ws_txt).name == "ws-txt"
+    _same_fixes(read_fixes(ws_txt), df)
+    # a comma-separated file named .txt now needs engine= (read whole as one column otherwise)
+    with pytest.raises(InputError, match="missing column"):
+        read_fixes(csv_txt)
+    _same_fixes(read_fixes(csv_txt, engine="csv"), df)
+
+
+def test_unknown_engine_and_unclaimed_file_are_one_line_errors(tmp_path):
+    path = tmp_path / "fixes.xyz"
+    _tracks().to_csv(path, index=False)
+    with pytest.raises(InputError, match=r"fixes\.xyz: unknown engine 'excel'; known formats: csv \(\.csv") as exc:
+        read_fixes(path, engine="excel")
+    assert "\n" not in str(exc.value)
+    for name in ("csv", "parquet", "netcdf", "dataframe", "dataset"):
+        assert name in str(exc.value)
+    with pytest.raises(InputError, match=r"fixes\.xyz: no reader claims this file; known formats: .*netcdf") as exc:
+        read_fixes(path)
+    assert "\n" not in str(exc.value)
+    with pytest.raises(InputError, match=r"fixes\.xyz: unknown engine"):
+        FixReader(path, engine="excel")
+    with pytest.raises(InputError, match="no such file"):
+        read_fixes(tmp_path / "missing.xyz", engine="csv")
+
+
+def test_register_backend_rejects_what_is_not_a_reader(registry):
+    with pytest.raises(TypeError, match="FixBackend instance"):
+        registry.register_backend(_WhitespaceBackend)  # the class, not an instance
+
+    class Nameless(FixBackend):
+        pass
+
+    with pytest.raises(ValueError, match="Nameless has no name"):
+        registry.register_backend(Nameless())
