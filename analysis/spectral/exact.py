@@ -92,7 +92,11 @@ from __future__ import annotations
 import numpy as np
 import scipy.fft
 import scipy.linalg
-from scipy.linalg._solve_toeplitz import levinson
+
+try:  # scipy's compiled Levinson recursion (private module, present since scipy 0.17)
+    from scipy.linalg._solve_toeplitz import levinson
+except ImportError:  # pragma: no cover - then every window takes the dense path
+    levinson = None
 
 from ..models.base import FitContext, ModelFamily
 from .likelihood import PreparedWindow
@@ -119,7 +123,7 @@ def _check(family: ModelFamily, theta, prep: PreparedWindow) -> np.ndarray:
 
 
 def _fast_path(family: ModelFamily, prep: PreparedWindow) -> bool:
-    return bool(prep.valid.all()) and not any(c.modulated for c, _ in family.components())
+    return levinson is not None and bool(prep.valid.all()) and not any(c.modulated for c, _ in family.components())
 
 
 def _component_acv(comp, theta_c, prep, context, jacobian):
