@@ -1,25 +1,24 @@
 """driftspec.analysis: from position fixes to rotary spectra, model fits and regional products.
 
-The pipeline, one module per stage:
+The pipeline, one subpackage per stage:
 
-``io``           read/write fixes (CSV, Parquet, CF trajectory netCDF, DataFrame, Dataset)
-``qc``           quality control with an accounting of every input row
-``resample``     split at gaps, interpolate onto a regular grid, validity mask
-``velocity``     finite-difference velocities on the sphere
-``windows``      analysis windows
-``spectra``      rotary periodogram and multitaper spectra
-``models``       model families (Matérn, inertial, ...)
-``likelihood``   debiased Whittle, Whittle and exact likelihoods
-``fitting``      :func:`fit_series` for one window
-``batch``        fits for every window of a data set (process pool or Dask)
-``simulate``     simulation by circulant embedding
+``io``           1  read/write fixes (one reader per format behind a registry) and result tables
+``tracks``       2  quality control, regular grid, velocities on the sphere, analysis windows
+``models``       3  model families (Matérn, inertial, ...) and the observation model
+``spectral``     4  rotary periodogram and multitaper; expected periodogram; Whittle, debiased and exact likelihoods
+``simulation``   5  circulant-embedding simulation, the synthetic demo
+``fitting``      6  the fit specification, estimators as objects, one window (:func:`fit_window`), every window
+``regional``     7  parameter maps, observed dispersion
+
+``conventions``, ``errors`` and ``runs`` (track runs, longitudes) sit below every stage. No module imports a
+later stage (``tests/test_layout.py``).
 
 This package depends on numpy, scipy, pandas and xarray only.
 """
 
 from .conventions import OMEGA_EARTH, inertial_frequency_cpd, tidal_frequencies_cpd
 from .errors import InputError
-from .fitting import FitResult, fit_series
+from .fitting import FitResult, FitSpec, fit_series, fit_window
 from .io import read_fixes, write_fixes
 from .models import FAMILIES, get_family
 from .simulation.simulate import simulate
@@ -30,8 +29,8 @@ from .tracks.velocity import add_velocity
 from .tracks.windows import Window, iter_windows
 
 __all__ = [
-    "FAMILIES", "FitResult", "InputError", "OMEGA_EARTH", "QCReport", "RotarySpectrum", "Window",
-    "add_velocity", "clean_fixes", "fit_series", "get_family", "inertial_frequency_cpd", "iter_windows",
+    "FAMILIES", "FitResult", "FitSpec", "InputError", "OMEGA_EARTH", "QCReport", "RotarySpectrum", "Window",
+    "add_velocity", "clean_fixes", "fit_series", "fit_window", "get_family", "inertial_frequency_cpd", "iter_windows",
     "multitaper_spectrum", "read_fixes", "regular_grid", "rotary_periodogram", "simulate",
     "tidal_frequencies_cpd", "write_fixes",
 ]

@@ -160,25 +160,72 @@ def cmd_qc(args):
     return 0
 
 
-def cmd_fit(args):
-    from driftspec.analysis.fitting.batch import FitOptions, run_fits, summarise
-    from driftspec.analysis.models import FAMILIES
-    from driftspec.analysis.tracks.windows import iter_windows
+def fit_spec_from_args(args):
+    """The :class:`~driftspec.analysis.fitting.spec.FitSpec` of a ``driftspec fit`` command line (a one-line
+    ``SystemExit`` for invalid settings)."""
+    from driftspec.analysis.fitting.spec import FitSpec
 
-    models = [m.strip() for m in args.model.split(",") if m.strip()]
-    for m in models:
-        if m not in FAMILIES:
-            raise SystemExit(f"driftspec: unknown model {m!r}; choose from {', '.join(FAMILIES)}")
+    models = tuple(m.strip() for m in args.model.split(",") if m.strip())
+    noise = args.position_noise
+    if noise not in ("fit", "input"):
+        try:
+            noise = float(noise)
+        except ValueError:
+            raise SystemExit(f"driftspec: --position-noise takes fit, input or metres, got {noise!r}") from None
+    try:
+        return FitSpec(models=models, estimator=args.estimator,
+                       band="auto" if args.max_freq is None else args.max_freq, velocity=args.velocity,
+                       observation=args.observation or "auto", position_noise=noise,
+                       inertial_frequency=args.inertial_frequency, taper=args.taper,
+                       exclude=_exclusions(args.exclude), stderr=args.stderr, bootstrap=args.bootstrap)
+    except ValueError as exc:
+        raise SystemExit(f"driftspec: {exc}") from None
+
+
+def _windowing(args) -> dict:
+    """The window and preparation settings of ``driftspec fit``, checked (a one-line ``SystemExit`` if not)."""
+    import pandas as pd
+
+    if not args.window_days > 0:
+        raise SystemExit(f"driftspec: --window-days must be positive, got {args.window_days:g}")
     if not 0 <= args.overlap < 1:
         raise SystemExit("driftspec: --overlap must be in [0, 1)")
+    if not 0 < args.min_coverage <= 1:
+        raise SystemExit(f"driftspec: --min-coverage must be in (0, 1], got {args.min_coverage:g}")
+    for flag, text in (("--step", args.step), ("--split-gap", args.split_gap), ("--mask-distance", args.mask_distance)):
+        try:
+            ok = pd.Timedelta(text) > pd.Timedelta(0)
+        except ValueError:
+            ok = False
+        if not ok:
+            raise SystemExit(f"driftspec: {flag} must be a positive duration such as 1h or 3D, got {text!r}")
+    if args.window_days * 86400 < 2 * pd.Timedelta(args.step).total_seconds():
+        raise SystemExit(f"driftspec: --window-days {args.window_days:g} is shorter than two grid steps ({args.step})")
+    return {"window_days": args.window_days, "overlap": args.overlap, "min_coverage": args.min_coverage,
+            **_prep_options(args).to_dict()}
+
+
+def cmd_fit(args):
+    from driftspec.analysis.fitting.batch import run_fits, summarise
     from driftspec.analysis.io import FixReader
     from driftspec.analysis.tracks.pipeline import estimate_windows, iter_velocity_batches
     from driftspec.analysis.tracks.qc import clean_fixes_in_batches, merge_reports
+    from driftspec.analysis.tracks.windows import WindowCensus, iter_windows
 
+    spec = fit_spec_from_args(args)
+    windowing = _windowing(args)
+    if args.workers < 1:
+        raise SystemExit(f"driftspec: --workers must be at least 1, got {args.workers}")
+    if args.chunk_size < 1:
+        raise SystemExit(f"driftspec: --chunk-size must be at least 1, got {args.chunk_size}")
+    out_dir = args.out.resolve().parent
+    if not out_dir.is_dir() or not os.access(out_dir, os.W_OK):
+        raise SystemExit(f"driftspec: cannot write {args.out}: {out_dir} is not a writable folder")
     prep = _prep_options(args)
     reader = FixReader(args.input)  # track-contiguous Parquet: read a million rows at a time
     total = estimate_windows(reader.spans(), args.window_days, args.overlap)
     reports = []
+    census = WindowCensus()
 
     def batches():  # stream: read, clean, grid and cut windows a few hundred tracks at a time
         for raw in reader:
@@ -186,38 +233,19 @@ def cmd_fit(args):
                 reports.append(report)
                 for vel in iter_velocity_batches(fixes, prep):
                     yield from iter_windows(vel, args.window_days, args.overlap, args.min_coverage,
-                                            use_measured=args.velocity == "measured")
-    import pandas as pd
+                                            use_measured=args.velocity == "measured", census=census)
 
-    from driftspec.analysis.models.observation import default_max_freq
-
-    measured = args.velocity == "measured"
-    observation = args.observation or ("none" if measured else "differenced+noise")
-    operator = "none" if measured else args.velocity
-    if measured and observation != "none":
-        raise SystemExit("driftspec: measured velocities take --observation none")
-    dt_days = pd.Timedelta(args.step).total_seconds() / 86400.0
-    # default band: each window's own (see Window.auto_max_freq); measured velocities: Nyquist
-    max_freq = args.max_freq
-    if max_freq is None and observation == "none":
-        max_freq = default_max_freq(dt_days, operator, observation)
-    noise = None
-    if args.position_noise not in ("fit", "input"):
-        try:
-            noise = float(args.position_noise)
-        except ValueError as exc:
-            raise SystemExit(f"driftspec: --position-noise takes fit, input or metres, got {args.position_noise!r}") \
-                from exc
-    opts = FitOptions(models=models, estimator=args.estimator, max_freq=max_freq,
-                      taper=None if args.taper == "none" else args.taper, exclude=_exclusions(args.exclude),
-                      inertial_frequency=args.inertial_frequency, observation=observation,
-                      velocity_operator="central" if measured else args.velocity, position_noise=noise,
-                      noise_from_input=args.position_noise == "input", bootstrap=args.bootstrap,
-                      stderr=args.stderr)
-    df = run_fits(batches(), args.out, opts, workers=args.workers, dask_address=args.dask, resume=args.resume,
-                  progress=not args.no_progress, total=total, chunk_size=args.chunk_size)
+    try:
+        df = run_fits(batches(), args.out, spec, workers=args.workers, dask_address=args.dask, resume=args.resume,
+                      progress=not args.no_progress, total=total, chunk_size=args.chunk_size, windowing=windowing)
+    except ValueError as exc:
+        if args.debug:
+            raise
+        raise SystemExit(f"driftspec: {exc}") from None
     print(merge_reports(reports, str(args.input)).summary(), file=sys.stderr)
     print(summarise(df))
+    if len(df) == 0:
+        print(census.explain(args.min_coverage), file=sys.stderr)
     print(f"wrote {args.out}")
     return 0
 

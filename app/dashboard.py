@@ -23,8 +23,8 @@ from holoviews.operation.datashader import dynspread, rasterize
 from scipy.spatial import cKDTree
 
 from driftspec.analysis.conventions import tidal_frequencies_cpd
-from driftspec.analysis.fitting import fit_series
-from driftspec.analysis.fitting.batch import FitOptions, fit_window
+from driftspec.analysis.fitting import FitSpec, fit_window
+from driftspec.analysis.fitting.batch import window_rows
 from driftspec.analysis.models import get_family
 from driftspec.analysis.regional import default_params, grid_fits
 from driftspec.analysis.runs import circular_mean_lon, run_bounds
@@ -159,8 +159,12 @@ class Explorer(param.Parameterized):
             self._window_cache[key] = list(iter_windows(v, st.window_days, st.overlap, MIN_COVERAGE))
         return self._window_cache[key]
 
-    def _band(self, w):
-        return w.auto_max_freq if self.state.auto_band else self.state.max_freq
+    def fit_spec(self):
+        """The :class:`~driftspec.analysis.fitting.spec.FitSpec` of the current settings: the same object the
+        command line builds, so a window fitted here and by ``driftspec fit`` gives the same numbers."""
+        st = self.state
+        return FitSpec(models=(st.model,), estimator=st.estimator, band="auto" if st.auto_band else st.max_freq,
+                       observation=st.observation, taper=st.taper, inertial_frequency=st.inertial)
 
     def current_window(self):
         ws = self.windows()
@@ -173,16 +177,11 @@ class Explorer(param.Parameterized):
         w = self.current_window()
         if w is None:
             return None, None
-        st = self.state
-        key = (w.track_id, w.start, w.n_samples, st.model, st.estimator, self._band(w), st.taper, st.inertial,
-               st.observation)
+        spec = self.fit_spec()
+        key = (w.track_id, w.start, w.n_samples, spec.to_json())
         if key not in self._fit_cache:
             t0 = time.perf_counter()
-            lat = w.latitude if st.inertial == "follow-latitude" else w.lat
-            res = fit_series(w.z, w.dt_seconds, model=st.model, estimator=st.estimator, max_freq=self._band(w),
-                             latitude=lat, taper=None if st.taper == "none" else st.taper,
-                             inertial_frequency=st.inertial, observation=st.observation)
-            self._fit_cache[key] = res
+            self._fit_cache[key] = fit_window(w, spec)[0]
             self.refit_ms = 1e3 * (time.perf_counter() - t0)
         return w, self._fit_cache[key]
 
@@ -224,19 +223,13 @@ class Explorer(param.Parameterized):
         return sorted(set(v.loc[inside, "id"].astype(str)))
 
     # ------------------------------------------------------------------ background fits
-    def _options(self):
-        st = self.state
-        return FitOptions(models=(st.model,), estimator=st.estimator, max_freq=None if st.auto_band else st.max_freq,
-                          taper=None if st.taper == "none" else st.taper, inertial_frequency=st.inertial,
-                          observation=st.observation)
-
     def _run_job(self, windows, target, cancel):
         rows = []
-        opts = self._options()
+        spec = self.fit_spec()
         for k, w in enumerate(windows):
             if cancel.is_set():
                 break
-            rows.extend(fit_window(w, opts))
+            rows.extend(window_rows(w, spec))
             self._job_progress = int(100 * (k + 1) / max(len(windows), 1))
         self._job_result = (target, pd.DataFrame(rows), cancel.is_set())
 

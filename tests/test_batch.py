@@ -3,12 +3,13 @@
 import pandas as pd
 import pytest
 
-from driftspec.analysis.fitting.batch import FitOptions, run_fits
+from driftspec.analysis.fitting.batch import run_fits
+from driftspec.analysis.fitting.spec import FitSpec
 from driftspec.analysis.io.tables import read_table
 from driftspec.analysis.tracks.pipeline import load_velocities
 from driftspec.analysis.tracks.windows import iter_windows
 
-OPTS = FitOptions(models=("matern", "matern+inertial"), max_freq=6.0)
+OPTS = FitSpec(models=("matern", "matern+inertial"), band=6.0)
 
 
 @pytest.fixture(scope="module")

@@ -110,3 +110,61 @@ def test_killed_fit_resumes_to_the_same_table(tmp_path, demo_dir):
     r = subprocess.run([*args, "--out", str(out), "--resume"], capture_output=True, text=True, timeout=600)
     assert r.returncode == 0, r.stderr
     pd.testing.assert_frame_equal(pd.read_parquet(out), pd.read_parquet(ref))
+
+
+@pytest.mark.parametrize("extra, needle", [
+    (["--window-days", "0"], "--window-days must be positive"),
+    (["--window-days", "-10"], "--window-days must be positive"),
+    (["--chunk-size", "0"], "--chunk-size must be at least 1"),
+    (["--workers", "0"], "--workers must be at least 1"),
+    (["--workers", "-3"], "--workers must be at least 1"),
+    (["--min-coverage", "0"], "--min-coverage"),
+    (["--max-freq", "-1"], "band"),
+    (["--step", "soon"], "--step must be a positive duration"),
+    (["--bootstrap", "-2"], "bootstrap"),
+    (["--position-noise", "30", "--observation", "none"], "position noise value"),
+])
+def test_invalid_fit_options_are_one_line_exit_2_and_write_nothing(tmp_path, demo_dir, extra, needle):
+    out = tmp_path / "fits.parquet"
+    r = run("fit", demo_dir / "fixes.parquet", "--out", out, "--no-progress", *extra)
+    assert r.returncode == 2, r.stderr[-1500:]
+    assert needle in r.stderr and "Traceback" not in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
+    assert list(tmp_path.iterdir()) == []  # neither the table nor a .partial folder
+
+
+def test_unwritable_output_folder_is_one_line_exit_2(tmp_path, demo_dir):
+    # (a missing folder: the tests run as root in CI, for whom permission bits do not stop a write)
+    r = run("fit", demo_dir / "fixes.parquet", "--out", tmp_path / "no" / "such" / "fits.parquet", "--no-progress")
+    assert r.returncode == 2 and "not a writable folder" in r.stderr and "Traceback" not in r.stderr
+    assert len(r.stderr.strip().splitlines()) == 1
+
+
+def test_resume_under_other_settings_is_refused(tmp_path, demo_dir):
+    # the settings are stored beside the results: a resume that would mix two kinds of rows exits 2 and names
+    # what differs, and the table already written is left as it was
+    out = tmp_path / "fits.parquet"
+    base = ["fit", demo_dir / "fixes.parquet", "--out", out, "--model", "matern", "--workers", 1, "--no-progress"]
+    assert run(*base, "--window-days", 30).returncode == 0
+    before = pd.read_parquet(out)
+    for extra, needle in ((["--window-days", 60], "windows.window_days"),
+                          (["--window-days", 30, "--estimator", "whittle"], "fit.estimator")):
+        r = run(*base, *extra, "--resume")
+        assert r.returncode == 2 and needle in r.stderr and "Traceback" not in r.stderr, r.stderr[-1500:]
+    pd.testing.assert_frame_equal(pd.read_parquet(out), before)
+    same = run(*base, "--window-days", 30, "--resume")
+    assert same.returncode == 0, same.stderr
+    pd.testing.assert_frame_equal(pd.read_parquet(out), before)
+
+
+def test_no_windows_says_why_with_numbers(tmp_path, demo_dir):
+    # fixes two days apart leave almost every hourly grid sample further than 3 h from a fix: every candidate
+    # window is below the coverage limit, and the run says so with the coverage it saw and what to try
+    fixes = pd.read_parquet(demo_dir / "fixes.parquet")
+    sparse = fixes.groupby("id", observed=True).nth(slice(None, None, 30)).reset_index(drop=True)
+    path = tmp_path / "sparse.csv"
+    sparse.to_csv(path, index=False)
+    r = run("fit", path, "--out", tmp_path / "f.parquet", "--window-days", 30, "--workers", 1, "--no-progress")
+    assert r.returncode == 0, r.stderr
+    assert "no windows fitted" in r.stdout
+    assert "below --min-coverage 0.8" in r.stderr and "--mask-distance" in r.stderr

@@ -10,23 +10,26 @@ the table does not depend on how the work was distributed.
 from __future__ import annotations
 
 import itertools
+import json
 import os
 import shutil
 import zlib
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable
 from concurrent.futures import ProcessPoolExecutor
-from dataclasses import dataclass, field
 from pathlib import Path
 
 import pandas as pd
 
 from ..io.tables import naive_utc, read_table, write_table
-from ..models import get_family
-from ..models.observation import observed
+from ..tracks.ellipse import ELLIPSE_UNITS, variance_ellipse
 from ..tracks.windows import Window
-from .core import bootstrap_stderr, fit_series
+from .core import fit_window
+from .spec import FitSpec
 
 KEY = ["track_id", "window_start", "model"]
+#: where a run keeps its settings: a file in the parts folder, a key in the Parquet metadata
+SETTINGS_FILE = "settings.json"
+SETTINGS_KEY = "driftspec_run_settings"
 WINDOW_COLUMNS = ["track_id", "window_start", "window_end", "lat", "lon", "n_samples", "coverage",
                   "inertial_frequency_local", "max_freq"]
 
@@ -40,81 +43,39 @@ COLUMN_UNITS = {
 }
 
 
-@dataclass
-class FitOptions:
-    """Options of each window fit."""
-
-    models: Sequence[str] = ("matern+inertial",)
-    estimator: str = "debiased"
-    max_freq: float | None = None
-    taper: str | None = None
-    exclude: Sequence[tuple[float, float]] = ()
-    inertial_frequency: str = "free"
-    fixed: dict = field(default_factory=dict)
-    observation: str = "none"
-    velocity_operator: str = "central"
-    position_noise: float | None = None
-    noise_from_input: bool = False
-    bootstrap: int = 0
-    stderr: str = "auto"
-
-
-def column_units(models: Iterable[str], inertial_frequency: str = "free", observation: str = "none") -> dict:
-    from ..tracks.ellipse import ELLIPSE_UNITS
-
+def column_units(spec: FitSpec) -> dict:
+    """Units of every column a fits table made under ``spec`` can have."""
     units = {**COLUMN_UNITS, **ELLIPSE_UNITS}
-    for m in models:
-        for p in observed(get_family(m, inertial_frequency), observation).parameters:
+    for m in spec.models:
+        for p in spec.family(m).parameters:
             units[p.name] = p.unit
             units[p.name + "_se"] = p.unit
     return units
 
 
-def fit_window(w: Window, opts: FitOptions) -> list[dict]:
-    """One row per model for one window; a failure is a row with a status, never an exception."""
-    from ..tracks.ellipse import variance_ellipse
-
-    rows = []
+def window_rows(w: Window, spec: FitSpec) -> list[dict]:
+    """The fits-table rows of one window: one per candidate model (:func:`~.core.fit_window`), with the window's
+    identity, position and variance ellipse; a failure is a row with a status, never an exception."""
     base = {"track_id": w.track_id, "window_start": w.start, "window_end": w.end, "lat": w.lat, "lon": w.lon,
             "n_samples": w.n_samples, "coverage": w.coverage, "inertial_frequency_local": w.inertial_frequency_cpd,
-            "max_freq": _band_for(w, opts) if _band_for(w, opts) is not None else 0.5 * 86400 / w.dt_seconds,
             **variance_ellipse(w.z)}
-    for m in opts.models:
-        lat = w.latitude if opts.inertial_frequency == "follow-latitude" else w.lat
-        try:
-            r = fit_series(w.z, w.dt_seconds, model=m, estimator=opts.estimator, max_freq=_band_for(w, opts),
-                           latitude=lat, taper=opts.taper, exclude=opts.exclude or None,
-                           inertial_frequency=opts.inertial_frequency, fixed=opts.fixed or None,
-                           observation=opts.observation, velocity_operator=opts.velocity_operator,
-                           position_noise=_noise_for(w, opts), stderr=opts.stderr)
-            row = r.to_row()
-            if opts.bootstrap and r.ok:
-                seed = zlib.crc32(f"{w.track_id}|{w.start.value}|{m}".encode())  # same in every process
-                row.update({f"{k}_se_boot": v for k, v in bootstrap_stderr(r, opts.bootstrap, seed).items()})
-        except Exception as exc:  # noqa: BLE001 - a failed fit is a row, not a crash
-            row = {"model": m, "estimator": opts.estimator, "status": "failed",
-                   "message": f"{type(exc).__name__}: {exc}"}
+    try:
+        results = fit_window(w, spec)
+    except Exception as exc:  # noqa: BLE001 - a failed fit is a row, not a crash
+        return [{**base, "model": spec.model_name(m), "estimator": spec.estimator, "status": "failed",
+                 "message": f"{type(exc).__name__}: {exc}"} for m in spec.models]
+    rows = []
+    for r in results:
+        row = r.to_row()
+        if spec.bootstrap and r.ok:
+            seed = zlib.crc32(f"{w.track_id}|{w.start.value}|{r.model}".encode())  # same in every process
+            row.update({f"{k}_se_boot": v for k, v in r.bootstrap_stderr(spec.bootstrap, seed).items()})
         rows.append({**base, **row})
     return rows
 
 
-def _band_for(w: Window, opts: FitOptions):
-    if opts.max_freq is not None or opts.observation == "none":
-        return opts.max_freq
-    return w.auto_max_freq
-
-
-def _noise_for(w: Window, opts: FitOptions):
-    if opts.observation != "differenced+noise":
-        return None
-    if opts.noise_from_input and w.position_error_m is not None and w.position_error_m > 0:
-        return w.position_error_m
-    return opts.position_noise
-
-
-def fit_chunk(windows: list[Window], opts: FitOptions) -> pd.DataFrame:
-    rows = [row for w in windows for row in fit_window(w, opts)]
-    return pd.DataFrame(rows)
+def fit_chunk(windows: list[Window], spec: FitSpec) -> pd.DataFrame:
+    return pd.DataFrame([row for w in windows for row in window_rows(w, spec)])
 
 
 def _parts_dir(out: Path) -> Path:
@@ -141,9 +102,30 @@ def _chunks(items, size: int):
         yield chunk
 
 
-def run_fits(windows: Iterable[Window], out, opts: FitOptions, *, workers: int = 1, dask_address=None,
+def run_settings(spec: FitSpec, windowing: dict | None = None) -> dict:
+    """What decides a run's rows: the fit specification and the windowing/preparation settings (stored beside
+    the results, so that a resume under other settings is refused instead of mixing two kinds of rows)."""
+    return {"fit": spec.to_dict(), "windows": dict(windowing or {})}
+
+
+def stored_settings(out) -> dict | None:
+    """The settings a (partial or finished) run at ``out`` was made with, or None when none were stored."""
+    out = Path(out)
+    for path in (_parts_dir(out) / SETTINGS_FILE, _sidecar(out)):
+        if path.exists():
+            return json.loads(path.read_text())
+    if out.exists() and out.suffix.lower() != ".csv":
+        import pyarrow.parquet as pq
+
+        meta = pq.read_schema(out).metadata or {}
+        if SETTINGS_KEY.encode() in meta:
+            return json.loads(meta[SETTINGS_KEY.encode()])
+    return None
+
+
+def run_fits(windows: Iterable[Window], out, spec: FitSpec, *, workers: int = 1, dask_address=None,
              resume: bool = False, chunk_size: int = 64, progress: bool = True, stop_after_chunks=None,
-             total: int | None = None):
+             total: int | None = None, windowing: dict | None = None):
     """Fit every window and write the table to ``out``; returns the table.
 
     Parameters
@@ -151,7 +133,7 @@ def run_fits(windows: Iterable[Window], out, opts: FitOptions, *, workers: int =
     windows : iterable of Window
     out : path
         ``.parquet`` or ``.csv``.
-    opts : FitOptions
+    spec : FitSpec
     workers : int
         Processes for a local pool (1 = serial in this process).
     dask_address : str, optional
@@ -164,18 +146,44 @@ def run_fits(windows: Iterable[Window], out, opts: FitOptions, *, workers: int =
         Stop after this many chunks without combining (simulates an interrupted run; for tests).
     total : int, optional
         Number of windows expected (for the progress bar's ETA).
+    windowing : dict, optional
+        Window length, overlap and preparation settings, stored with the specification (see :func:`run_settings`).
+
+    Raises
+    ------
+    ValueError
+        For invalid run options, an output folder that cannot be written, or a resume whose stored settings differ
+        from these (the message names the settings that differ).
     """
     from tqdm.auto import tqdm
 
+    if int(workers) != workers or workers < 1:
+        raise ValueError(f"workers must be a whole number >= 1; got {workers!r}")
+    if int(chunk_size) != chunk_size or chunk_size < 1:
+        raise ValueError(f"chunk size must be a whole number >= 1; got {chunk_size!r}")
     out = Path(out)
+    if out.suffix.lower() not in (".parquet", ".pq", ".csv"):
+        raise ValueError(f"{out}: the fits table must be .parquet or .csv")
+    if not out.parent.is_dir() or not os.access(out.parent, os.W_OK):
+        raise ValueError(f"{out.parent}: not a writable folder")
+    settings = run_settings(spec, windowing)
     parts = _parts_dir(out)
+    if resume:
+        before = stored_settings(out)
+        if before is not None and before != settings:
+            changed = [f"{group}.{k}" for group in ("fit", "windows")
+                       for k in sorted(set(before.get(group, {})) | set(settings[group]))
+                       if before.get(group, {}).get(k) != settings[group].get(k)]
+            raise ValueError(f"cannot resume {out}: it was fitted with other settings ({', '.join(changed)}); "
+                             "rerun without --resume, or with the same settings")
     skip = done_keys(out) if resume else set()
     if not resume and parts.exists():
         shutil.rmtree(parts)
     parts.mkdir(parents=True, exist_ok=True)
+    (parts / SETTINGS_FILE).write_text(json.dumps(settings, sort_keys=True))
     existing = sorted(parts.glob("part-*.parquet"))
     next_part = 1 + max((int(p.stem.split("-")[1]) for p in existing), default=0)
-    units = column_units(opts.models, opts.inertial_frequency, opts.observation)
+    units = column_units(spec)
     bar = tqdm(total=total, unit="window", disable=not progress, desc="fitting", smoothing=0.05)
     written = 0
 
@@ -189,17 +197,18 @@ def run_fits(windows: Iterable[Window], out, opts: FitOptions, *, workers: int =
         written += 1
 
     # windows are consumed lazily and at most a few chunks are in flight, so memory stays bounded
-    todo = (w for w in windows if not all((w.track_id, w.start, m) in skip for m in opts.models))
+    names = [spec.model_name(m) for m in spec.models]
+    todo = (w for w in windows if not all((w.track_id, w.start, m) in skip for m in names))
     chunks = _chunks(todo, chunk_size)
     stopped = False
     try:
         if dask_address:
-            stopped = _run_dask(chunks, opts, dask_address, save, bar, stop_after_chunks, lambda: written)
+            stopped = _run_dask(chunks, spec, dask_address, save, bar, stop_after_chunks, lambda: written)
         elif workers > 1:
-            stopped = _run_pool(chunks, opts, workers, save, bar, stop_after_chunks, lambda: written)
+            stopped = _run_pool(chunks, spec, workers, save, bar, stop_after_chunks, lambda: written)
         else:
             for c in chunks:
-                save(fit_chunk(c, opts))
+                save(fit_chunk(c, spec))
                 bar.update(len(c))
                 if stop_after_chunks and written >= stop_after_chunks:
                     stopped = True
@@ -211,10 +220,10 @@ def run_fits(windows: Iterable[Window], out, opts: FitOptions, *, workers: int =
         bar.close()
     if stopped:
         return None
-    return combine(out, units)
+    return combine(out, units, settings)
 
 
-def _run_pool(chunks, opts, workers, save, bar, stop_after_chunks, written) -> bool:
+def _run_pool(chunks, spec, workers, save, bar, stop_after_chunks, written) -> bool:
     import multiprocessing
     from concurrent.futures import FIRST_COMPLETED, wait
 
@@ -226,7 +235,7 @@ def _run_pool(chunks, opts, workers, save, bar, stop_after_chunks, written) -> b
     with ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
         for c in itertools.chain(chunks, [None]):
             if c is not None:
-                in_flight[pool.submit(fit_chunk, c, opts)] = len(c)
+                in_flight[pool.submit(fit_chunk, c, spec)] = len(c)
             while in_flight and (c is None or len(in_flight) >= 2 * workers):
                 done, _ = wait(in_flight, return_when=FIRST_COMPLETED)
                 for fut in done:
@@ -239,7 +248,7 @@ def _run_pool(chunks, opts, workers, save, bar, stop_after_chunks, written) -> b
     return False
 
 
-def _run_dask(chunks, opts, address, save, bar, stop_after_chunks, written) -> bool:
+def _run_dask(chunks, spec, address, save, bar, stop_after_chunks, written) -> bool:
     from dask.distributed import Client, LocalCluster
     from dask.distributed import as_completed as dask_completed
 
@@ -260,7 +269,7 @@ def _run_dask(chunks, opts, address, save, bar, stop_after_chunks, written) -> b
             c = next(iterator, None)
             if c is None:
                 return False
-            fut = client.submit(fit_chunk, c, opts, pure=False)
+            fut = client.submit(fit_chunk, c, spec, pure=False)
             sizes[fut.key] = len(c)
             queue.add(fut)
             return True
@@ -281,8 +290,9 @@ def _run_dask(chunks, opts, address, save, bar, stop_after_chunks, written) -> b
             cluster.close()
 
 
-def combine(out: Path, units: dict | None = None) -> pd.DataFrame:
-    """Merge ``out`` and its parts into one sorted table at ``out``; remove the parts."""
+def combine(out: Path, units: dict | None = None, settings: dict | None = None) -> pd.DataFrame:
+    """Merge ``out`` and its parts into one sorted table at ``out`` (with ``settings`` in its metadata, or beside
+    a CSV); remove the parts."""
     parts = _parts_dir(out)
     frames = [read_table(out)] if out.exists() else []
     frames += [pd.read_parquet(p) for p in sorted(parts.glob("part-*.parquet"))] if parts.exists() else []
@@ -295,19 +305,30 @@ def combine(out: Path, units: dict | None = None) -> pd.DataFrame:
     front = [c for c in WINDOW_COLUMNS + ["model", "estimator", "status", "message", "loglik", "aic",
                                           "gof_pvalue"] if c in df]
     df = df[front + [c for c in df.columns if c not in front]]
-    write_table(df, out, units)
+    if settings is not None:
+        text = json.dumps(settings, sort_keys=True)
+        if out.suffix.lower() == ".csv":
+            _sidecar(out).write_text(text)
+        write_table(df, out, units, metadata={SETTINGS_KEY: text})
+    else:
+        write_table(df, out, units)
     if parts.exists():
         shutil.rmtree(parts)
     return df
 
 
+def _sidecar(out: Path) -> Path:
+    return out.with_name(out.name + ".settings.json")
+
+
 def summarise(df: pd.DataFrame) -> str:
     if len(df) == 0:
-        return "no windows fitted"
+        return "no windows fitted"  # the caller explains why (see the command line's window census)
     counts = df["status"].value_counts()
     ok = int(counts.get("ok", 0))
     other = ", ".join(f"{k} {v}" for k, v in counts.items() if k != "ok") or "none"
     return f"{len(df)} fits: {ok} ok; other: {other}"
 
 
-__all__ = ["FitOptions", "combine", "fit_window", "read_table", "run_fits", "summarise", "write_table"]
+__all__ = ["column_units", "combine", "fit_chunk", "run_fits", "run_settings", "stored_settings", "summarise",
+           "window_rows"]

@@ -14,6 +14,7 @@ uses this interface. ``theta`` is always a 1-D array in the order of ``parameter
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -60,35 +61,86 @@ class FitContext:
 
 
 class ModelFamily:
-    """Base class: a stationary (or modulated) complex-velocity process with named parameters."""
+    """Base class: a stationary (or modulated) complex-velocity process with named parameters.
+
+    As with ``scipy.stats``' distributions, the public methods check their arguments (``theta`` has one finite
+    value per parameter, inside the declared bounds) and then call the private ones, which a family implements:
+    ``_autocovariance``, ``_spectral_density``, ``_initial_guess`` (required), ``_autocovariance_jacobian``,
+    ``_zero_frequency_density``, ``_derived`` (optional, with generic defaults). The private methods receive
+    ``theta`` as a float array and never need to validate it.
+    """
 
     name: str = ""
     parameters: tuple[Parameter, ...] = ()
     #: ``True`` when the component is a stationary process multiplied by the known unit-modulus
-    #: sequence ``exp(i phase(t))`` of the window (see :mod:`driftspec.analysis.likelihood`).
+    #: sequence ``exp(i phase(t))`` of the window (see :mod:`driftspec.analysis.spectral.likelihood`).
     modulated: bool = False
     #: ``True`` when the autocovariance is real (so even in the lag): its expected periodogram is then
     #: symmetric and comes from a real FFT of half the cost (see ``likelihood.expected_in_band``).
     real_autocovariance: bool = False
 
-    # --- what a family must provide -------------------------------------------------------------
-    def autocovariance(self, theta, lags_days, context: FitContext) -> np.ndarray:
+    # --- public interface: checks, then the family's private computation --------------------------------
+    def check_theta(self, theta) -> np.ndarray:
+        """``theta`` as a float array, or a one-line ``ValueError`` naming what is wrong with it."""
+        theta = np.asarray(theta, dtype=float)
+        p = len(self.parameters)
+        if theta.shape != (p,):
+            raise ValueError(f"{self.name}: expected {p} parameters ({', '.join(self.names)}), got shape "
+                             f"{theta.shape}")
+        lo, hi = self._static_bounds
+        bad = ~((theta >= lo) & (theta <= hi))  # also catches NaN
+        if bad.any():
+            k = int(np.flatnonzero(bad)[0])
+            q = self.parameters[k]
+            raise ValueError(f"{self.name}: {q.name} = {theta[k]:g} is outside [{q.lower:g}, {q.upper:g}] {q.unit}")
+        return theta
+
+    def autocovariance(self, theta, lags_days, context: FitContext | None = None) -> np.ndarray:
+        """``R(tau) = E[z(t + tau) conj z(t)]`` in m^2/s^2 at lags ``tau >= 0`` (days)."""
+        return self._autocovariance(self.check_theta(theta), np.asarray(lags_days, float), context)
+
+    def autocovariance_jacobian(self, theta, lags_days, context: FitContext | None = None):
+        """``R`` and ``dR/dx_j`` for the optimiser coordinates ``x`` (``log`` or the value, per parameter)."""
+        return self._autocovariance_jacobian(self.check_theta(theta), np.asarray(lags_days, float), context)
+
+    def spectral_density(self, theta, freq_cpd, context: FitContext | None = None) -> np.ndarray:
+        """Two-sided density in (m/s)^2 per cpd at ``freq_cpd`` (positive = counterclockwise)."""
+        return self._spectral_density(self.check_theta(theta), np.asarray(freq_cpd, float), context)
+
+    def initial_guess(self, freq_cpd, power, context: FitContext | None = None) -> np.ndarray:
+        """Starting values from a periodogram over the fitted band, clipped into the bounds."""
+        g = np.asarray(self._initial_guess(np.asarray(freq_cpd, float), np.asarray(power, float), context), float)
+        lo, hi = self._static_bounds
+        g = np.where(np.isfinite(g), g, 0.5 * (lo + hi))
+        return np.clip(g, lo, hi)
+
+    def zero_frequency_density(self, theta, context: FitContext | None = None) -> float:
+        """``S(0)`` in (m/s)^2 per cpd (used for the diffusivity)."""
+        return float(self._zero_frequency_density(self.check_theta(theta), context))
+
+    def derived(self, theta, context: FitContext | None = None) -> dict[str, float]:
+        """Named derived quantities (time scales, ...) in natural units."""
+        return self._derived(self.check_theta(theta), context)
+
+    @functools.cached_property
+    def _static_bounds(self):
+        lo = np.array([q.lower for q in self.parameters], float)
+        hi = np.array([q.upper for q in self.parameters], float)
+        return lo * (1 - 1e-9) - 1e-300, hi * (1 + 1e-9) + 1e-300
+
+    # --- what a family provides -----------------------------------------------------------------------
+    def _autocovariance(self, theta, lags_days, context):
         raise NotImplementedError
 
-    def spectral_density(self, theta, freq_cpd, context: FitContext) -> np.ndarray:
+    def _spectral_density(self, theta, freq_cpd, context):
         raise NotImplementedError
 
-    def initial_guess(self, freq_cpd, power, context: FitContext) -> np.ndarray:
+    def _initial_guess(self, freq_cpd, power, context):
         raise NotImplementedError
 
-    # --- optional, with generic defaults ---------------------------------------------------------
-    def autocovariance_jacobian(self, theta, lags_days, context: FitContext):
-        """``R`` and ``dR/dx_j`` for the optimiser coordinates ``x`` (log or linear per parameter).
-
-        The default uses central finite differences; families override it with exact derivatives.
-        """
-        theta = np.asarray(theta, float)
-        r = self.autocovariance(theta, lags_days, context)
+    def _autocovariance_jacobian(self, theta, lags_days, context):
+        """Default: central finite differences of ``_autocovariance``; families override with exact ones."""
+        r = self._autocovariance(theta, lags_days, context)
         jac = np.empty((len(theta), len(r)), dtype=complex)
         for j, p in enumerate(self.parameters):
             h = 1e-6
@@ -101,21 +153,19 @@ class ModelFamily:
                 tp[j] += step
                 tm[j] -= step
                 h = step
-            jac[j] = (self.autocovariance(tp, lags_days, context)
-                      - self.autocovariance(tm, lags_days, context)) / (2 * h)
+            r_plus, r_minus = self._autocovariance(tp, lags_days, context), self._autocovariance(tm, lags_days, context)
+            jac[j] = (r_plus - r_minus) / (2 * h)
         return r, jac
 
-    def bounds(self, context: FitContext) -> list[tuple[float, float]]:
+    def _zero_frequency_density(self, theta, context):
+        return float(np.real(self._spectral_density(theta, np.array([0.0]), context))[0])
+
+    def _derived(self, theta, context):
+        return {}
+
+    def bounds(self, context: FitContext | None) -> list[tuple[float, float]]:
         """Bounds in natural units; families may narrow them from the context."""
         return [(p.lower, p.upper) for p in self.parameters]
-
-    def zero_frequency_density(self, theta, context: FitContext) -> float:
-        """``S(0)`` in (m/s)^2 per cpd (used for the diffusivity)."""
-        return float(np.real(self.spectral_density(theta, np.array([0.0]), context))[0])
-
-    def derived(self, theta, context: FitContext) -> dict[str, float]:
-        """Named derived quantities (time scales, ...) in natural units."""
-        return {}
 
     # --- shared conveniences ----------------------------------------------------------------------
     @property
@@ -154,11 +204,11 @@ class SumFamily(ModelFamily):
     def components(self):
         return [(p, s) for p, s in zip(self.parts, self._slices)]
 
-    def autocovariance(self, theta, lags_days, context):
+    def _autocovariance(self, theta, lags_days, context):
         theta = np.asarray(theta, float)
         return sum(p.autocovariance(theta[s], lags_days, context) for p, s in self.components())
 
-    def autocovariance_jacobian(self, theta, lags_days, context):
+    def _autocovariance_jacobian(self, theta, lags_days, context):
         theta = np.asarray(theta, float)
         r = np.zeros(len(lags_days), dtype=complex)
         jac = np.zeros((len(theta), len(lags_days)), dtype=complex)
@@ -168,18 +218,18 @@ class SumFamily(ModelFamily):
             jac[s] = jp
         return r, jac
 
-    def spectral_density(self, theta, freq_cpd, context):
+    def _spectral_density(self, theta, freq_cpd, context):
         theta = np.asarray(theta, float)
         return sum(p.spectral_density(theta[s], freq_cpd, context) for p, s in self.components())
 
-    def zero_frequency_density(self, theta, context):
+    def _zero_frequency_density(self, theta, context):
         theta = np.asarray(theta, float)
         return sum(p.zero_frequency_density(theta[s], context) for p, s in self.components())
 
     def bounds(self, context):
         return [b for p in self.parts for b in p.bounds(context)]
 
-    def initial_guess(self, freq_cpd, power, context):
+    def _initial_guess(self, freq_cpd, power, context):
         # Each part guesses from the periodogram with the other parts' share removed in turn:
         # later parts (narrow-band) are guessed first and subtracted.
         guesses = [None] * len(self.parts)
@@ -193,7 +243,7 @@ class SumFamily(ModelFamily):
                 residual = np.maximum(residual - model, 0.05 * residual)
         return np.concatenate(guesses)
 
-    def derived(self, theta, context):
+    def _derived(self, theta, context):
         theta = np.asarray(theta, float)
         out = {}
         for p, s in self.components():

@@ -51,18 +51,18 @@ class Inertial(ModelFamily):
         Parameter("inertial_damping", "day-1", 1e-3, 20.0, "damping gamma"),
     )
 
-    def autocovariance(self, theta, lags_days, context=None):
+    def _autocovariance(self, theta, lags_days, context=None):
         var, f0, gam = theta
         tau = np.asarray(lags_days, float)
         return var * np.exp((2j * np.pi * f0 - gam) * tau)
 
-    def autocovariance_jacobian(self, theta, lags_days, context=None):
+    def _autocovariance_jacobian(self, theta, lags_days, context=None):
         var, f0, gam = theta
         tau = np.asarray(lags_days, float)
         r = var * np.exp((2j * np.pi * f0 - gam) * tau)
         return r, np.stack([r, 2j * np.pi * tau * r, -gam * tau * r])
 
-    def spectral_density(self, theta, freq_cpd, context=None):
+    def _spectral_density(self, theta, freq_cpd, context=None):
         var, f0, gam = theta
         f = np.asarray(freq_cpd, float)
         return var * 2 * gam / (gam**2 + (2 * np.pi * (f - f0)) ** 2)
@@ -75,7 +75,7 @@ class Inertial(ModelFamily):
             b[1] = (max(-3.0, fc - half), min(3.0, fc + half))
         return b
 
-    def initial_guess(self, freq_cpd, power, context: FitContext):
+    def _initial_guess(self, freq_cpd, power, context: FitContext):
         f, p = np.asarray(freq_cpd, float), np.asarray(power, float)
         fc = context.inertial_frequency_cpd
         if fc is None or not np.isfinite(fc):
@@ -91,7 +91,7 @@ class Inertial(ModelFamily):
         var = float(np.clip(share, 1e-3 * total + 1e-9, 0.9 * total + 1e-9))
         return np.array([var, fc, 0.3])
 
-    def derived(self, theta, context=None):
+    def _derived(self, theta, context=None):
         return {"inertial_efold_days": float(1.0 / theta[2])}
 
 
@@ -105,27 +105,27 @@ class InertialFollowing(ModelFamily):
     modulated = True
     parameters = (Inertial.parameters[0], Inertial.parameters[2])
 
-    def autocovariance(self, theta, lags_days, context=None):
+    def _autocovariance(self, theta, lags_days, context=None):
         var, gam = theta
         return (var * np.exp(-gam * np.asarray(lags_days, float))).astype(complex)
 
-    def autocovariance_jacobian(self, theta, lags_days, context=None):
+    def _autocovariance_jacobian(self, theta, lags_days, context=None):
         var, gam = theta
         tau = np.asarray(lags_days, float)
         r = var * np.exp(-gam * tau)
         return r.astype(complex), np.stack([r, -gam * tau * r]).astype(complex)
 
-    def spectral_density(self, theta, freq_cpd, context: FitContext):
+    def _spectral_density(self, theta, freq_cpd, context: FitContext):
         var, gam = theta
         fc = context.inertial_frequency_cpd if context is not None else 0.0
         f = np.asarray(freq_cpd, float)
         return var * 2 * gam / (gam**2 + (2 * np.pi * (f - fc)) ** 2)
 
-    def initial_guess(self, freq_cpd, power, context):
+    def _initial_guess(self, freq_cpd, power, context):
         g = Inertial().initial_guess(freq_cpd, power, context)
         return np.array([g[0], g[2]])
 
-    def derived(self, theta, context=None):
+    def _derived(self, theta, context=None):
         return {"inertial_efold_days": float(1.0 / theta[1])}
 
 

@@ -131,11 +131,11 @@ class Matern(ModelFamily):
         Parameter("matern_damping", "day-1", 1e-3, 100.0, "damping lambda (low-frequency corner)"),
     )
 
-    def autocovariance(self, theta, lags_days, context=None):
+    def _autocovariance(self, theta, lags_days, context=None):
         var, alpha, lam = theta
         return var * matern_correlation(alpha - 0.5, lam * np.abs(lags_days))
 
-    def autocovariance_jacobian(self, theta, lags_days, context=None):
+    def _autocovariance_jacobian(self, theta, lags_days, context=None):
         var, alpha, lam = theta
         rho, d_nu, d_u = matern_correlation(alpha - 0.5, lam * np.abs(lags_days), derivatives=True)
         r = var * rho
@@ -148,16 +148,16 @@ class Matern(ModelFamily):
     def _norm(var, alpha, lam):
         return var * 2 * np.sqrt(np.pi) * lam ** (2 * alpha - 1) * np.exp(gammaln(alpha) - gammaln(alpha - 0.5))
 
-    def spectral_density(self, theta, freq_cpd, context=None):
+    def _spectral_density(self, theta, freq_cpd, context=None):
         var, alpha, lam = theta
         omega = 2 * np.pi * np.asarray(freq_cpd, float)
         return self._norm(var, alpha, lam) * (omega**2 + lam**2) ** (-alpha)
 
-    def zero_frequency_density(self, theta, context=None):
+    def _zero_frequency_density(self, theta, context=None):
         var, alpha, lam = theta
         return float(self._norm(var, alpha, lam) * lam ** (-2 * alpha))
 
-    def initial_guess(self, freq_cpd, power, context: FitContext):
+    def _initial_guess(self, freq_cpd, power, context: FitContext):
         f, p = np.asarray(freq_cpd, float), np.asarray(power, float)
         df = np.ptp(f) / (f.size - 1) if f.size > 1 else 1.0  # the band is a regular grid (minus gaps)
         var = max(float(np.sum(p) * df), 1e-6)
@@ -187,7 +187,7 @@ class Matern(ModelFamily):
         lam = float(np.clip(lam, 0.02, 20.0))
         return np.array([var, alpha, lam])
 
-    def derived(self, theta, context=None):
+    def _derived(self, theta, context=None):
         var, alpha, lam = theta
         # integral time scale int_0^inf R / R(0) = S(0) / (2 sigma^2), days
         t_int = np.sqrt(np.pi) * np.exp(gammaln(alpha) - gammaln(alpha - 0.5)) / lam

@@ -45,7 +45,8 @@ the ocean and the noise alike, so the top periodogram bins carry almost no infor
 observation model fit up to ``0.75 f_N`` (the default). A forward difference moves the zero to
 ``2 f_N``: fit up to ``f_N``. Measured velocities (no differencing): up to ``f_N``. Without the
 observation model, differenced velocities should be fitted only where ``sinc^2`` is close to one,
-about ``0.25 f_N`` (3 cpd for hourly data), and even then the Matérn slope is biased by noise.
+about ``0.25 f_N`` (3 cpd for hourly data), and even then the Matérn slope is biased by noise. These fractions
+are applied in one place, :meth:`driftspec.analysis.fitting.spec.FitSpec.max_freq`.
 """
 
 from __future__ import annotations
@@ -59,19 +60,9 @@ from ..conventions import SECONDS_PER_DAY
 from .base import FitContext, ModelFamily, Parameter
 
 OBSERVATIONS = ("none", "differenced", "differenced+noise")
-#: fraction of the Nyquist frequency fitted by default, per velocity operator (see module docstring)
-DEFAULT_BAND_FRACTION = {"central": 0.75, "forward": 1.0, "none": 1.0}
 _GL_NODES, _GL_WEIGHTS = np.polynomial.legendre.leggauss(16)
 #: from this lag on (in samples) the averaged autocovariance uses integer nodes only (error O((D/tau)^(2h+2)))
 _FAR_LAG = 24
-
-
-def default_max_freq(dt_days: float, operator: str = "central", observation: str = "differenced+noise"):
-    """The default top of the fitted band (cpd) for a velocity operator and observation model."""
-    nyquist = 0.5 / dt_days
-    if observation == "none" and operator != "none":
-        return 0.25 * nyquist
-    return DEFAULT_BAND_FRACTION[operator] * nyquist
 
 
 @dataclass(frozen=True)
@@ -210,26 +201,26 @@ class _AveragedComponent(ModelFamily):
             self._near_key, self._near_val = key, (near, x, wq)
         return self._near_val
 
-    def autocovariance(self, theta, lags_days, context):
+    def _autocovariance(self, theta, lags_days, context):
         return self._apply(np.asarray(theta, float), np.asarray(lags_days, float), context, False)[0]
 
-    def autocovariance_jacobian(self, theta, lags_days, context):
+    def _autocovariance_jacobian(self, theta, lags_days, context):
         return self._apply(np.asarray(theta, float), np.asarray(lags_days, float), context, True)
 
-    def spectral_density(self, theta, freq_cpd, context):
+    def _spectral_density(self, theta, freq_cpd, context):
         return self.base.spectral_density(theta, freq_cpd, context) * self.op.power_response(
             freq_cpd, context.dt_days)
 
-    def zero_frequency_density(self, theta, context):
+    def _zero_frequency_density(self, theta, context):
         return self.base.zero_frequency_density(theta, context)
 
-    def initial_guess(self, freq_cpd, power, context):
+    def _initial_guess(self, freq_cpd, power, context):
         return self.base.initial_guess(freq_cpd, power, context)
 
     def bounds(self, context):
         return self.base.bounds(context)
 
-    def derived(self, theta, context):
+    def _derived(self, theta, context):
         return self.base.derived(theta, context)
 
 
@@ -243,25 +234,25 @@ class PositionNoise(ModelFamily):
     def __init__(self, op: DifferenceOperator):
         self.op = op
 
-    def autocovariance(self, theta, lags_days, context):
+    def _autocovariance(self, theta, lags_days, context):
         dt_s = context.dt_days * SECONDS_PER_DAY
         return self.op.noise_autocovariance(theta[0], dt_s, len(lags_days)).astype(complex)
 
-    def autocovariance_jacobian(self, theta, lags_days, context):
+    def _autocovariance_jacobian(self, theta, lags_days, context):
         r = self.autocovariance(theta, lags_days, context)
         return r, (2.0 * r)[None, :]  # d/d log(sigma) of sigma^2 * const
 
-    def spectral_density(self, theta, freq_cpd, context):
+    def _spectral_density(self, theta, freq_cpd, context):
         dt_s = context.dt_days * SECONDS_PER_DAY
         d = np.asarray(self.op.stencil, float) / dt_s
         f = np.asarray(freq_cpd, float)
         resp = np.abs(np.exp(-2j * np.pi * np.outer(f, np.arange(d.size)) * context.dt_days) @ d) ** 2
         return context.dt_days * 2 * theta[0] ** 2 * resp
 
-    def zero_frequency_density(self, theta, context):
+    def _zero_frequency_density(self, theta, context):
         return 0.0
 
-    def initial_guess(self, freq_cpd, power, context):
+    def _initial_guess(self, freq_cpd, power, context):
         # the noise floor from the top of the band, where the ocean spectrum has fallen off
         f = np.abs(np.asarray(freq_cpd, float))
         p = np.asarray(power, float)
@@ -294,11 +285,11 @@ class ObservedFamily(ModelFamily):
     def components(self):
         return self._parts
 
-    def autocovariance(self, theta, lags_days, context):
+    def _autocovariance(self, theta, lags_days, context):
         theta = np.asarray(theta, float)
         return sum(c.autocovariance(theta[s], lags_days, context) for c, s in self._parts)
 
-    def spectral_density(self, theta, freq_cpd, context):
+    def _spectral_density(self, theta, freq_cpd, context):
         theta = np.asarray(theta, float)
         return sum(c.spectral_density(theta[s], freq_cpd, context) for c, s in self._parts)
 
@@ -313,7 +304,7 @@ class ObservedFamily(ModelFamily):
         c, s = self._parts[-1]
         return c.spectral_density(np.asarray(theta, float)[s], freq_cpd, context)
 
-    def zero_frequency_density(self, theta, context):
+    def _zero_frequency_density(self, theta, context):
         return self.base.zero_frequency_density(np.asarray(theta, float)[: len(self.base.parameters)], context)
 
     def bounds(self, context):
@@ -322,7 +313,7 @@ class ObservedFamily(ModelFamily):
             b = b + [(PositionNoise.parameters[0].lower, PositionNoise.parameters[0].upper)]
         return b
 
-    def initial_guess(self, freq_cpd, power, context: FitContext):
+    def _initial_guess(self, freq_cpd, power, context: FitContext):
         # noise from the top of the band first; the ocean from what is left, with the operator's
         # averaging undone where it still passes a tenth of the power
         f, p = np.asarray(freq_cpd, float), np.asarray(power, float)
@@ -334,7 +325,7 @@ class ObservedFamily(ModelFamily):
         p = p / np.maximum(self.operator.power_response(f, context.dt_days), 0.1)
         return np.concatenate([self.base.initial_guess(f, p, context), g_noise])
 
-    def derived(self, theta, context):
+    def _derived(self, theta, context):
         return self.base.derived(np.asarray(theta, float)[: len(self.base.parameters)], context)
 
 

@@ -8,7 +8,7 @@ overlap by a fraction of their length; a window is kept only when the fraction o
 from __future__ import annotations
 
 from collections.abc import Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
@@ -84,13 +84,6 @@ class Window:
         return inertial_frequency_cpd(self.lat)
 
     @property
-    def auto_max_freq(self) -> float:
-        """Default top of the fitted band, cpd: 3/4 of the Nyquist frequency of the sample interval or of
-        the fix interval, whichever is longer (frequencies the fixes cannot resolve are not fitted)."""
-        interval = max(self.dt_seconds, self.fix_interval_s or 0.0)
-        return 0.75 * 0.5 * 86400.0 / interval
-
-    @property
     def key(self) -> tuple[str, str]:
         return (self.track_id, self.start.isoformat())
 
@@ -105,8 +98,38 @@ def window_bounds(n: int, length: int, overlap: float) -> list[tuple[int, int]]:
     return [(s, s + length) for s in range(0, n - length + 1, hop)]
 
 
+@dataclass
+class WindowCensus:
+    """What :func:`iter_windows` saw: segments, candidate windows and why candidates were not kept, so that an
+    empty result can say why with numbers."""
+
+    segments: int = 0
+    short_segments: int = 0  # shorter than one window
+    longest_segment_days: float = 0.0
+    candidates: int = 0
+    kept: int = 0
+    low_coverage: list = field(default_factory=list)  # coverage of each candidate below the limit
+
+    def explain(self, min_coverage: float) -> str:
+        """One paragraph: why no (or few) windows were kept, with numbers, and what to try."""
+        lines = [f"windows: {self.kept} of {self.candidates} candidate windows kept, from {self.segments} track "
+                 f"segments"]
+        if self.short_segments:
+            lines.append(f"{self.short_segments} segments are shorter than one window (longest "
+                         f"{self.longest_segment_days:.1f} days): try a shorter --window-days or a longer --split-gap")
+        if self.low_coverage:
+            cov = np.asarray(self.low_coverage)
+            lines.append(f"{cov.size} windows had coverage below --min-coverage {min_coverage:g} (median "
+                         f"{np.median(cov):.2f}, best {cov.max():.2f}): sparse or irregular fixes leave grid samples "
+                         "missing; try a longer --mask-distance (e.g. 12h), a longer --step, or a lower --min-coverage")
+        if self.segments == 0:
+            lines.append("no track segment had two or more grid samples: check the input's times and --split-gap")
+        return "; ".join(lines)
+
+
 def iter_windows(vel: pd.DataFrame, window_days: float = 60.0, overlap: float = 0.5,
-                 min_coverage: float = 0.8, use_measured: bool = False) -> Iterator[Window]:
+                 min_coverage: float = 0.8, use_measured: bool = False,
+                 census: WindowCensus | None = None) -> Iterator[Window]:
     """Yield analysis windows from a velocity table made by :func:`~driftspec.analysis.velocity.add_velocity`.
 
     Parameters
@@ -121,7 +144,10 @@ def iter_windows(vel: pd.DataFrame, window_days: float = 60.0, overlap: float = 
         Minimum fraction of valid samples for a window to be kept.
     use_measured : bool
         Use the measured velocities carried by the input instead of the differenced positions.
+    census : WindowCensus, optional
+        Filled in with counts of segments and candidate windows and the coverage of those not kept.
     """
+    census = census if census is not None else WindowCensus()
     if window_days <= 0:
         raise ValueError("window_days must be positive")
     if len(vel) == 0:
@@ -146,10 +172,18 @@ def iter_windows(vel: pd.DataFrame, window_days: float = 60.0, overlap: float = 
         length = int(round(window_days * 86400e9 / dt_ns))
         if length < 2:
             raise ValueError("window shorter than two samples")
-        for k, (s, e) in enumerate(window_bounds(b - a, length, overlap)):
+        bounds = window_bounds(b - a, length, overlap)
+        census.segments += 1
+        census.longest_segment_days = max(census.longest_segment_days, (b - a) * dt_ns / 86400e9)
+        census.short_segments += not bounds
+        census.candidates += len(bounds)
+        for k, (s, e) in enumerate(bounds):
             zz = z[a + s:a + e]
-            if np.isfinite(zz).mean() < min_coverage:
+            coverage = np.isfinite(zz).mean()
+            if coverage < min_coverage:
+                census.low_coverage.append(float(coverage))
                 continue
+            census.kept += 1
             yield Window(
                 track_id=str(names[ids[a]]), segment=int(seg[a]), index=k,
                 start=pd.Timestamp(t_ns[a + s]), end=pd.Timestamp(t_ns[a + e - 1]),

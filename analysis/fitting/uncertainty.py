@@ -1,0 +1,82 @@
+"""Uncertainty beyond the Fisher information: the simulated score covariance of the debiased Whittle sandwich,
+and simulation of the fitted (observed) process for the parametric bootstrap.
+
+Both draw series from the fitted model by circulant embedding (C. R. Dietrich, G. N. Newsam, "Fast and exact
+simulation of stationary Gaussian processes through circulant embedding of the covariance matrix", SIAM J. Sci.
+Comput. 18, 1088-1107, 1997) with the window's mask, taper and mean removal, so what they measure is the spread
+of what was actually observed. "The debiased Whittle likelihood", Biometrika 106(2), 251-266 (2019),
+doi:10.1093/biomet/asy071, section 4, gives the sandwich form ``F^-1 V F^-1``.
+"""
+
+from __future__ import annotations
+
+import zlib
+
+import numpy as np
+import scipy.fft
+
+from ..simulation.simulate import embedding_autocovariance
+from ..spectral.likelihood import expected_in_band
+
+
+def simulator(family, theta, prep, context, max_factor: int = 64):
+    """A function ``rng, size -> (size, n)`` series of the fitted (observed) process by circulant embedding,
+    modulated components multiplied by the window's modulation, with the window's missing samples NaN.
+
+    ``max_factor`` bounds the embedding (at most ``2 n max_factor`` points; negative eigenvalues left are
+    set to zero): slowly decaying models otherwise need embeddings many times the window.
+    """
+    theta = np.asarray(theta, float)
+    # independent stationary components add up to one stationary process: one embedding for all of them
+    parts = family.components()
+    steady = [(c, sl) for c, sl in parts if not c.modulated]
+    groups = [(False, lambda lag: sum(c.autocovariance(theta[sl], lag, context) for c, sl in steady))] if steady \
+        else []
+    groups += [(True, lambda lag, c=c, sl=sl: c.autocovariance(theta[sl], lag, context))
+               for c, sl in parts if c.modulated]
+    comps = []
+    for modulated, fn in groups:
+        acov = np.asarray(embedding_autocovariance(fn, prep.n, prep.dt_days, max_factor), complex)
+        half = acov.size - 1
+        row = np.concatenate([acov, np.conj(acov[1:half][::-1])])
+        lam = np.clip(scipy.fft.fft(row).real, 0, None)  # the circulant embedding's eigenvalues
+        comps.append((modulated, np.sqrt(lam * row.size)))
+
+    def draw(rng, size):
+        z = np.zeros((size, prep.n), complex)
+        for modulated, amp in comps:
+            # z_j = sum_k sqrt(lam_k / m) eps_k exp(+2 pi i j k / m), eps standard complex normal
+            # (single-precision normals: twice as fast to draw, ample for a variance)
+            eps = rng.standard_normal((size, 2 * amp.size), dtype=np.float32).view(np.complex64)
+            x = scipy.fft.ifft(eps * (amp / np.sqrt(2.0)), axis=-1, overwrite_x=True)[:, :prep.n]
+            z += x * prep.modulation if modulated else x
+        if prep.real_valued:
+            z = np.sqrt(2.0) * z.real  # the real part of a proper complex series carries half its variance
+        return np.where(prep.valid, z, np.nan)
+
+    return draw
+
+
+def score_covariance(family, theta, prep, context, free=None, n_sim: int = 64, seed=None) -> np.ndarray:
+    """Covariance of the debiased-Whittle score at ``theta`` (optimiser coordinates, free parameters) over
+    periodograms of series simulated from the model with the window's mask, taper and demeaning.
+
+    With independent ordinates it equals the Fisher information; gaps and tapers correlate them (by an
+    amount that depends on the spectrum's shape, which the ``N sum h^4`` factor ignores), and then the
+    sandwich ``F^-1 V F^-1`` is the variance of the estimator (the debiased Whittle paper, section 4).
+    ``seed`` defaults to one drawn from the window's periodogram, so a window always gets the same value.
+    """
+    free = np.ones(len(theta), bool) if free is None else np.asarray(free, bool)
+    e_band, de = expected_in_band(family, theta, prep, context)
+    dlog = de[free] / e_band
+    if seed is None:
+        seed = zlib.crc32(prep.periodogram.tobytes())
+    rng = np.random.default_rng(seed)
+    # an embedding of at most 4 N: a variance needs no exact long-lag covariance, and this bounds the cost
+    z = simulator(family, theta, prep, context, max_factor=2)(rng, n_sim)
+    valid = prep.valid
+    z = np.where(valid, z, 0.0)
+    zz = np.where(valid, z - z.sum(axis=1, keepdims=True) / max(prep.n_valid, 1), 0.0)
+    pg = prep.dt_days * np.abs(scipy.fft.fft(prep.taper * zz, axis=-1)[:, prep.band_index]) ** 2
+    scores = (1.0 - pg / e_band) @ dlog.T  # (n_sim, free)
+    return np.atleast_2d(np.cov(scores, rowvar=False))
