@@ -53,7 +53,8 @@ With missing samples (``Sigma`` restricted to the valid samples is not Toeplitz)
 (not Toeplitz either) the value comes from a dense Cholesky factorisation of ``Sigma`` on the valid samples
 (O(m^3)). The gradient then uses ``W = Sigma^-1 - alpha alpha^H`` (one more triangular solve) embedded in
 the full window: ``dL/dx_j = Re sum_ab conj(W_ab) dSigma_j,ab`` is again a sum over lags of the diagonal sums of
-``W`` (for a modulated component, of ``diag(conj w) W diag(w)``).
+``W`` (for a modulated component, of ``diag(conj w) W diag(w)``). ``Sigma^-1`` comes from the Cholesky factor
+(LAPACK ``potri``), so a fallback gradient costs about three fallback values.
 
 Observed information
 --------------------
@@ -306,7 +307,12 @@ def _dense_path(family, theta, prep, context, gradient):
     value = _assemble(logdet, quad, m, prep.real_valued)
     if not gradient:
         return value, None
-    inv = scipy.linalg.cho_solve(chol, np.eye(m, dtype=cov.dtype), check_finite=False)
+    potri = scipy.linalg.get_lapack_funcs("potri", (chol[0],))
+    inv, info = potri(chol[0], lower=True)  # Sigma^-1 from the Cholesky factor (lower triangle)
+    if info != 0:
+        return value, np.full(len(theta), np.nan)
+    inv = np.tril(inv)
+    inv += np.conj(np.tril(inv, -1).T)
     wmat = inv - np.outer(alpha, np.conj(alpha))  # W = Sigma^-1 - alpha alpha^H (Hermitian)
     emb = np.zeros((prep.n, prep.n), dtype=wmat.dtype)
     emb[np.ix_(idx, idx)] = wmat
