@@ -26,12 +26,8 @@ import numpy as np
 import scipy.optimize
 
 from ..models import FitContext, ModelFamily
-from ..spectral.likelihood import (
-    PreparedWindow,
-    exact_negloglik,
-    expected_in_band,
-    whittle_expectation,
-)
+from ..spectral.exact import exact_negloglik, exact_negloglik_grad, exact_observed_information
+from ..spectral.likelihood import PreparedWindow, expected_in_band, whittle_expectation
 from .uncertainty import score_covariance
 
 
@@ -221,9 +217,18 @@ class StandardWhittle(Estimator):
 
 
 class ExactGaussian(Estimator):
-    """The exact Gaussian likelihood of the valid samples, started from the debiased Whittle estimate."""
+    """The exact Gaussian likelihood of the valid samples (:mod:`driftspec.analysis.spectral.exact`: O(N^2) by
+    Levinson recursion for complete windows, a dense factorisation with gaps), with its analytic gradient,
+    started from the debiased Whittle estimate; covariance from the observed information (central differences
+    of the analytic gradient)."""
 
     name = "exact"
+
+    def objective_and_gradient(self, problem: Problem, xf):
+        value, grad = exact_negloglik_grad(problem.family, problem.theta(xf), problem.prep, problem.context)
+        if not np.isfinite(value):
+            return 1e300, np.zeros(int(problem.free.sum()))
+        return value, grad[problem.free]
 
     def objective(self, problem: Problem, xf) -> float:
         return exact_negloglik(problem.family, problem.theta(xf), problem.prep, problem.context)
@@ -233,28 +238,23 @@ class ExactGaussian(Estimator):
         return pilot.x if np.all(np.isfinite(pilot.x)) else problem.x0
 
     def optimise(self, problem: Problem, x0) -> Optimum:
-        # the objective scaled to O(1) per sample, so that L-BFGS-B's first trial step stays local; a
-        # derivative-free fallback
+        # the objective scaled to O(1) per sample, so that L-BFGS-B's first trial step stays local
         scale = 1.0 / max(problem.prep.n_valid, 1)
 
         def f(xf):
             problem.n_evaluations += 1
-            v = self.objective(problem, xf)
-            return v if np.isfinite(v) else 1e300
+            value, grad = self.objective_and_gradient(problem, xf)
+            return scale * value, scale * grad
 
         with np.errstate(all="ignore"):
-            res = scipy.optimize.minimize(lambda xf: scale * f(xf), x0, method="L-BFGS-B", bounds=problem.bounds,
-                                          options={"maxiter": 200, "ftol": 1e-13, "gtol": 1e-7, "eps": 1e-7})
-            value = res.fun / scale
-            if not res.success or res.nit <= 1:
-                res = scipy.optimize.minimize(f, res.x, method="Powell", bounds=problem.bounds,
-                                              options={"xtol": 1e-6, "ftol": 1e-12, "maxfev": 3000})
-                value = res.fun
-        return Optimum(res.x, float(value), bool(res.success), str(res.message))
+            res = scipy.optimize.minimize(f, x0, jac=True, method="L-BFGS-B", bounds=problem.bounds,
+                                          options={"maxiter": 200, "ftol": 1e-13, "gtol": 1e-7})
+        return Optimum(res.x, float(res.fun / scale), bool(res.success), str(res.message))
 
     def covariance(self, problem: Problem, opt: Optimum, stderr: str = "auto") -> tuple[np.ndarray, str]:
-        hess = _numerical_hessian(lambda xf: self.objective(problem, xf), opt.x)
-        return np.linalg.inv(hess), "observed"
+        info = exact_observed_information(problem.family, problem.theta(opt.x), problem.prep, problem.context)
+        free = problem.free
+        return np.linalg.inv(info[np.ix_(free, free)]), "observed"
 
 
 #: estimator name -> class
@@ -265,24 +265,6 @@ def get_estimator(name: str) -> Estimator:
     if name not in ESTIMATORS:
         raise ValueError(f"estimator must be one of {', '.join(ESTIMATORS)}; got {name!r}")
     return ESTIMATORS[name]()
-
-
-def _numerical_hessian(fun, x, step=1e-4):
-    p = x.size
-    hess = np.empty((p, p))
-    f0 = fun(x)
-    for i in range(p):
-        for j in range(i, p):
-            ei = np.zeros(p)
-            ej = np.zeros(p)
-            ei[i] = step
-            ej[j] = step
-            if i == j:
-                hess[i, i] = (fun(x + ei) - 2 * f0 + fun(x - ei)) / step**2
-            else:
-                hess[i, j] = hess[j, i] = (fun(x + ei + ej) - fun(x + ei - ej) - fun(x - ei + ej)
-                                           + fun(x - ei - ej)) / (4 * step**2)
-    return hess
 
 
 def _fisher_scoring(problem: Problem, x0, max_iter=60):

@@ -8,9 +8,8 @@ complex velocity series ``z = u + i v`` (m/s) the proper complex Gaussian, for a
 
 with ``Sigma_ij = R((i - j) dt)`` summed over the family's components, ``R(tau) = E[z(t + tau) conj z(t)]``,
 ``R(-tau) = conj R(tau)``. A component that follows the local inertial frequency (``comp.modulated``) is
-``diag(w) T diag(w)^H`` with the window's unit-modulus modulation ``w``. As in
-:func:`~driftspec.analysis.spectral.likelihood.exact_negloglik` (the dense reference this module
-replaces, with the same value), a relative nugget ``1e-10 R(0)`` is added to the diagonal.
+``diag(w) T diag(w)^H`` with the window's unit-modulus modulation ``w``. As in the dense factorisation this
+module replaced (same value), a relative nugget ``1e-10 R(0)`` is added to the diagonal.
 
 Complete windows without a modulated component (the fast path)
 ---------------------------------------------------------------
@@ -104,7 +103,7 @@ from .likelihood import PreparedWindow
 
 __all__ = ["exact_negloglik", "exact_negloglik_grad", "exact_observed_information"]
 
-#: relative nugget on the diagonal (the same as the dense reference in ``likelihood.exact_negloglik``)
+#: relative nugget on the diagonal (keeps very smooth models numerically positive definite)
 NUGGET = 1e-10
 
 
@@ -339,8 +338,8 @@ def _dense_path(family, theta, prep, context, gradient):
 def exact_negloglik(family: ModelFamily, theta, prep: PreparedWindow, context: FitContext) -> float:
     """Negative exact Gaussian log-likelihood of a window's valid samples.
 
-    Same value as :func:`driftspec.analysis.spectral.likelihood.exact_negloglik` (the dense reference), in
-    O(N^2) for complete windows without a latitude-following component.
+    The same value as a dense Cholesky factorisation, in O(N^2) for complete windows without a
+    latitude-following component.
 
     Parameters
     ----------

@@ -19,8 +19,8 @@ log-likelihood over the fitted band ``K`` is::
 Its gradient uses ``dE/dtheta``, which is the same FFT applied to ``c dR/dtheta``: all derivatives come
 from one batched FFT.
 
-Standard Whittle uses the continuous spectral density ``S(f_k)`` in place of ``E[I_k]``. The exact
-likelihood is the Gaussian density of the valid samples with the Toeplitz covariance (Cholesky).
+Standard Whittle uses the continuous spectral density ``S(f_k)`` in place of ``E[I_k]``. The exact Gaussian
+likelihood is in :mod:`driftspec.analysis.spectral.exact`.
 
 References
 ----------
@@ -36,7 +36,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.fft
-import scipy.linalg
 
 from ..models.base import FitContext, ModelFamily
 from ..models.inertial import modulation_sequence
@@ -210,38 +209,3 @@ def negloglik_whittle_form(expected, prep: PreparedWindow, d_expected=None):
         return val
     g = d_expected[:, b] @ ((e - i) / e**2)
     return val, g
-
-
-def exact_negloglik(family: ModelFamily, theta, prep: PreparedWindow, context: FitContext) -> float:
-    """Negative exact Gaussian log-likelihood of the valid samples (complex proper, or real)."""
-    idx = np.flatnonzero(prep.valid)
-    x = prep.z[idx]
-    theta = np.asarray(theta, float)
-    full = prep.valid.all()
-    cov = None
-    for comp, sl in family.components():
-        r = comp.autocovariance(theta[sl], prep.lags_days, context)
-        if prep.real_valued:
-            r = r.real
-        block = scipy.linalg.toeplitz(r, np.conj(r))  # Sigma_ij = R(i - j), R(-tau) = conj R(tau)
-        if not full:
-            block = block[np.ix_(idx, idx)]
-        if comp.modulated:
-            w = prep.modulation[idx]
-            block = block * np.outer(w, np.conj(w))
-        cov = block if cov is None else cov + block
-    if prep.real_valued:
-        cov = cov.real
-        x = x.real
-    # a relative nugget of 1e-10 keeps very smooth models numerically positive definite
-    cov[np.diag_indices_from(cov)] += 1e-10 * np.real(cov[0, 0])
-    try:
-        chol = scipy.linalg.cho_factor(cov, lower=True, check_finite=False)
-    except np.linalg.LinAlgError:
-        return np.inf
-    logdet = 2 * np.sum(np.log(np.abs(np.diag(chol[0]))))
-    quad = np.real(np.vdot(x, scipy.linalg.cho_solve(chol, x, check_finite=False)))
-    m = idx.size
-    if prep.real_valued:
-        return 0.5 * (m * np.log(2 * np.pi) + logdet + quad)
-    return float(m * np.log(np.pi) + logdet + quad)
