@@ -1,0 +1,994 @@
+"""Pooled (composite-likelihood) fits: one model fitted to every window of a region at once.
+
+The likelihood
+--------------
+The debiased Whittle negative log-likelihood of a window is ``L_w = sum_k log E_wk + I_wk / E_wk`` over its fitted
+band (:mod:`driftspec.analysis.spectral.likelihood`). A region's windows are fitted together by minimising the
+composite likelihood ``L = sum_w L_w``: every window keeps its own periodogram, band, observation model and
+latitude, resolved from the :class:`~driftspec.analysis.fitting.spec.FitSpec` exactly as
+:func:`~driftspec.analysis.fitting.core.fit_window` resolves them. Its parameters are
+
+* **shared** (one value for the region): the shape of the spectrum -- Matérn slope ``matern_alpha`` and damping
+  ``matern_damping``, inertial damping ``inertial_damping`` and the inertial frequency *through its latitude
+  dependence*: the shared parameter is ``inertial_frequency_offset = f0 - f_local`` (cpd, signed like every
+  frequency, positive = counterclockwise) and window ``w`` oscillates at ``f_local(lat_w) + offset``. With the
+  latitude-following family (``inertial_frequency="follow-latitude"``) the frequency is not a parameter at all;
+* **nuisance** (one value per window, by default): the amplitudes -- ``matern_variance``, ``inertial_variance``
+  and ``position_noise``. ``share="all"`` shares those too. A parameter held fixed in some windows only (the
+  position noise with ``position_noise="input"``) is always per window.
+
+The optimiser
+-------------
+Levenberg-Marquardt-damped Fisher scoring, as for one window (:mod:`driftspec.analysis.fitting.estimators`), on
+all parameters at once. Each window's gradient and Fisher information ``F_w = sum_k (dlog E_wk)(dlog E_wk)^T``
+come from one :func:`~driftspec.analysis.spectral.likelihood.expected_in_band` call; a window's information
+touches only the shared parameters and its own nuisance parameters, so the pooled information is
+*block-arrowhead*::
+
+    [ sum_w A_w   B_1  B_2 ... ]         A_w: shared x shared, B_w: shared x nuisance of w,
+    [ B_1^T       C_1          ]         C_w: nuisance x nuisance of w
+    [ B_2^T            C_2     ]
+    [ ...                  ... ]
+
+and each (damped) step is solved through the Schur complement ``S = sum_w (A_w - B_w C_w^-1 B_w^T)`` with one
+batched small solve per window: ``O(n_windows)`` work, so one iteration costs one likelihood evaluation of every
+window. ``S`` at the optimum is the information on the shared parameters with the nuisance parameters profiled
+out.
+
+Uncertainty
+-----------
+Windows from one drifter are dependent (they overlap in time, and a drifter samples one water mass), so the
+inverse information ``S^-1`` is not the variance. The estimate solves the composite score equation, and its
+variance is the sandwich ``S^-1 J S^-1`` with ``J`` the variance of the composite score (Godambe information;
+C. Varin, N. Reid, D. Firth, "An overview of composite likelihood methods", Statistica Sinica 21, 5-42, 2011,
+section 2.3 and section 5 on estimating ``J`` from independent clusters). ``J`` is estimated by summing the
+windows' efficient scores ``u_w = g_w,shared - B_w C_w^-1 g_w,nuisance`` within each drifter (cluster) ``c``
+and taking ``J = C/(C-1) sum_c U_c U_c^T`` (``C`` clusters; the factor is the usual small-sample correction).
+That needs enough clusters: below :data:`MIN_CLUSTERS` drifters the model-based ``J`` below is used instead
+(``stderr_method`` says which).
+
+Model-based score covariance of overlapping windows: with data tapers ``h`` of unit sum of squares (zero on
+missing samples), the periodogram ordinates of two windows ``w, w'`` of the same drifter have covariance
+``|sum_t h_w(t) h_w'(t) exp(2 pi i (k - k') t / N)|^2 S_k S_k'`` (Isserlis' theorem for a proper complex
+Gaussian process with a spectrum smooth on the scale ``1/N``); summed against smooth score weights, Parseval's
+identity gives ``Cov(u_w, u_w') = rho_ww' Dt_w Dt_w'^T`` with ``rho_ww' = N sum_t h_w(t)^2 h_w'(t)^2`` and
+``Dt_w`` the efficient score weights (``dlog E`` with the nuisance directions projected out). For ``w = w'``
+this is the familiar ``N sum h^4`` inflation of a tapered or gappy window; for two boxcar windows overlapping by a
+fraction ``o`` it is ``o``.
+
+Heterogeneity check
+-------------------
+Do the drifters share the shared parameters? Under the alternative each drifter ``c`` has its own shared values
+``theta + delta_c``; the score test of ``delta = 0`` uses the drifters' efficient scores ``u_c`` at the pooled
+estimate. To first order ``u = Q v`` with ``v`` the scores at the truth (independent between drifters, covariance
+``J_c`` from the model-based formula above, overlaps included) and ``Q = I - D M (M^T D M)^-1 M^T`` the
+projection that estimating ``theta`` applies (``D`` = block-diagonal of the drifters' information, ``M`` stacked
+identities), so ``T = u^T (Q J Q^T)^+ u`` is chi-squared with ``(C - 1) p`` degrees of freedom under the null
+(C. R. Rao, "Large sample tests of statistical hypotheses concerning several parameters with applications to
+problems of estimation", Proc. Cambridge Philos. Soc. 44, 50-57, 1948, doi:10.1017/S0305004100023987; with
+per-window estimates it is the score form of Cochran's homogeneity statistic ``sum_c (theta_c - theta)^T I_c
+(theta_c - theta)``). With a single drifter the windows are the groups. ``T``, its degrees of freedom and the
+p-value are reported beside the estimate.
+
+The debiased Whittle likelihood: "The debiased Whittle likelihood", Biometrika 106(2), 251-266 (2019),
+doi:10.1093/biomet/asy071.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+from collections.abc import Iterable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import scipy.stats
+import xarray as xr
+
+from ..conventions import SECONDS_PER_DAY
+from ..fitting.core import MIN_VALID_SAMPLES
+from ..fitting.estimators import Problem
+from ..fitting.spec import FitSpec
+from ..models import FitContext
+from ..spectral.likelihood import expected_in_band, prepare_window
+
+#: amplitudes: per window by default (``share="shape"``)
+NUISANCE = ("matern_variance", "inertial_variance", "position_noise")
+SHARE_MODES = ("shape", "all")
+OFFSET = "inertial_frequency_offset"
+#: fewest drifters for the cluster-robust (empirical) score covariance; below, the model-based one
+MIN_CLUSTERS = 10
+
+
+def _canonical(name: str) -> str:
+    return OFFSET if name in ("inertial_frequency", OFFSET) else name
+
+
+def _default_model(spec: FitSpec):
+    """The candidate pooled when none is named: the first explicit one, or the richest automatic candidate."""
+    models = spec.models
+    if isinstance(models, str):  # "auto": a set of candidates, the last the richest
+        return tuple(getattr(spec, "candidate_models", ("matern+inertial",)))[-1]
+    return models[0]
+
+
+def _family(spec: FitSpec, model, follow, cache: dict):
+    """``spec.family(model)``, with the inertial part following the latitude where the window's plan says so."""
+    if follow not in cache:
+        cache[follow] = spec.family(model) if follow is None else spec.family(model, follow)
+    return cache[follow]
+
+
+# ---------------------------------------------------------------------------------------------- preparation
+@dataclass
+class PooledWindow:
+    """One window prepared for a pooled fit: its :class:`~driftspec.analysis.fitting.estimators.Problem` (prepared
+    periodogram, band, observation model, latitude, fixed parameters, bounds, heuristic start) and its identity."""
+
+    problem: Problem
+    track_id: str
+    start: pd.Timestamp | None
+    lat: float
+    lon: float
+
+
+def prepare_pooled_window(window, spec: FitSpec, model=None, families: dict | None = None) -> PooledWindow | str:
+    """Resolve ``spec`` for ``window`` exactly as :func:`~driftspec.analysis.fitting.core.fit_window` does and
+    prepare its likelihood; returns a :class:`PooledWindow`, or a one-line reason why the window cannot be fitted.
+    ``families`` caches the model families between windows."""
+    model = _default_model(spec) if model is None else model
+    fix_days = window.fix_interval_s / SECONDS_PER_DAY if window.fix_interval_s else None
+    plan = spec.resolve(window.dt_seconds / SECONDS_PER_DAY, window.latitude, fix_days, window.position_error_m)
+    family = _family(spec, model, getattr(plan, "follow_latitude", None), {} if families is None else families)
+    z = np.asarray(window.z)
+    lat_series = plan.latitude_series
+    if lat_series is None and family.modulated and plan.latitude is not None:
+        lat_series = np.full(z.size, plan.latitude)
+    context = FitContext(dt_days=plan.dt_days, latitude=plan.latitude,
+                         inertial_frequency_cpd=plan.inertial_frequency_cpd, latitude_series=lat_series)
+    n_valid = int(np.isfinite(z).sum())
+    if n_valid < MIN_VALID_SAMPLES:
+        return f"{n_valid} valid samples (need {MIN_VALID_SAMPLES})"
+    if family.modulated and lat_series is None:
+        return "latitude-following inertial model needs latitude"
+    fixed = {k: v for k, v in spec.fixed if k in family.names}
+    if plan.position_noise is not None and "position_noise" in family.names:
+        fixed["position_noise"] = plan.position_noise
+    try:
+        prep = prepare_window(z, plan.dt_days, taper=spec.taper, max_freq=plan.max_freq, exclude=spec.exclude,
+                              modulated=family.modulated, latitude_series=lat_series)
+    except ValueError as exc:
+        return str(exc)
+    if prep.band.sum() < max(2 * (len(family.names) - len(fixed)) + 2, 8):
+        return f"{int(prep.band.sum())} frequencies in the fitted band"
+    theta0 = family.initial_guess(prep.freq_cpd[prep.band], prep.periodogram[prep.band], context)
+    problem = Problem.build(family, prep, context, theta0, fixed)
+    start = getattr(window, "start", None)
+    return PooledWindow(problem, str(window.track_id), start, float(window.lat), float(window.lon))
+
+
+# ---------------------------------------------------------------------------------------------- result
+@dataclass
+class PooledResult:
+    """A pooled fit of a region's windows.
+
+    Attributes
+    ----------
+    model, share : str
+    params, stderr : dict
+        Shared parameters in natural units (``inertial_frequency_offset`` in cpd; see ``units``) and their
+        standard errors (``stderr_method``: ``cluster`` sandwich or ``model``-based, see the module docstring).
+    units : dict
+    covariance : ndarray
+        Covariance of the shared parameters (natural units, order of ``params``).
+    loglik : float
+        Maximised composite log-likelihood (sum over windows).
+    n_windows, n_tracks, n_skipped : int
+        Windows fitted, drifters (clusters) among them, windows that could not be prepared.
+    heterogeneity_statistic, heterogeneity_df, heterogeneity_pvalue : float
+        Score test that the groups share the shared parameters (chi-squared); NaN with one group.
+    heterogeneity_groups : str
+        ``"tracks"`` (drifters) or ``"windows"`` (a single drifter's windows).
+    status, message : str
+        ``ok``, ``at_bound``, ``no_convergence``, ``too_few_windows`` or ``failed``.
+    windows : pandas.DataFrame
+        One row per fitted window: identity, position, its nuisance parameters (natural units) and ``loglik``.
+    n_iterations, n_evaluations : int
+        Scoring iterations, window-likelihood evaluations.
+    """
+
+    model: str
+    share: str
+    params: dict
+    stderr: dict
+    units: dict
+    covariance: np.ndarray | None = field(default=None, repr=False)
+    loglik: float = np.nan
+    n_windows: int = 0
+    n_tracks: int = 0
+    n_skipped: int = 0
+    stderr_method: str = ""
+    heterogeneity_statistic: float = np.nan
+    heterogeneity_df: float = np.nan
+    heterogeneity_pvalue: float = np.nan
+    heterogeneity_groups: str = ""
+    status: str = "failed"
+    message: str = ""
+    windows: pd.DataFrame = field(default_factory=pd.DataFrame, repr=False)
+    n_iterations: int = 0
+    n_evaluations: int = 0
+
+    @property
+    def ok(self) -> bool:
+        return self.status == "ok"
+
+    def to_row(self) -> dict:
+        """A flat dict: ``P``, ``P_se`` for each shared parameter, counts, the heterogeneity check, status."""
+        row = {"model": self.model, "share": self.share, "status": self.status, "message": self.message,
+               "n_windows": self.n_windows, "n_tracks": self.n_tracks, "loglik": self.loglik,
+               "stderr_method": self.stderr_method, "heterogeneity_statistic": self.heterogeneity_statistic,
+               "heterogeneity_df": self.heterogeneity_df, "heterogeneity_pvalue": self.heterogeneity_pvalue}
+        for k, v in self.params.items():
+            row[k] = v
+            row[k + "_se"] = self.stderr.get(k, np.nan)
+        return row
+
+
+# ---------------------------------------------------------------------------------------------- the pool
+class _Pool:
+    """Windows, the split of their parameters into shared and nuisance coordinates, and one sweep of evaluations.
+
+    Parameters are kept in one global order of *canonical* names: the inertial frequency of a constant-frequency
+    window (``inertial_frequency``, shifted by its local inertial frequency) and the offset of a latitude-following
+    one (``inertial_frequency_offset``) are the same shared coordinate, the offset from the local inertial frequency.
+    """
+
+    def __init__(self, items: list[PooledWindow], share: str):
+        self.items = items
+        canon = [[_canonical(n) for n in it.problem.family.names] for it in items]
+        names = canon[0]
+        if any(sorted(c) != sorted(names) for c in canon):
+            raise ValueError("the windows' models have different parameters: they cannot be pooled")
+        self.names = names
+        self.perm = np.array([[c.index(n) for n in names] for c in canon], int)  # global -> family index
+        free = np.array([it.problem.free[pm] for it, pm in zip(items, self.perm)])  # (W, K) global order
+        always, never = free.all(axis=0), ~free.any(axis=0)
+        self.shared = [k for k, n in enumerate(names) if always[k] and (share == "all" or n not in NUISANCE)]
+        self.nuis = [k for k in range(len(names)) if k not in self.shared and not never[k]]
+        self.fixed_a = ~free[:, self.nuis]  # (W, na): nuisance held fixed in a window
+        fam0 = items[0].problem.family
+        self.scales = [fam0.parameters[self.perm[0][k]].scale for k in range(len(names))]
+        self.units = [fam0.parameters[self.perm[0][k]].unit for k in range(len(names))]
+        # a constant inertial frequency is shared as its offset from each window's local inertial frequency
+        self.shift = np.zeros((len(items), len(self.shared)))
+        for w, it in enumerate(items):
+            fam_names = it.problem.family.names
+            for j, k in enumerate(self.shared):
+                if fam_names[self.perm[w][k]] == "inertial_frequency":
+                    fc = it.problem.context.inertial_frequency_cpd
+                    self.shift[w, j] = fc if fc is not None and np.isfinite(fc) else 0.0
+        self.shared_names = [names[k] for k in self.shared]
+        lo = np.array([it.problem.x_lo[pm] for it, pm in zip(items, self.perm)])
+        hi = np.array([it.problem.x_hi[pm] for it, pm in zip(items, self.perm)])
+        self.s_lo = (lo[:, self.shared] - self.shift).max(axis=0)
+        self.s_hi = (hi[:, self.shared] - self.shift).min(axis=0)
+        if np.any(self.s_lo >= self.s_hi):
+            bad = [self.shared_names[j] for j in np.flatnonzero(self.s_lo >= self.s_hi)]
+            raise ValueError(f"the windows' bounds for {', '.join(bad)} do not overlap: they cannot share it")
+        self.a_lo, self.a_hi = lo[:, self.nuis], hi[:, self.nuis]
+        x0 = np.array([it.problem.x_fixed[pm] for it, pm in zip(items, self.perm)])
+        self.x_fixed = x0
+        span = self.s_hi - self.s_lo
+        self.s0 = np.clip(np.median(x0[:, self.shared] - self.shift, axis=0), self.s_lo + 1e-6 * span,
+                          self.s_hi - 1e-6 * span)
+        self.a0 = x0[:, self.nuis]
+        self.n_evaluations = 0
+
+    @property
+    def n_windows(self) -> int:
+        return len(self.items)
+
+    def full_x(self, w, s, a_w) -> np.ndarray:
+        """Window ``w``'s coordinates in its family's order."""
+        xg = self.x_fixed[w].copy()
+        xg[self.shared] = s + self.shift[w]
+        if self.nuis:
+            keep = ~self.fixed_a[w]
+            xg[np.asarray(self.nuis)[keep]] = a_w[keep]
+        x = np.empty_like(xg)
+        x[self.perm[w]] = xg
+        return x
+
+    def evaluate(self, s, a, keep_dlog=False):
+        """One sweep: the composite objective and its block-arrowhead pieces (``values`` per window as well)."""
+        W, ns, na = self.n_windows, len(self.shared), len(self.nuis)
+        gs, ga = np.zeros((W, ns)), np.zeros((W, na))
+        A, B, C = np.zeros((W, ns, ns)), np.zeros((W, ns, na)), np.zeros((W, na, na))
+        values = np.zeros(W)
+        dlogs = [] if keep_dlog else None
+        order = np.array(self.shared + self.nuis, int)
+        for w, it in enumerate(self.items):
+            sel = self.perm[w][order]
+            p = it.problem
+            x = self.full_x(w, s, a[w])
+            self.n_evaluations += 1
+            p.n_evaluations += 1
+            theta = p.theta(x[p.free])
+            e, de = expected_in_band(p.family, theta, p.prep, p.context)
+            if not (np.all(e > 0) and np.isfinite(e).all() and np.isfinite(de).all()):
+                return np.inf, None
+            ratio = p.prep.periodogram[p.prep.band_index] / e
+            values[w] = float(np.sum(np.log(e)) + np.sum(ratio))
+            dlog = de[sel] / e
+            if na:
+                dlog[ns:][self.fixed_a[w]] = 0.0
+            g = dlog @ (1.0 - ratio)
+            f = dlog @ dlog.T
+            gs[w], ga[w] = g[:ns], g[ns:]
+            A[w], B[w], C[w] = f[:ns, :ns], f[:ns, ns:], f[ns:, ns:]
+            if keep_dlog:
+                dlogs.append(dlog)
+        return float(values.sum()), {"gs": gs, "ga": ga, "A": A, "B": B, "C": C, "values": values, "dlogs": dlogs}
+
+
+def _solve(st, act_s, act_a, mu):
+    """The damped Fisher-scoring step ``-(F + mu diag F)^-1 g`` on the active coordinates, by the Schur complement
+    over the per-window blocks; returns ``(ds, da, masked pieces)``."""
+    gs = st["gs"].sum(axis=0)
+    A = st["A"].sum(axis=0)
+    B, C, ga = st["B"].copy(), st["C"].copy(), st["ga"].copy()
+    ns, na = A.shape[0], C.shape[1]
+    off_s = ~act_s
+    if off_s.any():
+        A[off_s, :] = 0.0
+        A[:, off_s] = 0.0
+        A[off_s, off_s] = 1.0
+        gs = np.where(off_s, 0.0, gs)
+        B[:, off_s, :] = 0.0
+    if na:
+        off = ~act_a
+        C[off[:, :, None] | off[:, None, :]] = 0.0
+        w_i, m_i = np.nonzero(off)
+        C[w_i, m_i, m_i] = 1.0
+        B[np.broadcast_to(off[:, None, :], B.shape)] = 0.0
+        ga[off] = 0.0
+    a_d = A + mu * np.diag(np.diag(A))
+    if na:
+        c_d = C + mu * (np.einsum("wii->wi", C)[:, :, None] * np.eye(na))
+        x = np.linalg.solve(c_d, np.concatenate([B.transpose(0, 2, 1), ga[:, :, None]], axis=2))
+        xb, xg = x[:, :, :ns], x[:, :, ns]
+        schur = a_d - np.einsum("wsa,wat->st", B, xb)
+        ds = np.linalg.solve(schur, -gs + np.einsum("wsa,wa->s", B, xg))
+        da = -xg - np.einsum("wat,t->wa", xb, ds)
+    else:
+        ds = np.linalg.solve(a_d, -gs)
+        da = np.zeros_like(ga)
+    return ds, da, (gs, A, B, C, ga)
+
+
+def _quadratic(ds, da, masked):
+    """``g.d`` and ``d^T F d`` for a step on the masked (undamped) system."""
+    gs, A, B, C, ga = masked
+    gd = float(gs @ ds + np.sum(ga * da))
+    dfd = float(ds @ A @ ds + 2 * np.einsum("s,wsa,wa->", ds, B, da) + np.einsum("wa,wab,wb->", da, C, da))
+    return gd, dfd
+
+
+def _scoring(pool: _Pool, max_iter: int = 100):
+    """Levenberg-Marquardt-damped Fisher scoring on the block-arrowhead system (the single-window rules of
+    :func:`driftspec.analysis.fitting.estimators._fisher_scoring`: gain-ratio damping, a longest step per
+    coordinate, stop on a small Newton decrement), with tolerances scaled by the number of windows."""
+    W = pool.n_windows
+    s, a = pool.s0.copy(), pool.a0.copy()
+    val, st = pool.evaluate(s, a)
+    if not np.isfinite(val):
+        return s, a, val, None, False, "the start is not a valid parameter set", 0
+    s_cap = np.array([3.0 if pool.scales[k] == "log" else 0.5 * (h - lo)
+                      for k, lo, h in zip(pool.shared, pool.s_lo, pool.s_hi)])
+    a_cap = np.array([[3.0 if pool.scales[k] == "log" else 0.5 * (h - lo) for k, lo, h in zip(pool.nuis, lw, hw)]
+                      for lw, hw in zip(pool.a_lo, pool.a_hi)]).reshape(a.shape)
+    tol = 1e-5 * W
+    mu, nu, flat = 1e-3, 2.0, 0
+    success, message = False, "maximum iterations reached"
+    n_iter = 0
+    for n_iter in range(1, max_iter + 1):  # noqa: B007 - the count is reported
+        gs_tot = st["gs"].sum(axis=0)
+        act_s = ~(((s <= pool.s_lo) & (gs_tot > 0)) | ((s >= pool.s_hi) & (gs_tot < 0)))
+        act_a = ~(pool.fixed_a | ((a <= pool.a_lo) & (st["ga"] > 0)) | ((a >= pool.a_hi) & (st["ga"] < 0)))
+        if not act_s.any() and not act_a.any():
+            success, message = True, "all parameters at bounds"
+            break
+        try:
+            ds0, da0, masked = _solve(st, act_s, act_a, 0.0)
+            decrement = -_quadratic(ds0, da0, masked)[0]
+        except np.linalg.LinAlgError:
+            decrement = np.inf
+        if decrement < tol:
+            success, message = True, "converged (Newton decrement)"
+            break
+        improved = False
+        while mu < 1e8:
+            try:
+                ds, da, masked = _solve(st, act_s, act_a, mu)
+            except np.linalg.LinAlgError:
+                mu *= 10
+                continue
+            longest = max(float(np.max(np.abs(ds) / s_cap, initial=0.0)),
+                          float(np.max(np.abs(da) / a_cap, initial=0.0)))
+            if longest > 1.0:
+                ds, da = ds / longest, da / longest
+            s_new = np.clip(s + ds, pool.s_lo, pool.s_hi)
+            a_new = np.clip(a + da, pool.a_lo, pool.a_hi)
+            val_new, st_new = pool.evaluate(s_new, a_new)
+            if val_new < val:
+                improved = True
+                small = val - val_new < 1e-10 * max(1.0, abs(val))
+                flat = flat + 1 if val - val_new < 1e-7 * W else 0
+                gd, dfd = _quadratic(s_new - s, a_new - a, masked)
+                predicted = -(gd + 0.5 * dfd)
+                rho = (val - val_new) / predicted if predicted > 0 else 0.0
+                s, a, val, st = s_new, a_new, val_new, st_new
+                mu = max(mu * max(1 / 3, 1 - (2 * rho - 1) ** 3), 1e-7)
+                nu = 2.0
+                break
+            mu *= nu
+            nu *= 2
+        if not improved:
+            success = decrement < 10 * tol
+            message = "no further decrease" if success else "line search failed"
+            break
+        if (small and decrement < tol) or flat >= 3:
+            success, message = True, "converged (objective change)"
+            break
+    return s, a, val, st, success, message, n_iter
+
+
+# ---------------------------------------------------------------------------------------------- covariances
+def _overlap_weight(pw: PooledWindow, qw: PooledWindow) -> float:
+    """``rho = N sum_t h(t)^2 h'(t)^2`` over the common samples of two windows of one drifter (module docstring)."""
+    hp, hq = pw.problem.prep.taper, qw.problem.prep.taper
+    if pw is qw:
+        return float(pw.problem.prep.variance_inflation)
+    if pw.start is None or qw.start is None:
+        return 0.0
+    dt_ns = pw.problem.prep.dt_days * SECONDS_PER_DAY * 1e9
+    if abs(qw.problem.prep.dt_days - pw.problem.prep.dt_days) > 1e-9 * pw.problem.prep.dt_days:
+        return 0.0
+    d = int(round((pd.Timestamp(qw.start) - pd.Timestamp(pw.start)).value / dt_ns))
+    if d < 0:
+        return _overlap_weight(qw, pw)
+    if d >= hp.size:
+        return 0.0
+    m = min(hp.size - d, hq.size)
+    return float(np.sqrt(hp.size * hq.size) * np.sum(hp[d:d + m] ** 2 * hq[:m] ** 2))
+
+
+def _efficient(st, act_s, act_a):
+    """Per window: efficient scores ``u_w`` (W, ns), efficient score weights ``Dt_w`` (ns, nb) and informations
+    ``S_w`` (W, ns, ns), the nuisance coordinates at bounds or fixed treated as known."""
+    W = st["gs"].shape[0]
+    ns = st["gs"].shape[1]
+    u = st["gs"].copy()
+    s_w = st["A"].copy()
+    dt = []
+    for w in range(W):
+        dlog = st["dlogs"][w]
+        d_s = dlog[:ns]
+        keep = act_a[w]
+        if keep.any():
+            bw = st["B"][w][:, keep]
+            cw = st["C"][w][np.ix_(keep, keep)]
+            k = np.linalg.solve(cw, bw.T).T  # B C^-1
+            u[w] = u[w] - k @ st["ga"][w][keep]
+            s_w[w] = s_w[w] - k @ bw.T
+            d_s = d_s - k @ dlog[ns:][keep]
+        dt.append(d_s[act_s])
+    return u[:, act_s], dt, s_w[:, act_s][:, :, act_s]
+
+
+def _pair_covariance(items, dt, w, v, rho):
+    """Model-based ``Cov(u_w, u_v) = rho Dt_w Dt_v^T`` (same frequency grid), or rho times the mean information."""
+    bw, bv = items[w].problem.prep.band_index, items[v].problem.prep.band_index
+    if bw.size == bv.size and np.array_equal(bw, bv):
+        return rho * (dt[w] @ dt[v].T)
+    return rho * 0.5 * (dt[w] @ dt[w].T + dt[v] @ dt[v].T)
+
+
+def _group_covariances(items, dt, groups, n_groups, p):
+    """Model-based covariance of the group score sums: ``(n_groups p) x (n_groups p)``, overlaps within a drifter
+    included (windows of different drifters are independent)."""
+    J = np.zeros((n_groups * p, n_groups * p))
+    by_track = {}
+    for w, it in enumerate(items):
+        by_track.setdefault(it.track_id, []).append(w)
+    for ws in by_track.values():
+        ws = sorted(ws, key=lambda i: (pd.Timestamp(items[i].start).value if items[i].start is not None else i))
+        for i, w in enumerate(ws):
+            for v in ws[i:]:
+                rho = _overlap_weight(items[w], items[v])
+                if rho == 0.0 and v != w:
+                    break  # later windows start later still
+                c = _pair_covariance(items, dt, w, v, rho)
+                gw, gv = groups[w], groups[v]
+                J[gw * p:(gw + 1) * p, gv * p:(gv + 1) * p] += c
+                if v != w:
+                    J[gv * p:(gv + 1) * p, gw * p:(gw + 1) * p] += c.T
+    return J
+
+
+def heterogeneity_test(u_groups, info_groups, j_groups):
+    """Score test that groups share parameters (module docstring): ``(T, df, p)``.
+
+    ``u_groups`` (G, p) efficient scores per group at the pooled estimate, ``info_groups`` (G, p, p) their
+    information (sensitivity), ``j_groups`` (Gp, Gp) the covariance of the scores at the truth.
+    """
+    n_g, p = u_groups.shape
+    if n_g < 2 or p == 0:
+        return np.nan, np.nan, np.nan
+    D = np.zeros((n_g * p, n_g * p))
+    for g in range(n_g):
+        D[g * p:(g + 1) * p, g * p:(g + 1) * p] = info_groups[g]
+    M = np.tile(np.eye(p), (n_g, 1))
+    Q = np.eye(n_g * p) - D @ M @ np.linalg.solve(M.T @ D @ M, M.T)
+    V = Q @ j_groups @ Q.T
+    V = 0.5 * (V + V.T)
+    lam, vec = np.linalg.eigh(V)
+    keep = lam > 1e-10 * lam.max()
+    z = vec[:, keep].T @ u_groups.ravel()
+    stat = float(np.sum(z**2 / lam[keep]))
+    df = int(keep.sum())
+    return stat, float(df), float(scipy.stats.chi2.sf(stat, df))
+
+
+# ---------------------------------------------------------------------------------------------- the fit
+def pool_fit(windows: Iterable, spec: FitSpec | None = None, *, model=None, share: str = "shape",
+             min_windows: int = 1) -> PooledResult:
+    """Fit one model to every window at once (the composite debiased Whittle likelihood; module docstring).
+
+    Parameters
+    ----------
+    windows : iterable of Window
+        :class:`~driftspec.analysis.tracks.windows.Window` objects (``z`` in m/s, NaN where missing; ``track_id``
+        names the drifter, the cluster of the standard errors; ``start`` places overlapping windows in time).
+    spec : FitSpec, optional
+        Band rule, observation model, latitude handling, position noise, taper, exclusions, fixed parameters
+        (default ``FitSpec()``); its estimator must be ``"debiased"``.
+    model : str, optional
+        The candidate to pool (default: the first of ``spec.models``).
+    share : {"shape", "all"}
+        Share the spectral shape with per-window amplitudes (default), or share every parameter.
+    min_windows : int
+        Fewest fittable windows for a fit (fewer: status ``too_few_windows``).
+
+    Returns
+    -------
+    PooledResult
+        Shared parameters in natural units with cluster-robust standard errors, the heterogeneity check, and the
+        per-window nuisance parameters. Numerical failures are a status, not an exception.
+
+    Raises
+    ------
+    ValueError
+        For invalid options (one line).
+    """
+    spec = FitSpec() if spec is None else spec
+    if share not in SHARE_MODES:
+        raise ValueError(f"share must be one of {', '.join(SHARE_MODES)}; got {share!r}")
+    if spec.estimator != "debiased":
+        raise ValueError(f"pooled fits use the debiased Whittle likelihood; got estimator {spec.estimator!r}")
+    if int(min_windows) != min_windows or min_windows < 1:
+        raise ValueError(f"min_windows must be a whole number >= 1; got {min_windows!r}")
+    model = _default_model(spec) if model is None else model
+    name = spec.model_name(model)
+    families = {}
+    items, skipped = [], 0
+    for w in windows:
+        pw = prepare_pooled_window(w, spec, model, families)
+        if isinstance(pw, str):
+            skipped += 1
+        else:
+            items.append(pw)
+    empty = PooledResult(name, share, {}, {}, {}, n_windows=len(items), n_skipped=skipped,
+                         n_tracks=len({it.track_id for it in items}))
+    if len(items) < min_windows or not items:
+        empty.status, empty.message = "too_few_windows", f"{len(items)} fittable windows (need {min_windows})"
+        return empty
+    try:
+        pool = _Pool(items, share)
+    except ValueError as exc:
+        empty.message = str(exc)
+        return empty
+    with np.errstate(all="ignore"):
+        try:
+            s, a, val, st, success, message, n_iter = _scoring(pool)
+        except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:
+            empty.message = f"{type(exc).__name__}: {exc}"
+            return empty
+    if st is None:
+        empty.message = message
+        return empty
+    with np.errstate(all="ignore"):
+        return _finish(pool, s, a, val, success, message, n_iter, name, share, skipped)
+
+
+def _finish(pool: _Pool, s, a, val, success, message, n_iter, name, share, skipped) -> PooledResult:
+    items = pool.items
+    W, ns = pool.n_windows, len(pool.shared)
+    _, st = pool.evaluate(s, a, keep_dlog=True)
+    span = pool.s_hi - pool.s_lo
+    at_s = (s - pool.s_lo < 1e-5 * span) | (pool.s_hi - s < 1e-5 * span)
+    a_span = pool.a_hi - pool.a_lo
+    at_a = (a - pool.a_lo < 1e-5 * a_span) | (pool.a_hi - a < 1e-5 * a_span)
+    act_s, act_a = ~at_s, ~(pool.fixed_a | at_a)
+    p = int(act_s.sum())
+    u, dt, s_w = _efficient(st, act_s, act_a)
+    info = s_w.sum(axis=0)
+    tracks = [it.track_id for it in items]
+    codes, track_names = pd.factorize(pd.Index(tracks))
+    n_tracks = len(track_names)
+    cov = np.full((p, p), np.nan)
+    stderr_method = ""
+    j_model_tracks = _group_covariances(items, dt, codes, n_tracks, p) if p else np.zeros((0, 0))
+    try:
+        info_inv = np.linalg.inv(info)
+        if n_tracks >= MIN_CLUSTERS:
+            u_c = np.zeros((n_tracks, p))
+            np.add.at(u_c, codes, u)
+            j = n_tracks / (n_tracks - 1) * (u_c.T @ u_c)
+            stderr_method = "cluster"
+        else:
+            j = sum(j_model_tracks[c * p:(c + 1) * p, c * p:(c + 1) * p] for c in range(n_tracks))
+            stderr_method = "model"
+        cov = info_inv @ j @ info_inv
+    except np.linalg.LinAlgError:
+        pass
+    # heterogeneity: drifters as groups; a single drifter's windows otherwise
+    het = (np.nan, np.nan, np.nan)
+    groups = ""
+    try:
+        if n_tracks >= 2 and p:
+            u_g = np.zeros((n_tracks, p))
+            np.add.at(u_g, codes, u)
+            i_g = np.zeros((n_tracks, p, p))
+            np.add.at(i_g, codes, s_w)
+            het, groups = heterogeneity_test(u_g, i_g, j_model_tracks), "tracks"
+        elif W >= 2 and p:
+            het = heterogeneity_test(u, s_w, _group_covariances(items, dt, np.arange(W), W, p))
+            groups = "windows"
+    except np.linalg.LinAlgError:
+        pass
+    # natural units: values and the delta method for the log-scaled parameters
+    shared_nat = np.array([s[j] if pool.scales[k] == "linear" else np.exp(s[j]) for j, k in enumerate(pool.shared)])
+    jac = np.array([1.0 if pool.scales[k] == "linear" else shared_nat[j] for j, k in enumerate(pool.shared)])
+    se = np.full(ns, np.nan)
+    cov_full = np.full((ns, ns), np.nan)
+    if p:
+        ja = jac[act_s]
+        cov_nat = cov * np.outer(ja, ja)
+        cov_full[np.ix_(act_s, act_s)] = cov_nat
+        se[act_s] = np.sqrt(np.clip(np.diag(cov_nat), 0, None))
+    units = {n: pool.units[k] for n, k in zip(pool.shared_names, pool.shared)}
+    # per-window table
+    rows = []
+    for w, it in enumerate(items):
+        x = pool.full_x(w, s, a[w])
+        theta = it.problem.theta(x[it.problem.free])[pool.perm[w]]  # global order
+        fc = it.problem.context.inertial_frequency_cpd
+        row = {"track_id": it.track_id, "window_start": it.start, "lat": it.lat, "lon": it.lon,
+               "loglik": -float(st["values"][w])}
+        row.update({pool.names[k]: float(theta[k]) for k in pool.nuis})
+        if OFFSET in pool.names and fc is not None:
+            row["inertial_frequency"] = float(fc + theta[pool.names.index(OFFSET)]) if \
+                it.problem.family.names[pool.perm[w][pool.names.index(OFFSET)]] == OFFSET else \
+                float(theta[pool.names.index(OFFSET)])
+        rows.append(row)
+    if not success:
+        status = "no_convergence"
+    elif at_s.any():
+        status = "at_bound"
+        message = "at bound: " + ", ".join(n for n, b in zip(pool.shared_names, at_s) if b)
+    else:
+        status, message = "ok", "" if message.startswith("converged") or message == "no further decrease" else message
+    if status == "ok" and not np.all(np.isfinite(se)):
+        message = "standard errors unavailable (singular information)"
+    return PooledResult(
+        model=name, share=share, params=dict(zip(pool.shared_names, map(float, shared_nat))),
+        stderr=dict(zip(pool.shared_names, map(float, se))), units=units, covariance=cov_full, loglik=-float(val),
+        n_windows=W, n_tracks=n_tracks, n_skipped=skipped, stderr_method=stderr_method,
+        heterogeneity_statistic=het[0], heterogeneity_df=het[1], heterogeneity_pvalue=het[2],
+        heterogeneity_groups=groups, status=status, message=message, windows=pd.DataFrame(rows),
+        n_iterations=n_iter, n_evaluations=pool.n_evaluations)
+
+
+# ---------------------------------------------------------------------------------------------- maps
+#: pooled status codes in the map (CF flag_values / flag_meanings)
+STATUS_FLAGS = ("ok", "at_bound", "no_convergence", "too_few_windows", "failed")
+
+
+def _grid_edges(region, bin_deg):
+    """Bin edges (degrees): the globe, or the region snapped outwards to whole bins."""
+    if region is None:
+        return np.arange(-90.0, 90.0 + bin_deg / 2, bin_deg), np.arange(-180.0, 180.0 + bin_deg / 2, bin_deg)
+    lon0, lat0, lon1, lat1 = region
+    lat_e = np.arange(np.floor(lat0 / bin_deg) * bin_deg, lat1 + bin_deg - 1e-9, bin_deg)
+    lon_e = np.arange(np.floor(lon0 / bin_deg) * bin_deg, lon1 + bin_deg - 1e-9, bin_deg)
+    return lat_e, lon_e
+
+
+def check_region(region):
+    """``(lon0, lat0, lon1, lat1)`` as floats, or a one-line ``ValueError``."""
+    if region is None:
+        return None
+    try:
+        lon0, lat0, lon1, lat1 = (float(v) for v in region)
+    except (TypeError, ValueError):
+        raise ValueError(f"region must be LON0,LAT0,LON1,LAT1 in degrees; got {region!r}") from None
+    if not (-90 <= lat0 < lat1 <= 90):
+        raise ValueError(f"region needs -90 <= LAT0 < LAT1 <= 90; got {lat0:g}, {lat1:g}")
+    if not (-180 <= lon0 < lon1 <= 360 and lon1 - lon0 <= 360):
+        raise ValueError(f"region needs -180 <= LON0 < LON1 <= 360 (at most 360 apart); got {lon0:g}, {lon1:g}")
+    return lon0, lat0, lon1, lat1
+
+
+def bin_windows(windows: Iterable, bin_deg: float, region=None) -> tuple[dict, np.ndarray, np.ndarray]:
+    """Windows by ``bin_deg`` bin of their mean position: ``({(iy, ix): [Window, ...]}, lat_edges, lon_edges)``;
+    windows outside ``region`` (or the grid) are left out."""
+    lat_e, lon_e = _grid_edges(region, bin_deg)
+    bins = {}
+    for w in windows:
+        lat, lon = float(w.lat), float(w.lon)
+        lon = (lon - lon_e[0]) % 360.0 + lon_e[0]  # into [lon_e[0], lon_e[0] + 360)
+        if not (np.isfinite(lat) and np.isfinite(lon)):
+            continue
+        if region is not None and not (region[1] <= lat < region[3] and region[0] <= lon < region[2]):
+            continue
+        iy = int(np.searchsorted(lat_e, lat, side="right") - 1)
+        ix = int(np.searchsorted(lon_e, lon, side="right") - 1)
+        if 0 <= iy < lat_e.size - 1 and 0 <= ix < lon_e.size - 1:
+            bins.setdefault((iy, ix), []).append(w)
+    return bins, lat_e, lon_e
+
+
+def fit_bin(key, windows, spec: FitSpec, model=None, share: str = "shape", min_windows: int = 2) -> dict:
+    """The map row of one bin: :meth:`PooledResult.to_row` plus the bin's key (a failure is a row with a status)."""
+    try:
+        res = pool_fit(windows, spec, model=model, share=share, min_windows=min_windows)
+        row = res.to_row()
+        row["units"] = res.units
+    except Exception as exc:  # noqa: BLE001 - a failed bin is a row, not a crash
+        row = {"status": "failed", "message": f"{type(exc).__name__}: {exc}", "n_windows": len(windows),
+               "n_tracks": len({w.track_id for w in windows}), "units": {}}
+    row["iy"], row["ix"] = key
+    return row
+
+
+def _run_bins(tasks, work, workers, dask_address, done):
+    """Run ``work(*task)`` for every task serially, on a process pool or on Dask, calling ``done(task, row)`` as each
+    finishes (at most ``2 workers`` tasks in flight)."""
+    if dask_address:
+        from dask.distributed import Client, LocalCluster
+        from dask.distributed import as_completed as dask_completed
+
+        cluster = LocalCluster(n_workers=min(2, os.cpu_count() or 1), threads_per_worker=1, processes=True,
+                               dashboard_address=None) if dask_address == "local" else None
+        client = Client(cluster if cluster is not None else dask_address)
+        try:
+            futures = {}
+            queue = dask_completed()
+            it = iter(tasks)
+            n = max(1, len(client.scheduler_info().get("workers", {})))
+
+            def submit():
+                t = next(it, None)
+                if t is not None:
+                    f = client.submit(work, *t, pure=False)
+                    futures[f.key] = t
+                    queue.add(f)
+
+            for _ in range(2 * n):
+                submit()
+            for f in queue:
+                done(futures.pop(f.key), f.result())
+                submit()
+        finally:
+            client.close()
+            if cluster is not None:
+                cluster.close()
+    elif workers > 1:
+        import multiprocessing
+        from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+
+        ctx = multiprocessing.get_context("forkserver") if "forkserver" in multiprocessing.get_all_start_methods() \
+            else None
+        with ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
+            in_flight = {}
+            for t in [*tasks, None]:
+                if t is not None:
+                    in_flight[pool.submit(work, *t)] = t
+                while in_flight and (t is None or len(in_flight) >= 2 * workers):
+                    finished, _ = wait(in_flight, return_when=FIRST_COMPLETED)
+                    for f in finished:
+                        done(in_flight.pop(f), f.result())
+    else:
+        for t in tasks:
+            done(t, work(*t))
+
+
+def pool_map(windows: Iterable, spec: FitSpec | None = None, *, bin_deg: float = 2.0, region=None, out=None,
+             model=None, share: str = "shape", min_windows: int = 2, workers: int = 1, dask_address=None,
+             resume: bool = False, progress: bool = True, windowing: dict | None = None, source: str = "",
+             command: str = "") -> xr.Dataset:
+    """A pooled fit per ``bin_deg`` x ``bin_deg`` bin: a CF netCDF map like :func:`~.maps.grid_fits`.
+
+    Parameters
+    ----------
+    windows : iterable of Window
+        Every window (binned by its mean position; all windows of a bin are held in memory until it is fitted).
+    spec : FitSpec, optional
+    bin_deg : float
+        Bin size, degrees.
+    region : (lon0, lat0, lon1, lat1), optional
+        Only windows whose mean position is inside; the grid covers the region (default: the globe).
+    out : path, optional
+        NetCDF file, written atomically. Finished bins are kept in ``<out>.partial/`` until the map is written,
+        so ``resume=True`` after an interruption refits only the bins that were in flight.
+    model, share, min_windows
+        As :func:`pool_fit` (``min_windows`` per bin, default 2).
+    workers, dask_address
+        Processes for a local pool (1: serial), or a Dask scheduler address (``"local"``: a ``LocalCluster``).
+    windowing : dict, optional
+        Window and preparation settings, stored with the run (a resume under other settings is refused).
+    source, command : str
+        Provenance written to the ``source`` and ``history`` attributes.
+
+    Returns
+    -------
+    xarray.Dataset
+        For each shared parameter ``P``: ``P`` and ``P_se``; ``n_windows`` (standard name
+        ``number_of_observations``), ``n_tracks``, ``heterogeneity_statistic``, ``heterogeneity_df``,
+        ``heterogeneity_pvalue`` and ``pooled_status`` per bin; ``lat_bnds``/``lon_bnds``.
+    """
+    from tqdm.auto import tqdm
+
+    from ..fitting.batch import run_settings, stored_settings
+
+    spec = FitSpec() if spec is None else spec
+    if not (np.isfinite(bin_deg) and bin_deg > 0):
+        raise ValueError(f"bin size must be positive degrees; got {bin_deg!r}")
+    if share not in SHARE_MODES:
+        raise ValueError(f"share must be one of {', '.join(SHARE_MODES)}; got {share!r}")
+    if spec.estimator != "debiased":
+        raise ValueError(f"pooled fits use the debiased Whittle likelihood; got estimator {spec.estimator!r}")
+    if int(workers) != workers or workers < 1:
+        raise ValueError(f"workers must be a whole number >= 1; got {workers!r}")
+    region = check_region(region)
+    settings = run_settings(spec, {**(windowing or {}), "bin_deg": float(bin_deg), "region": region and list(region),
+                                   "model": None if model is None else spec.model_name(model), "share": share,
+                                   "min_windows": int(min_windows)})
+    parts = None
+    if out is not None:
+        out = Path(out)
+        if not out.parent.is_dir() or not os.access(out.parent, os.W_OK):
+            raise ValueError(f"{out.parent}: not a writable folder")
+        parts = out.with_name(out.name + ".partial")
+        if resume:
+            before = stored_settings(out)
+            if before is not None and json.loads(json.dumps(before)) != json.loads(json.dumps(settings)):
+                raise ValueError(f"cannot resume {out}: it was made with other settings; rerun without --resume, "
+                                 "or with the same settings")
+        elif parts.exists():
+            shutil.rmtree(parts)
+        parts.mkdir(exist_ok=True)
+        (parts / "settings.json").write_text(json.dumps(settings, sort_keys=True))
+    bins, lat_e, lon_e = bin_windows(windows, bin_deg, region)
+    rows = {}
+    if parts is not None and resume:
+        for f in parts.glob("bin-*.json"):
+            row = json.loads(f.read_text())
+            rows[(row["iy"], row["ix"])] = row
+    keys = sorted(k for k in bins if k not in rows)
+    bar = tqdm(total=sum(len(bins[k]) for k in keys), unit="window", disable=not progress, desc="pooling")
+
+    def done(task, row):
+        key = (row["iy"], row["ix"])
+        rows[key] = row
+        if parts is not None:
+            tmp = parts / f"bin-{key[0]:05d}-{key[1]:05d}.json.tmp"
+            tmp.write_text(json.dumps(row, default=float))
+            os.replace(tmp, tmp.with_suffix(""))
+        bar.update(len(task[1]))
+
+    try:
+        _run_bins([(k, bins[k], spec, model, share, min_windows) for k in keys], fit_bin, workers, dask_address,
+                  done)
+    finally:
+        bar.close()
+    ds = _map_dataset(rows, lat_e, lon_e, bin_deg, spec, model, share)
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        ver = version("driftspec")
+    except PackageNotFoundError:
+        ver = "unknown"
+    ds.attrs.update({"history": f"{pd.Timestamp.now('UTC').isoformat()} {command}".strip(), "source": source,
+                     "driftspec_version": ver})
+    if out is not None:
+        tmp = out.with_name(out.name + ".tmp")
+        ds.to_netcdf(tmp)
+        os.replace(tmp, out)
+        shutil.rmtree(parts, ignore_errors=True)
+    return ds
+
+
+def _map_dataset(rows: dict, lat_e, lon_e, bin_deg, spec, model, share) -> xr.Dataset:
+    ny, nx = lat_e.size - 1, lon_e.size - 1
+    lat_c, lon_c = 0.5 * (lat_e[:-1] + lat_e[1:]), 0.5 * (lon_e[:-1] + lon_e[1:])
+    ds = xr.Dataset(coords={
+        "lat": ("lat", lat_c, {"standard_name": "latitude", "units": "degrees_north", "bounds": "lat_bnds",
+                               "axis": "Y"}),
+        "lon": ("lon", lon_c, {"standard_name": "longitude", "units": "degrees_east", "bounds": "lon_bnds",
+                               "axis": "X"}),
+    })
+    ds["lat_bnds"] = (("lat", "nv"), np.stack([lat_e[:-1], lat_e[1:]], axis=1))
+    ds["lon_bnds"] = (("lon", "nv"), np.stack([lon_e[:-1], lon_e[1:]], axis=1))
+
+    def grid(col, fill=np.nan):
+        a = np.full((ny, nx), fill, float)
+        for (iy, ix), row in rows.items():
+            v = row.get(col)
+            a[iy, ix] = np.nan if v is None else float(v)
+        return a
+
+    ds["n_windows"] = (("lat", "lon"), grid("n_windows", 0).astype(np.int32),
+                       {"standard_name": "number_of_observations", "long_name": "windows in the pooled fit",
+                        "units": "1", "cell_methods": "area: sum"})
+    ds["n_tracks"] = (("lat", "lon"), grid("n_tracks", 0).astype(np.int32),
+                      {"long_name": "drifters (clusters) in the pooled fit", "units": "1", "cell_methods": "area: sum"})
+    units, params = {}, []
+    for row in rows.values():
+        for k, u in (row.get("units") or {}).items():
+            units.setdefault(k, u)
+            if k not in params:
+                params.append(k)
+    for p in params:
+        ok = {k: r for k, r in rows.items() if r.get("status") in ("ok", "at_bound")}
+        vals = np.full((ny, nx), np.nan)
+        ses = np.full((ny, nx), np.nan)
+        for (iy, ix), r in ok.items():
+            vals[iy, ix] = r.get(p, np.nan)
+            ses[iy, ix] = r.get(p + "_se", np.nan)
+        ds[p] = (("lat", "lon"), vals, {"long_name": f"pooled estimate of {p} over the windows in the cell",
+                                        "units": units[p], "cell_methods": "area: point",
+                                        "ancillary_variables": f"{p}_se"})
+        ds[p + "_se"] = (("lat", "lon"), ses, {"long_name": f"standard error of the pooled {p} (sandwich, score "
+                                                            "summed within drifters)", "units": units[p],
+                                               "standard_name_modifier": "standard_error"})
+    ds["heterogeneity_statistic"] = (("lat", "lon"), grid("heterogeneity_statistic"),
+                                     {"long_name": "score statistic: do the cell's drifters share the parameters",
+                                      "units": "1"})
+    ds["heterogeneity_df"] = (("lat", "lon"), grid("heterogeneity_df"),
+                              {"long_name": "degrees of freedom of the heterogeneity statistic", "units": "1"})
+    ds["heterogeneity_pvalue"] = (("lat", "lon"), grid("heterogeneity_pvalue"),
+                                  {"long_name": "heterogeneity p-value (chi-squared)", "units": "1"})
+    status = np.full((ny, nx), -1, np.int8)
+    for (iy, ix), r in rows.items():
+        status[iy, ix] = STATUS_FLAGS.index(r["status"]) if r.get("status") in STATUS_FLAGS else len(STATUS_FLAGS) - 1
+    ds["pooled_status"] = (("lat", "lon"), status,
+                           {"long_name": "status of the pooled fit", "flag_values": np.arange(len(STATUS_FLAGS),
+                                                                                              dtype=np.int8),
+                            "flag_meanings": " ".join(STATUS_FLAGS), "_FillValue": np.int8(-1)})
+    ds.attrs.update({"Conventions": "CF-1.11", "title": "driftspec pooled (composite-likelihood) fits per cell",
+                     "bin_size_degrees": float(bin_deg), "share": share,
+                     "model": spec.model_name(model) if model is not None else str(_default_model(spec)),
+                     "references": "C. Varin, N. Reid, D. Firth, An overview of composite likelihood methods, "
+                                   "Statistica Sinica 21, 5-42 (2011)",
+                     "pooled_cells": int(sum(1 for r in rows.values() if r.get("status") == "ok"))})
+    return ds
+
+
+__all__ = ["MIN_CLUSTERS", "NUISANCE", "OFFSET", "PooledResult", "PooledWindow", "SHARE_MODES", "STATUS_FLAGS",
+           "bin_windows", "check_region", "fit_bin", "heterogeneity_test", "pool_fit", "pool_map",
+           "prepare_pooled_window"]
