@@ -114,6 +114,33 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", type=Path, required=True, help="output netCDF")
     p.add_argument("--png", type=Path, help="also write a quick-look map")
 
+    p = sub.add_parser("pool", help="one model fitted to every window of each bin at once (pooled fits, CF netCDF)")
+    p.add_argument("input", help="CSV, Parquet or CF trajectory netCDF")
+    p.add_argument("--out", type=Path, required=True, help="pooled map (.nc)")
+    p.add_argument("--window-days", type=float, required=True)
+    p.add_argument("--overlap", type=float, default=0.5, help="fraction, [0, 1)")
+    p.add_argument("--min-coverage", type=float, default=0.8, help="minimum fraction of valid samples")
+    p.add_argument("--bin-deg", type=float, required=True, help="bin size, degrees")
+    p.add_argument("--region", help="LON0,LAT0,LON1,LAT1 (default: everywhere; negative numbers need --region=...)")
+    p.add_argument("--model", default="matern+inertial", help="the model family pooled (default %(default)s)")
+    p.add_argument("--share", choices=["shape", "all"], default="shape",
+                   help="share the spectral shape with per-window amplitudes (default), or every parameter")
+    p.add_argument("--min-windows", type=int, default=2, help="fewest windows for a bin's fit (default 2)")
+    p.add_argument("--max-freq", type=float, default=None, help="fit |f| <= this, cpd (default: as 'fit')")
+    p.add_argument("--observation", choices=["none", "differenced", "differenced+noise"], default=None,
+                   help="observation model (default: as 'fit')")
+    p.add_argument("--position-noise", default="fit", metavar="fit|input|METRES")
+    p.add_argument("--exclude", default=None, metavar="LOW:HIGH,...", help="leave out bands of |f| (cpd)")
+    p.add_argument("--taper", choices=["none", "hann", "dpss"], default="none")
+    p.add_argument("--inertial-frequency", default=None, metavar="free|follow-latitude|...",
+                   help="inertial frequency handling, as 'fit' (default: fit's default)")
+    p.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="processes (default: all cores)")
+    p.add_argument("--dask", metavar="ADDRESS", help="a Dask scheduler address, or 'local' for a LocalCluster")
+    p.add_argument("--resume", action="store_true", help="keep the bins already fitted by an interrupted run")
+    p.add_argument("--no-progress", action="store_true")
+    p.set_defaults(estimator="debiased", stderr="auto", bootstrap=0)
+    _add_prep_options(p)
+
     p = sub.add_parser("dispersion", help="observed single-particle dispersion and diffusivity in a region")
     p.add_argument("input", help="CSV, Parquet or CF trajectory netCDF")
     p.add_argument("--region", help="LON0,LAT0,LON1,LAT1 (default: everywhere)")
@@ -263,6 +290,60 @@ def cmd_map(args):
     return 0
 
 
+def cmd_pool(args):
+    from driftspec.analysis.fitting.spec import FitSpec
+    from driftspec.analysis.io import FixReader
+    from driftspec.analysis.regional.maps import file_digest
+    from driftspec.analysis.regional.pooled import pool_map
+    from driftspec.analysis.tracks.pipeline import iter_velocity_batches
+    from driftspec.analysis.tracks.qc import clean_fixes_in_batches, merge_reports
+    from driftspec.analysis.tracks.windows import WindowCensus, iter_windows
+
+    if args.inertial_frequency is None:
+        args.inertial_frequency = FitSpec.__dataclass_fields__["inertial_frequency"].default
+    spec = fit_spec_from_args(args)
+    windowing = _windowing(args)
+    if not args.bin_deg > 0:
+        raise SystemExit(f"driftspec: --bin-deg must be positive, got {args.bin_deg:g}")
+    if args.workers < 1:
+        raise SystemExit(f"driftspec: --workers must be at least 1, got {args.workers}")
+    if args.min_windows < 1:
+        raise SystemExit(f"driftspec: --min-windows must be at least 1, got {args.min_windows}")
+    if args.out.suffix.lower() != ".nc":
+        raise SystemExit(f"driftspec: --out must be a netCDF file (.nc), got {args.out}")
+    region = _floats(args.region, 4, "--region") if args.region else None
+    prep = _prep_options(args)
+    reader = FixReader(args.input)
+    reports, census = [], WindowCensus()
+
+    def windows():  # stream: read, clean, grid and cut windows a few hundred tracks at a time
+        for raw in reader:
+            for fixes, report in clean_fixes_in_batches(raw, max_speed=prep.max_speed, source=str(args.input)):
+                reports.append(report)
+                for vel in iter_velocity_batches(fixes, prep):
+                    yield from iter_windows(vel, args.window_days, args.overlap, args.min_coverage,
+                                            use_measured=args.velocity == "measured", census=census)
+
+    path = Path(args.input)
+    source = f"{path.name} (sha256 {file_digest(path)})" if path.is_file() else str(args.input)
+    try:
+        ds = pool_map(windows(), spec, bin_deg=args.bin_deg, region=region, out=args.out, share=args.share,
+                      min_windows=args.min_windows, workers=args.workers, dask_address=args.dask,
+                      resume=args.resume, progress=not args.no_progress, windowing=windowing, source=source,
+                      command=" ".join(["driftspec", *sys.argv[1:]]))
+    except ValueError as exc:
+        if args.debug:
+            raise
+        raise SystemExit(f"driftspec: {exc}") from None
+    print(merge_reports(reports, str(args.input)).summary(), file=sys.stderr)
+    n_windows = int(ds["n_windows"].sum())
+    if n_windows == 0:
+        print(census.explain(args.min_coverage), file=sys.stderr)
+    print(f"pooled fits in {ds.attrs['pooled_cells']} of {int((ds['n_windows'] > 0).sum())} cells "
+          f"({n_windows} windows); wrote {args.out}")
+    return 0
+
+
 def _floats(text, n, what):
     try:
         vals = [float(x) for x in text.replace(":", ",").split(",")]
@@ -309,8 +390,8 @@ def cmd_serve(args):
                  extra_origins=args.allow_origin)
 
 
-COMMANDS = {"demo": cmd_demo, "qc": cmd_qc, "fit": cmd_fit, "map": cmd_map, "dispersion": cmd_dispersion,
-            "serve": cmd_serve}
+COMMANDS = {"demo": cmd_demo, "qc": cmd_qc, "fit": cmd_fit, "map": cmd_map, "pool": cmd_pool,
+            "dispersion": cmd_dispersion, "serve": cmd_serve}
 
 
 def main(argv=None) -> int:
