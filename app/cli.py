@@ -76,8 +76,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--window-days", type=float, default=60.0)
     p.add_argument("--overlap", type=float, default=0.5, help="fraction, [0, 1)")
     p.add_argument("--min-coverage", type=float, default=0.8, help="minimum fraction of valid samples")
-    p.add_argument("--model", default="matern+inertial",
-                   help="model family, or several separated by commas (matern, inertial, matern+inertial)")
+    p.add_argument("--model", default="auto",
+                   help="auto (default: fit matern and matern+inertial to every window and write the one selected, "
+                        "see the README), or model families separated by commas (matern, inertial, matern+inertial): "
+                        "every candidate is written, the selected one marked in the column 'selected'")
     p.add_argument("--estimator", choices=["debiased", "whittle", "exact"], default="debiased")
     p.add_argument("--max-freq", type=float, default=None,
                    help="fit |f| <= this, cpd (default, per window: 3/4 of the Nyquist frequency of the grid "
@@ -91,7 +93,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--exclude", default=None, metavar="LOW:HIGH,...",
                    help="leave out bands of |f| (cpd), e.g. 1.85:2.05 around semidiurnal tides")
     p.add_argument("--taper", choices=["none", "hann", "dpss"], default="none")
-    p.add_argument("--inertial-frequency", choices=["free", "follow-latitude"], default="free")
+    p.add_argument("--inertial-frequency", choices=["auto", "free", "follow-latitude"], default="auto",
+                   help="inertial oscillation at a fitted constant frequency (free), following the local inertial "
+                        "frequency with a fitted offset (follow-latitude), or following it where the window's "
+                        "latitude span moves it by more than the frequency resolution (auto, default)")
     p.add_argument("--stderr", choices=("auto", "fisher", "sandwich"), default="auto",
                    help="standard errors: sandwich (score covariance simulated with the window's gaps) or "
                         "fisher (inflated Fisher information; faster); auto: sandwich for windows with gaps "

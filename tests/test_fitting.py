@@ -136,7 +136,7 @@ def test_failed_fits_are_results_not_exceptions():
 
 def test_follow_latitude_model_fits_a_meridional_track():
     lat = np.linspace(20, 35, 1440)  # a fast float moving north through 15 degrees in 60 days
-    theta = [0.02, 1.2, 1.0, 0.01, 0.2]
+    theta = [0.02, 1.2, 1.0, 0.01, 0.0, 0.2]
     z = simulate("matern+inertial", theta, n=1440, dt=HOUR, seed=3, latitude=lat,
                  inertial_frequency="follow-latitude")
     r = fit_series(z, HOUR, latitude=lat, inertial_frequency="follow-latitude")

@@ -69,7 +69,7 @@ def test_fit_series_and_fit_window_agree_under_one_spec(three_tracks):
     # the array API builds a FitSpec from its keywords and takes the same path as a Window
     vel, _, _ = load_velocities(str(three_tracks))
     w = next(iter_windows(vel, window_days=30))
-    spec = FitSpec(models=("matern+inertial",), observation="differenced+noise", band=5.0)
+    spec = FitSpec(models=("matern+inertial",), observation="differenced+noise", band=5.0, inertial_frequency="free")
     a = fit_window(w, spec)[0]
     b = fit_series(w.z, w.dt_seconds, model="matern+inertial", latitude=w.latitude,
                    observation="differenced+noise", velocity_operator="central", max_freq=5.0)

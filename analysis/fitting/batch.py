@@ -46,8 +46,8 @@ COLUMN_UNITS = {
 def column_units(spec: FitSpec) -> dict:
     """Units of every column a fits table made under ``spec`` can have."""
     units = {**COLUMN_UNITS, **ELLIPSE_UNITS}
-    for m in spec.models:
-        for p in spec.family(m).parameters:
+    for m, follow in itertools.product(spec.candidate_models, (False, True)):
+        for p in spec.family(m, follow).parameters:
             units[p.name] = p.unit
             units[p.name + "_se"] = p.unit
     return units
@@ -62,10 +62,12 @@ def window_rows(w: Window, spec: FitSpec) -> list[dict]:
     try:
         results = fit_window(w, spec)
     except Exception as exc:  # noqa: BLE001 - a failed fit is a row, not a crash
+        models = spec.candidate_models if spec.keep_all else spec.candidate_models[:1]
         return [{**base, "model": spec.model_name(m), "estimator": spec.estimator, "status": "failed",
-                 "message": f"{type(exc).__name__}: {exc}"} for m in spec.models]
+                 "message": f"{type(exc).__name__}: {exc}", "selected": k == 0, "selection": "fit raised"}
+                for k, m in enumerate(models)]
     rows = []
-    for r in results:
+    for r in results if spec.keep_all else [r for r in results if r.selected]:
         row = r.to_row()
         if spec.bootstrap and r.ok:
             seed = zlib.crc32(f"{w.track_id}|{w.start.value}|{r.model}".encode())  # same in every process
@@ -197,8 +199,12 @@ def run_fits(windows: Iterable[Window], out, spec: FitSpec, *, workers: int = 1,
         written += 1
 
     # windows are consumed lazily and at most a few chunks are in flight, so memory stays bounded
-    names = [spec.model_name(m) for m in spec.models]
-    todo = (w for w in windows if not all((w.track_id, w.start, m) in skip for m in names))
+    if spec.keep_all:
+        names = [spec.model_name(m) for m in spec.candidate_models]
+        todo = (w for w in windows if not all((w.track_id, w.start, m) in skip for m in names))
+    else:  # one selected row per window, whichever model it is
+        done = {(t, s) for t, s, _ in skip}
+        todo = (w for w in windows if (w.track_id, w.start) not in done)
     chunks = _chunks(todo, chunk_size)
     stopped = False
     try:

@@ -22,6 +22,7 @@ from ..models import FitContext, ModelFamily
 from ..spectral.likelihood import PreparedWindow, prepare_window
 from .estimators import Estimator, Problem, get_estimator, natural_jacobian
 from .result import FitResult, ks_exponential_pvalue
+from .selection import select
 from .spec import FitSpec, WindowPlan
 
 #: windows with fewer valid samples than this are not fitted
@@ -45,13 +46,15 @@ def fit_window(window, spec: FitSpec, start: dict | None = None) -> list[FitResu
     Returns
     -------
     list of FitResult
-        One per candidate, in the order of ``spec.models``; a failed fit is a result with a status.
+        One per candidate, in the order of ``spec.candidate_models``, the chosen one marked ``selected``
+        (:mod:`.selection`); a failed fit is a result with a status.
     """
     fix_days = window.fix_interval_s / SECONDS_PER_DAY if window.fix_interval_s else None
     plan = spec.resolve(window.dt_seconds / SECONDS_PER_DAY, window.latitude, fix_days, window.position_error_m)
-    results = [_fit_planned(window.z, plan, spec, m, start=start) for m in spec.models]
+    results = [_fit_planned(window.z, plan, spec, m, start=start) for m in spec.candidate_models]
     for r in results:
         r.window_start = window.start
+    select(results, window.n_samples * window.dt_seconds / SECONDS_PER_DAY)
     return results
 
 
@@ -133,12 +136,12 @@ def fit_series(z, dt, *, model="matern+inertial", estimator="debiased", max_freq
     if latitude is not None and np.ndim(latitude) and np.shape(latitude) != z.shape:
         raise ValueError("latitude must be a scalar or have one value per sample")
     plan = spec.resolve(parse_timedelta_seconds(dt) / SECONDS_PER_DAY, latitude)
-    return _fit_planned(z, plan, spec, spec.models[0], mask=mask, start=start)
+    return _fit_planned(z, plan, spec, spec.candidate_models[0], mask=mask, start=start)
 
 
 def _fit_planned(z, plan: WindowPlan, spec: FitSpec, model, mask=None, start=None) -> FitResult:
     """Prepare one window for one candidate as ``plan`` says and fit it."""
-    family = spec.family(model)
+    family = spec.family(model, plan.follow_latitude)
     name = spec.model_name(model)
     estimator = get_estimator(spec.estimator)
     z = np.asarray(z)

@@ -48,6 +48,8 @@ class FitResult:
         First sample of the window, when the fit came from a :class:`~driftspec.analysis.tracks.windows.Window`.
     fixed : dict
         Parameters held fixed (their standard errors are zero).
+    selected, selection : bool, str
+        Whether this candidate was chosen for its window, and why (:mod:`~driftspec.analysis.fitting.selection`).
     stderr_method : str
         How the standard errors were computed: ``fisher`` (inflated inverse Fisher information),
         ``sandwich`` (simulated score covariance), ``observed`` (exact likelihood's Hessian), or ``""``.
@@ -73,6 +75,8 @@ class FitResult:
     stderr_method: str = ""
     max_freq: float = np.nan
     window_start: object = None
+    selected: bool = True
+    selection: str = ""
     fixed: dict = field(default_factory=dict)
     covariance: np.ndarray | None = field(default=None, repr=False)
     family: ModelFamily | None = field(default=None, repr=False)
@@ -116,7 +120,8 @@ class FitResult:
             "model": self.model, "estimator": self.estimator, "status": self.status,
             "message": self.message, "loglik": self.loglik, "aic": self.aic,
             "gof_pvalue": self.gof_pvalue, "n_valid": self.n_valid, "n_freq": self.n_freq,
-            "max_freq": self.max_freq, "stderr_method": self.stderr_method,
+            "max_freq": self.max_freq, "stderr_method": self.stderr_method, "selected": self.selected,
+            "selection": self.selection,
         }
         for k, v in self.params.items():
             row[k] = v

@@ -43,7 +43,9 @@ from ..spectral.periodogram import TAPERS
 ESTIMATOR_NAMES = ("debiased", "whittle", "exact")
 VELOCITIES = ("central", "forward", "measured")
 STDERR_METHODS = ("auto", "fisher", "sandwich")
-INERTIAL_FREQUENCIES = ("free", "follow-latitude")
+INERTIAL_FREQUENCIES = ("auto", "free", "follow-latitude")
+#: the candidates fitted to every window when ``models="auto"`` (one of them is selected per window)
+AUTO_CANDIDATES = ("matern", "matern+inertial")
 #: fraction of the Nyquist frequency fitted by default (see the module docstring)
 BAND_FRACTION_OBSERVED = {"central": 0.75, "forward": 1.0, "measured": 1.0}
 BAND_FRACTION_UNMODELLED_DIFFERENCE = 0.25
@@ -62,6 +64,9 @@ class WindowPlan:
     latitude: float | None  # mean latitude, degrees north
     latitude_series: np.ndarray | None  # per sample, for the latitude-following model
     position_noise: float | None  # metres, held fixed; None = fitted (or no noise model)
+    follow_latitude: bool = False  # the inertial part follows the local inertial frequency
+    candidates: tuple = ()  # model names to fit
+    n_samples: int = 0
 
     @property
     def inertial_frequency_cpd(self) -> float | None:
@@ -74,8 +79,10 @@ class FitSpec:
 
     Parameters
     ----------
-    models : tuple of str
-        Candidate model families (registered names, see :data:`driftspec.analysis.models.FAMILIES`).
+    models : "auto" or tuple of str
+        Candidate model families (registered names, see :data:`driftspec.analysis.models.FAMILIES`). ``"auto"``
+        (default) fits :data:`AUTO_CANDIDATES` to every window and keeps the selected one (see
+        :mod:`.selection`); an explicit tuple keeps a row for every candidate, the selected one marked.
     estimator : {"debiased", "whittle", "exact"}
         Debiased Whittle (default), standard Whittle, or exact Gaussian likelihood.
     band : "auto" or float
@@ -86,8 +93,10 @@ class FitSpec:
         Observation model (``"auto"``: ``differenced+noise`` for differenced velocities, ``none`` for measured).
     position_noise : "fit", "input" or float
         Fit the white position noise, take each window's median ``position_error_m``, or hold it at a value (m).
-    inertial_frequency : {"free", "follow-latitude"}
-        Fitted constant inertial frequency, or one following ``-2 Omega sin(latitude(t))``.
+    inertial_frequency : {"auto", "free", "follow-latitude"}
+        The inertial part at a fitted constant frequency, or following ``-2 Omega sin(latitude(t))`` with a fitted
+        offset; ``"auto"`` (default) follows the latitude where the window's latitude span moves the inertial
+        frequency by more than the frequency resolution ``1/T``.
     taper : {"none", "hann", "dpss"}
     exclude : tuple of (low, high)
         Frequency-magnitude bands (cpd) left out of the fit, e.g. around tidal lines.
@@ -99,13 +108,13 @@ class FitSpec:
         Parametric-bootstrap replicates per window (0: none).
     """
 
-    models: tuple = ("matern+inertial",)
+    models: tuple = "auto"
     estimator: str = "debiased"
     band: str | float = "auto"
     velocity: str = "central"
     observation: str = "auto"
     position_noise: str | float = "fit"
-    inertial_frequency: str = "free"
+    inertial_frequency: str = "auto"
     taper: str = "none"
     exclude: tuple = ()
     fixed: tuple = field(default=())
@@ -119,7 +128,11 @@ class FitSpec:
         models = (self.models,) if isinstance(self.models, (str, ModelFamily)) else tuple(self.models)
         if not models:
             raise ValueError("at least one model is needed")
-        for m in models:
+        if "auto" in models:
+            if len(models) > 1:
+                raise ValueError("'auto' stands alone: it means the candidates " + ", ".join(AUTO_CANDIDATES))
+            models = "auto"
+        for m in models if models != "auto" else AUTO_CANDIDATES:
             if isinstance(m, str) and m not in FAMILIES:
                 raise ValueError(f"unknown model {m!r}; choose from {', '.join(FAMILIES)}")
         put("models", models)
@@ -150,11 +163,10 @@ class FitSpec:
         if int(self.bootstrap) != self.bootstrap or self.bootstrap < 0:
             raise ValueError(f"bootstrap must be a whole number >= 0, got {self.bootstrap!r}")
         put("bootstrap", int(self.bootstrap))
-        for m in models:  # the fixed names must be parameters of every candidate that has them
-            names = set(self.family(m).names)
-            unknown = {k for k, _ in self.fixed} - names
-            if unknown and len(models) == 1:
-                raise ValueError(f"fixed names {sorted(unknown)} are not parameters of {m}")
+        names = set().union(*(self.family(m, follow).names for m in self.candidate_models for follow in (False, True)))
+        unknown = {k for k, _ in self.fixed} - names
+        if unknown:
+            raise ValueError(f"fixed names {sorted(unknown)} are not parameters of {', '.join(self.candidate_models)}")
 
     # ------------------------------------------------------------------ derived settings
     @property
@@ -168,9 +180,22 @@ class FitSpec:
         """The difference operator named in the observation model (central for measured velocities, unused)."""
         return "central" if self.velocity == "measured" else self.velocity
 
-    def family(self, model) -> ModelFamily:
-        """The model family of candidate ``model`` seen through this specification's observation model."""
-        return observed(get_family(model, self.inertial_frequency), self.resolved_observation, self.operator)
+    @property
+    def candidate_models(self) -> tuple:
+        """The models fitted to every window."""
+        return AUTO_CANDIDATES if self.models == "auto" else self.models
+
+    @property
+    def keep_all(self) -> bool:
+        """Whether a fits table keeps every candidate's row (explicit models) or only the selected one (auto)."""
+        return self.models != "auto"
+
+    def family(self, model, follow_latitude: bool | None = None) -> ModelFamily:
+        """The model family of candidate ``model`` seen through this specification's observation model, its
+        inertial part following the latitude when ``follow_latitude`` (default: when the spec says always)."""
+        follow = self.inertial_frequency == "follow-latitude" if follow_latitude is None else follow_latitude
+        return observed(get_family(model, "follow-latitude" if follow else "free"), self.resolved_observation,
+                        self.operator)
 
     def model_name(self, model) -> str:
         return model if isinstance(model, str) else model.name
@@ -195,13 +220,16 @@ class FitSpec:
         ``latitude`` is a scalar or one value per sample (degrees north), or None when unknown.
         """
         lat_series = lat_mean = None
+        follow = self.inertial_frequency == "follow-latitude"
+        n = 0
         if latitude is not None:
             lat = np.asarray(latitude, float)
             lat_mean = float(lat) if lat.ndim == 0 else float(np.nanmean(lat))
-            if lat.ndim and self.inertial_frequency == "follow-latitude":
-                lat_series = lat
-            elif self.inertial_frequency == "follow-latitude":
-                lat_series = None  # a single latitude: the caller broadcasts it over the window
+            if lat.ndim:
+                n = lat.size
+                if self.inertial_frequency == "auto":
+                    follow = _latitude_moves_the_inertial_frequency(lat, dt_days)
+                lat_series = lat if follow else None
         noise = None
         if self.resolved_observation == "differenced+noise":
             if self.position_noise == "input":
@@ -211,12 +239,13 @@ class FitSpec:
                 noise = float(self.position_noise)
         return WindowPlan(dt_days=float(dt_days), max_freq=self.max_freq(dt_days, fix_interval_days),
                           observation=self.resolved_observation, operator=self.operator, latitude=lat_mean,
-                          latitude_series=lat_series, position_noise=noise)
+                          latitude_series=lat_series, position_noise=noise, follow_latitude=follow,
+                          candidates=tuple(self.model_name(m) for m in self.candidate_models), n_samples=n)
 
     # ------------------------------------------------------------------ identity
     def to_dict(self) -> dict:
         d = asdict(self)
-        d["models"] = [self.model_name(m) for m in self.models]
+        d["models"] = "auto" if self.models == "auto" else [self.model_name(m) for m in self.models]
         d["exclude"] = [list(p) for p in self.exclude]
         d["fixed"] = dict(self.fixed)
         return d
@@ -232,7 +261,7 @@ class FitSpec:
         if unknown:
             raise ValueError(f"unknown fit settings {sorted(unknown)}")
         d = dict(d)
-        if "models" in d:
+        if "models" in d and d["models"] != "auto":
             d["models"] = tuple(d["models"])
         if "exclude" in d:
             d["exclude"] = tuple(tuple(p) for p in d["exclude"])
@@ -245,6 +274,16 @@ class FitSpec:
         """Names of the settings in which ``other`` differs (for a message that says what changed)."""
         a, b = self.to_dict(), other.to_dict()
         return [k for k in a if a[k] != b.get(k)]
+
+
+def _latitude_moves_the_inertial_frequency(latitude, dt_days) -> bool:
+    """Whether the local inertial frequency changes across the window by more than its frequency resolution
+    ``1 / T`` (``T`` the window length): then a constant-frequency oscillation cannot describe it."""
+    lat = latitude[np.isfinite(latitude)]
+    if lat.size < 2:
+        return False
+    f = inertial_frequency_cpd(np.array([lat.min(), lat.max()]))
+    return bool(abs(f[1] - f[0]) > 1.0 / (latitude.size * dt_days))
 
 
 def _choice(name, value, allowed):

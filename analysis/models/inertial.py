@@ -96,37 +96,58 @@ class Inertial(ModelFamily):
 
 
 class InertialFollowing(ModelFamily):
-    """Inertial oscillation at the local inertial frequency along the track.
+    """Inertial oscillation that follows the local inertial frequency along the track, with a fitted offset.
 
-    Parameters ``inertial_variance`` and ``inertial_damping``; the frequency is not fitted.
+    Parameters ``inertial_variance``, ``inertial_frequency_offset`` (cpd) and ``inertial_damping``: the process is
+    a complex OU process at the constant frequency ``delta`` (the offset) times the window's known modulation
+    ``exp(i phase(t))``, ``phase`` the running integral of ``2 pi f(t)``, ``f(t) = -2 Omega sin(latitude(t))``. So
+    the oscillation runs at ``f(t) + delta``. Where the latitude does not change this is the constant-frequency
+    model with ``f0 = f + delta``, so the family nests it and no contest between the two is needed; ``delta`` reads
+    as the shift of the inertial peak by background vorticity (about half the relative vorticity, in cpd).
     """
 
     name = "inertial_following"
     modulated = True
-    parameters = (Inertial.parameters[0], Inertial.parameters[2])
+    parameters = (
+        Inertial.parameters[0],
+        Parameter("inertial_frequency_offset", "day-1", -0.6, 0.6,
+                  "offset of the oscillation from the local inertial frequency, cpd", scale="linear"),
+        Inertial.parameters[2],
+    )
 
     def _autocovariance(self, theta, lags_days, context=None):
-        var, gam = theta
-        return (var * np.exp(-gam * np.asarray(lags_days, float))).astype(complex)
+        var, delta, gam = theta
+        return var * np.exp((2j * np.pi * delta - gam) * np.asarray(lags_days, float))
 
     def _autocovariance_jacobian(self, theta, lags_days, context=None):
-        var, gam = theta
+        var, delta, gam = theta
         tau = np.asarray(lags_days, float)
-        r = var * np.exp(-gam * tau)
-        return r.astype(complex), np.stack([r, -gam * tau * r]).astype(complex)
+        r = var * np.exp((2j * np.pi * delta - gam) * tau)
+        return r, np.stack([r, 2j * np.pi * tau * r, -gam * tau * r])
 
     def _spectral_density(self, theta, freq_cpd, context: FitContext):
-        var, gam = theta
-        fc = context.inertial_frequency_cpd if context is not None else 0.0
+        var, delta, gam = theta
+        fc = context.inertial_frequency_cpd if context is not None and context.inertial_frequency_cpd is not None \
+            else 0.0
         f = np.asarray(freq_cpd, float)
-        return var * 2 * gam / (gam**2 + (2 * np.pi * (f - fc)) ** 2)
+        return var * 2 * gam / (gam**2 + (2 * np.pi * (f - fc - delta)) ** 2)
+
+    def bounds(self, context: FitContext):
+        b = [(p.lower, p.upper) for p in self.parameters]
+        fc = context.inertial_frequency_cpd if context is not None else None
+        if fc is not None and np.isfinite(fc):
+            half = min(0.6, 0.25 * abs(fc) + 0.1)  # the constant model's frequency range about f
+            b[1] = (-half, half)
+        return b
 
     def _initial_guess(self, freq_cpd, power, context):
         g = Inertial().initial_guess(freq_cpd, power, context)
-        return np.array([g[0], g[2]])
+        fc = context.inertial_frequency_cpd if context is not None and context.inertial_frequency_cpd is not None \
+            else g[1]
+        return np.array([g[0], float(np.clip(g[1] - fc, -0.5, 0.5)), g[2]])
 
     def _derived(self, theta, context=None):
-        return {"inertial_efold_days": float(1.0 / theta[1])}
+        return {"inertial_efold_days": float(1.0 / theta[2])}
 
 
 def modulation_sequence(latitude_series, dt_days) -> np.ndarray:

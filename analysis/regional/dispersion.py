@@ -25,6 +25,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from .maps import is_selected
+
 
 @dataclass
 class DispersionResult:
@@ -148,6 +150,6 @@ def single_particle_dispersion(vel: pd.DataFrame, region=None, max_lag_days: flo
 
 def model_diffusivity(fits: pd.DataFrame, region=None) -> tuple[float, int]:
     """Median fitted diffusivity (m^2/s) of the ok fits whose mean position is in ``region``, and their count."""
-    ok = fits[(fits["status"] == "ok") & np.isfinite(fits["diffusivity"])]
+    ok = fits[(fits["status"] == "ok") & np.isfinite(fits["diffusivity"]) & is_selected(fits)]
     ok = ok[_in_region(ok["lat"].to_numpy(float), ok["lon"].to_numpy(float), region)]
     return (float(ok["diffusivity"].median()) if len(ok) else np.nan), len(ok)

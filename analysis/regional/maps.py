@@ -1,6 +1,7 @@
 """Regional products: fitted parameters gridded into latitude-longitude bins, as CF netCDF.
 
-Each fit (window) is assigned to the bin holding its mean position; only ``status == "ok"`` fits count.
+Each fit (window) is assigned to the bin holding its mean position; only ``status == "ok"`` fits count, and of a
+window's candidates only the selected one (column ``selected``, where the table has it).
 For every gridded column ``P`` the dataset holds ``P`` (median or mean per bin), ``P_spread``
 (interquartile range for the median, standard error of the mean for the mean) and ``P_count``; the
 variable ``count`` (standard name ``number_of_observations``) counts ok fits per bin.
@@ -74,7 +75,7 @@ def grid_fits(fits: pd.DataFrame, params=None, bin_deg: float = 2.0, stat: str =
         raise InputError(f"fits table has no column(s) {', '.join(missing)}")
     lat_e = _edges(*lat_range, bin_deg)
     lon_e = _edges(*lon_range, bin_deg)
-    ok = fits[fits["status"] == "ok"]
+    ok = fits[(fits["status"] == "ok") & is_selected(fits)]
     lon = ((ok["lon"].to_numpy(float) + 180) % 360) - 180
     lat = ok["lat"].to_numpy(float)
     inside = (lat >= lat_e[0]) & (lat < lat_e[-1]) & (lon >= lon_e[0]) & (lon < lon_e[-1])
@@ -175,3 +176,10 @@ def grid_fits_file(path, params=None, bin_deg=2.0, stat="median", out=None, comm
 
         os.replace(tmp, out)
     return ds
+
+
+def is_selected(fits: pd.DataFrame) -> pd.Series:
+    """Rows chosen for their window (all rows of a table made before the column existed)."""
+    if "selected" not in fits:
+        return pd.Series(True, index=fits.index)
+    return fits["selected"].astype(str).str.lower().isin(["true", "1"])
