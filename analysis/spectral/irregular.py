@@ -1,0 +1,483 @@
+"""Expected periodogram of velocities made from irregular position fixes: the observation as a linear map.
+
+Fixes at irregular times ``s_j`` (days) are linearly interpolated onto a regular grid of step ``dt``,
+differenced into velocities, masked, tapered, optionally demeaned and Fourier transformed. Every step is
+linear, so the discrete Fourier transform of the observed velocities is a fixed linear functional of the
+true positions ``X(s_j)`` (m)::
+
+    J_k = sum_n h_n (y_n - ybar) exp(-2 pi i k n / N) = sum_j a_j(k) X(s_j) / 86400,
+    a_j(k) = sum_n h_n (W_nj - m_j) exp(-2 pi i k n / N)                           (1/day)
+
+with ``W_nj`` the weight of fix ``j`` in velocity sample ``n`` (interpolation weights times the difference
+stencil, ``+-1 / (2 dt)`` for the central difference, ``1 / dt`` for the forward one; in 1/day), ``m_j``
+its mean over the valid samples (zero without demeaning) and ``h`` the data taper, zero at missing samples
+and of unit sum of squares (:func:`~driftspec.analysis.spectral.periodogram.masked_taper`). Each row of
+``W`` sums to zero (interpolation weights sum to one, a difference stencil to zero), so ``sum_j a_j = 0``.
+
+The ocean
+---------
+With the complex velocity ``v(t) = int exp(2 pi i f t) dZ(f)``, ``E|dZ|^2 = S(f) df`` (two-sided density
+in (m/s)^2 per cpd, positive ``f`` counterclockwise), the position is ``X(s) = 86400 int (exp(2 pi i f s)
+- 1) / (2 pi i f) dZ(f)`` and, the constant dropping out of the zero-sum weights, the periodogram
+``I_k = dt |J_k|^2`` (as in :func:`~driftspec.analysis.spectral.likelihood.prepare_window`) has mean::
+
+    E[I_k] = dt * int S(f) K_k(f) df,     K_k(f) = | sum_j a_j(k) exp(2 pi i f s_j) |^2 / (2 pi f)^2
+
+``K_k`` is finite at ``f = 0`` (it is ``|sum_j a_j(k) s_j|^2`` there). (The form with ``N^(-1/2)`` in front
+of ``G`` belongs to an untapered series; with the unit-energy taper ``h`` the factor is inside ``a``.)
+``K_k`` is the squared Fourier transform of ``g_k(t) = sum_j a_j(k) 1[0 <= t < s_j]``, a function supported
+on the fixes' span ``T'``; so on a uniform frequency grid of step ``delta`` the rectangle rule is exact up
+to aliasing terms of the integrand's Fourier transform at lags ``>= 1/delta - T'``, which are the velocity
+autocovariance there (Poisson summation). Hence the integration grid:
+
+* ``|f| <= fine_band_cpd`` (default 3.5 cpd, beyond every inertial frequency the models allow): step
+  ``1 / (6 T')`` (lags ``>= 5 T'``, 300 days for a 60-day window, where any damping above 0.02/day has
+  killed the autocovariance), ``S`` evaluated at every point, so narrow inertial peaks are integrated as
+  well as the window can resolve them;
+* from there to ``quad_max_cpd`` (default 1.5 times the sampling rate, 36 cpd for hourly samples, which
+  holds the first alias of the whole fitted band, ``f_k +- 1/dt``): step ``1 / (3 T')``, and ``S`` is
+  smooth (a power law and Lorentzian tails), so it is represented by a cubic spline in ``log |f|`` on
+  about 60 nodes and the kernel is integrated against each spline basis function once, at build time
+  (product integration). A raised-cosine partition of width ``transition_cpd`` (1 cpd) joins the two
+  grids, so both integrands go smoothly to zero where their grid ends and the Poisson argument holds;
+* beyond ``quad_max_cpd`` the red spectrum is continued as a power law (slope from the two outermost
+  nodes), and fixes far apart in time decorrelate there: only the diagonal ``sum_j |a_j(k)|^2`` of
+  ``|sum_j a_j exp(2 pi i f s_j)|^2`` is kept (the tail is a white position noise of the variance
+  ``int_{|f| > F} S / (2 pi f)^2 df``). For a red spectrum this is well below 1 % of ``E[I_k]`` anywhere in
+  the band (checked in the tests against a quadrature carried to three times as far).
+
+The aliasing of the red spectrum from above the grid's Nyquist frequency is therefore in ``E[I_k]`` up
+to 1.5 sampling rates exactly, and beyond in the white-noise form. Each evaluation is one product of the
+kernel matrix (band x nodes, about 1080 x 3300 for a 60-day hourly window) with the spectral density
+on the nodes, and its derivatives (central differences of the density in the optimiser's coordinates).
+
+Position error
+--------------
+Independent errors ``eps_j`` of standard deviation ``sigma_j`` (m) per component (``E|eps_j|^2 =
+2 sigma_j^2``) add::
+
+    E_noise[I_k] = dt * 2 / 86400^2 * sum_j sigma_j^2 |a_j(k)|^2
+
+either with the given per-fix ``sigma_j`` (``noise="fixed"``) or with one fitted ``sigma`` for every fix
+(``noise="fitted"``: parameter ``position_noise``, m, appended to the family's parameters).
+
+Modulated (latitude-following) components are treated as stationary at the window's mean inertial
+frequency (their ``spectral_density`` with ``context.inertial_frequency_cpd``); the exact treatment folds
+the modulation into ``g_k`` and is not done here.
+
+References
+----------
+"The debiased Whittle likelihood". Biometrika 106, 251-266 (2019). doi:10.1093/biomet/asy071
+Percival, D. B., Walden, A. T. (1993). Spectral Analysis for Physical Applications. Cambridge University
+Press. doi:10.1017/CBO9780511622762 (tapered periodogram, its expectation as a kernel-weighted spectrum).
+Davis, P. J., Rabinowitz, P. (1984). Methods of Numerical Integration, 2nd ed. Academic Press (product
+integration; the trapezoidal rule for band-limited integrands).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.fft
+import scipy.sparse
+from scipy.interpolate import make_interp_spline
+
+from ..conventions import SECONDS_PER_DAY
+from ..models.base import FitContext, ModelFamily, Parameter
+from ..models.inertial import Inertial
+from ..models.observation import PositionNoise
+from .periodogram import masked_taper
+
+NOISE_MODES = ("auto", "fixed", "fitted", "none")
+#: the fitted white position noise (m per component): the same parameter as the regular observation model's
+POSITION_NOISE: Parameter = PositionNoise.parameters[0]
+_FD_STEP = 1e-5  # central-difference step of the density in the optimiser's coordinates
+
+
+#: the spectrum's structure near zero frequency (a Matérn corner) is resolved on the fine grid up to here, cpd
+_LOW_BAND_CPD = 0.3
+#: a peak's flanks are resolved on the fine grid this far beyond the range its centre may take, cpd
+_PEAK_MARGIN_CPD = 0.3
+#: the widest range of a fitted oscillation frequency (the constant-frequency inertial family's bounds), cpd
+_INERTIAL_MAX_CPD = 3.0
+
+
+def _smooth_step(x):
+    """1 for x <= 0, 0 for x >= 1, three times continuously differentiable (the degree-7 smoothstep)."""
+    x = np.clip(x, 0.0, 1.0)
+    return 1.0 - x**4 * (35.0 - 84.0 * x + 70.0 * x**2 - 20.0 * x**3)
+
+
+def _merge_bands(bands, transition, fmax):
+    """Sorted, clipped to ``[-fmax, fmax]``, and merged where their transitions would overlap."""
+    out = []
+    for lo, hi in sorted((max(lo, -fmax), min(hi, fmax)) for lo, hi in bands):
+        if hi <= lo:
+            continue
+        if out and lo - out[-1][1] < 2 * transition:
+            out[-1] = (out[-1][0], max(out[-1][1], hi))
+        else:
+            out.append((lo, hi))
+    return out
+
+
+def _partition(f, bands, transition):
+    """``psi(f)``: 1 on the bands, falling smoothly to 0 within ``transition`` outside each."""
+    psi = np.zeros(f.shape)
+    for lo, hi in bands:
+        dist = np.maximum(lo - f, f - hi)
+        psi += _smooth_step(np.maximum(dist, 0.0) / transition)
+    return psi
+
+
+def _gaps(bands, fmax):
+    """The stretches of ``[-fmax, fmax]`` between the bands (never containing 0), as (lo, hi)."""
+    edges = [-fmax] + [x for b in bands for x in b] + [fmax]
+    out = []
+    for lo, hi in zip(edges[::2], edges[1::2]):
+        if hi - lo > 1e-12:
+            if lo < 0 < hi:
+                raise ValueError("the fine bands must contain zero frequency")
+            out.append((lo, hi))
+    return out
+
+
+def interpolation_weights(fix_times_days, times_days):
+    """Linear-interpolation weights of ``times_days`` between sorted fix times, as ``np.interp`` uses them.
+
+    Returns ``(left, w)``: the value at ``times_days[i]`` is ``(1 - w[i]) x[left[i]] + w[i] x[left[i] + 1]``.
+    Raises ``ValueError`` for a time outside the fixes' span.
+    """
+    s = np.asarray(fix_times_days, float)
+    t = np.asarray(times_days, float)
+    eps = 1e-9 * max(1.0, float(np.abs(s).max()))
+    if t.size and (t.min() < s[0] - eps or t.max() > s[-1] + eps):
+        bad = t[(t < s[0] - eps) | (t > s[-1] + eps)][0]
+        raise ValueError(f"a valid velocity needs the position at {bad:.6g} days, outside the fixes' span "
+                         f"[{s[0]:.6g}, {s[-1]:.6g}]")
+    left = np.clip(np.searchsorted(s, t, side="right") - 1, 0, s.size - 2)
+    w = np.clip((t - s[left]) / (s[left + 1] - s[left]), 0.0, 1.0)
+    return left, w
+
+
+class IrregularObservation:
+    """The expected periodogram of one window of velocities made from irregular fixes (module docstring).
+
+    Built once per window; then :meth:`expected_in_band` costs one matrix product per evaluation.
+
+    Parameters
+    ----------
+    fix_times_days : array_like
+        Fix times in days relative to the first grid sample (strictly increasing). Fixes before 0 and
+        after the last sample are needed when the first and last velocities use positions there.
+    dt_days : float
+        Grid step, days.
+    n : int
+        Number of velocity samples in the window.
+    valid : array_like of bool, optional
+        Validity of each velocity sample (what ``prepare_window`` gets as ``mask``); default all valid.
+        Every valid sample must have its positions inside the fixes' span.
+    operator : {"central", "forward"}
+        ``central``: ``(x[n+1] - x[n-1]) / (2 dt)`` from positions at grid times ``(n +- 1) dt``;
+        ``forward``: ``(x[n+1] - x[n]) / dt`` from positions at ``n dt`` and ``(n + 1) dt``.
+    taper : None, str or array_like
+        Data taper as ``prepare_window`` takes it (``None``, ``"hann"``, ``"dpss"`` or an array of length
+        ``n``, e.g. ``PreparedWindow.taper``); it is masked and normalised to unit sum of squares.
+    position_error_m : array_like, optional
+        Standard deviation of each fix's error per component, m.
+    noise : {"auto", "fixed", "fitted", "none"}
+        ``fixed`` uses ``position_error_m``; ``fitted`` appends the parameter ``position_noise`` (m, white,
+        the same for every fix); ``auto`` is ``fixed`` when errors are given and ``fitted`` otherwise.
+    band_index : array_like of int, optional
+        FFT-order indices of the fitted band (pass ``PreparedWindow.band_index``). Default: every nonzero
+        frequency with ``|f| <= max_freq_cpd``.
+    max_freq_cpd : float, optional
+        Top of the default band, cpd (default the Nyquist frequency ``0.5 / dt_days``).
+    demean : bool
+        The window mean of the valid samples is removed before the periodogram (as ``prepare_window``
+        does); ``False`` gives the expectation without it.
+    fine_band_cpd, transition_cpd, quad_max_cpd : float
+        Integration grid (module docstring); ``quad_max_cpd`` defaults to ``1.5 / dt_days``.
+    oversample : float
+        The fine grid's step is ``1 / (oversample T')``, ``T'`` the span of the fixes used.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from driftspec.analysis.models import Matern, FitContext
+    >>> t = np.sort(np.random.default_rng(0).uniform(-0.2, 30.2, 200))
+    >>> obs = IrregularObservation(t, 1 / 24, 720, noise="none", max_freq_cpd=9.0)
+    >>> e, de = obs.expected_in_band(Matern(), [0.02, 1.2, 1.0], FitContext(dt_days=1 / 24))
+    >>> e.shape, de.shape
+    ((540,), (3, 540))
+    """
+
+    def __init__(self, fix_times_days, dt_days: float, n: int, valid=None, operator: str = "central",
+                 taper=None, position_error_m=None, *, noise: str = "auto", band_index=None,
+                 max_freq_cpd: float | None = None, demean: bool = True,
+                 inertial_frequency_cpd: float | None = None, fine_bands_cpd=None, transition_cpd: float = 0.25,
+                 quad_max_cpd: float | None = None, oversample: float = 4.0, coarse_oversample: float = 1.5,
+                 log_node_step: float = 0.05, chunk: int = 256):
+        s = np.asarray(fix_times_days, float).ravel()
+        n = int(n)
+        dt = float(dt_days)
+        if not (np.isfinite(dt) and dt > 0):
+            raise ValueError(f"dt_days must be positive, got {dt_days!r}")
+        if n < 3:
+            raise ValueError(f"need at least 3 grid samples, got {n}")
+        if s.size < 2 or not np.all(np.isfinite(s)):
+            raise ValueError("need at least two finite fix times")
+        if np.any(np.diff(s) <= 0):
+            raise ValueError("fix times must be strictly increasing")
+        if operator not in ("central", "forward"):
+            raise ValueError(f"operator must be 'central' or 'forward', got {operator!r}")
+        if noise not in NOISE_MODES:
+            raise ValueError(f"noise must be one of {NOISE_MODES}, got {noise!r}")
+        sigma = None
+        if position_error_m is not None:
+            sigma = np.broadcast_to(np.asarray(position_error_m, float), s.shape).copy()
+            if not np.all(np.isfinite(sigma) & (sigma >= 0)):
+                raise ValueError("position_error_m must be finite and non-negative")
+        if noise == "auto":
+            noise = "fixed" if sigma is not None else "fitted"
+        if noise == "fixed" and sigma is None:
+            raise ValueError("noise='fixed' needs position_error_m")
+        valid = np.ones(n, bool) if valid is None else np.asarray(valid, bool).ravel()
+        if valid.shape != (n,):
+            raise ValueError(f"valid must have length n={n}")
+        if valid.sum() < 2:
+            raise ValueError("fewer than two valid samples")
+        if oversample < 2 or coarse_oversample < 1.5 or transition_cpd <= 0 or not 0 < log_node_step <= 0.5:
+            raise ValueError("need oversample >= 2, coarse_oversample >= 1.5, transition_cpd > 0 and "
+                             "0 < log_node_step <= 0.5")
+        self.n, self.dt_days, self.operator, self.noise, self.demean = n, dt, operator, noise, demean
+        self.valid = valid
+        self.taper = masked_taper(n, valid, taper)
+        freq = scipy.fft.fftfreq(n, d=dt)
+        if band_index is None:
+            top = 0.5 / dt if max_freq_cpd is None else float(max_freq_cpd)
+            band_index = np.flatnonzero((np.abs(freq) <= top + 1e-12) & (freq != 0))
+        self.band_index = np.asarray(band_index, np.int64).ravel()
+        if self.band_index.size == 0 or self.band_index.min() < 0 or self.band_index.max() >= n:
+            raise ValueError("band_index must be non-empty FFT-order indices below n")
+        self.freq_cpd = freq[self.band_index]
+
+        # --- the linear map: velocity sample n <- fixes (W, 1/day), on the fixes it uses ---------------
+        rows = np.flatnonzero(valid)
+        if operator == "central":
+            t_a, t_b, scale = (rows - 1) * dt, (rows + 1) * dt, 1.0 / (2 * dt)
+        else:
+            t_a, t_b, scale = rows * dt, (rows + 1) * dt, 1.0 / dt
+        la, wa = interpolation_weights(s, t_a)
+        lb, wb = interpolation_weights(s, t_b)
+        r4 = np.repeat(rows, 4)
+        c4 = np.stack([lb, lb + 1, la, la + 1], axis=1).ravel()
+        v4 = scale * np.stack([1 - wb, wb, -(1 - wa), -wa], axis=1).ravel()
+        w = scipy.sparse.csr_matrix((v4, (r4, c4)), shape=(n, s.size))
+        w.sum_duplicates()
+        w.eliminate_zeros()
+        used = np.flatnonzero(np.diff(w.tocsc().indptr) > 0)
+        self.fix_index = used  # the fixes the window's velocities use (indices into fix_times_days)
+        self.weights = w[:, used].tocsr()  # W, 1/day, shape (n, len(used))
+        s_used = s[used]
+        self._s = s_used - 0.5 * (s_used[0] + s_used[-1])  # centred: the zero-sum weights make the origin free
+        self.span_days = float(s_used[-1] - s_used[0])
+
+        # --- a_j(k) and the diagonal kernel sum_j |a_j(k)|^2 ------------------------------------------
+        dense = self.weights.toarray()
+        if demean:
+            dense[valid] -= dense[valid].mean(axis=0)
+        a = scipy.fft.fft(self.taper[:, None] * dense, axis=0)[self.band_index]  # (band, fixes), 1/day
+        a2 = np.abs(a) ** 2
+        self._diag = a2.sum(axis=1)  # sum_j |a_j(k)|^2, day^-2
+        #: ``E_noise[I_k]`` per unit variance (m^2) of white position noise on each component
+        self.noise_kernel = dt * 2.0 / SECONDS_PER_DAY**2 * self._diag
+        self.fixed_noise = None
+        if sigma is not None:
+            self.fixed_noise = dt * 2.0 / SECONDS_PER_DAY**2 * (a2 @ sigma[used] ** 2)
+
+        # --- integration grid and kernel ---------------------------------------------------------------
+        tspan = max(self.span_days, n * dt)
+        fmax = 1.0 / dt if quad_max_cpd is None else float(quad_max_cpd)
+        bands = _merge_bands(self._fine_bands(fine_bands_cpd, inertial_frequency_cpd, dt), transition_cpd, fmax)
+        self.fine_bands_cpd = bands
+        # fine part: rectangle rule at every point, weight psi (1 on the bands, smoothly 0 a transition away)
+        d1 = 1.0 / (oversample * tspan)
+        q1 = int(np.ceil(fmax / d1))
+        grid1 = np.arange(-q1, q1 + 1) * d1
+        psi1 = _partition(grid1, bands, transition_cpd)
+        keep = psi1 > 0
+        fine, w_fine = grid1[keep], d1 * psi1[keep]
+        kernels = [self._kernel_columns(fine, w_fine, chunk)]
+        nodes_all = [fine]
+        # smooth part: a cubic spline in log|f| on each stretch between the bands, integrated with weight 1 - psi
+        d2 = 1.0 / (coarse_oversample * tspan)
+        q2 = int(np.floor(fmax / d2))
+        grid2 = np.arange(-q2, q2 + 1) * d2
+        w2 = d2 * (1.0 - _partition(grid2, bands, transition_cpd))
+        self._outer = []
+        start = fine.size
+        for lo, hi in _gaps(bands, fmax):
+            inside = (grid2 > lo) & (grid2 < hi) & (w2 > 0)
+            a_, b_ = (lo, hi) if lo > 0 else (-hi, -lo)  # |f| range of the stretch
+            sign = 1.0 if lo > 0 else -1.0
+            count = max(4, int(np.ceil(np.log(b_ / a_) / log_node_step)) + 1)
+            nodes = np.geomspace(a_, b_, count)
+            basis = make_interp_spline(np.log(nodes), np.eye(count), k=3)(np.log(np.abs(grid2[inside])))
+            kernels.append(self._kernel_columns(grid2[inside], w2[inside], chunk, basis=basis))
+            nodes_all.append(sign * nodes)
+            if np.isclose(b_, fmax):  # the outermost stretch of one side: the tail continues from its last nodes
+                self._outer.append((start + count - 1, start + count - 2))
+            start += count
+        self._tail = (fmax, float(np.log(nodes[-1] / nodes[-2]))) if self._outer else None
+        self.kernel = np.ascontiguousarray(np.concatenate(kernels, axis=1))  # (band, nodes), dt included
+        self.nodes_cpd = np.concatenate(nodes_all)
+
+    @staticmethod
+    def _fine_bands(fine_bands_cpd, inertial_frequency_cpd, dt):
+        """Where the spectrum may have structure finer than a spline in log|f| resolves (see __init__)."""
+        if fine_bands_cpd is not None:
+            bands = [(float(lo), float(hi)) for lo, hi in fine_bands_cpd]
+            if any(not hi > lo for lo, hi in bands):
+                raise ValueError("each fine band must be (low, high) with low < high, cpd")
+            return [*bands, (-_LOW_BAND_CPD, _LOW_BAND_CPD)]
+        if inertial_frequency_cpd is None:
+            return [(-_INERTIAL_MAX_CPD - _PEAK_MARGIN_CPD, _INERTIAL_MAX_CPD + _PEAK_MARGIN_CPD)]
+        lo, hi = Inertial().bounds(FitContext(dt_days=dt, inertial_frequency_cpd=float(inertial_frequency_cpd)))[1]
+        return [(-_LOW_BAND_CPD, _LOW_BAND_CPD), (lo - _PEAK_MARGIN_CPD, hi + _PEAK_MARGIN_CPD)]
+
+    # ------------------------------------------------------------------------------------------------
+    def _kernel_columns(self, f, weight, chunk, basis=None):
+        """``dt * weight_q * K_k(f_q)`` (band x points), or integrated against ``basis`` (band x nodes)."""
+        nb = self.band_index.size
+        out = np.zeros((nb, f.size if basis is None else basis.shape[1]))
+        h = self.taper[None, :].astype(np.complex64)
+        valid = self.valid
+        s = self._s
+        for c0 in range(0, f.size, chunk):
+            fc = f[c0:c0 + chunk]
+            twopif = 2 * np.pi * fc
+            zero = fc == 0
+            # sum_j W_nj (exp(2 pi i f s_j) - 1) / (2 pi i f): the rows of W sum to zero, so the -1 drops out
+            # and the 1/(2 pi f)^2 goes into the weight; at f = 0 the limit sum_j W_nj s_j
+            e = np.exp(1j * np.outer(s, twopif))
+            if zero.any():
+                e[:, zero] = s[:, None]
+            q = np.asarray(self.weights @ e)  # (n, chunk)
+            if self.demean:
+                q -= q[valid].mean(axis=0)
+            q = q.T.astype(np.complex64, order="C")  # single precision from here: K to ~1e-7
+            q *= h  # zero at missing samples
+            spec = scipy.fft.fft(q, axis=-1, overwrite_x=True)[:, self.band_index]
+            k = (spec.real.astype(float) ** 2 + spec.imag.astype(float) ** 2).T  # (band, chunk)
+            with np.errstate(divide="ignore"):
+                scale = np.where(zero, 1.0, 1.0 / np.where(zero, 1.0, twopif) ** 2)
+            k *= self.dt_days * weight[c0:c0 + chunk] * scale
+            if basis is None:
+                out[:, c0:c0 + chunk] = k
+            else:
+                out += k @ basis[c0:c0 + chunk]
+        return out
+
+    # ------------------------------------------------------------------------------------------------
+    def parameters(self, family: ModelFamily) -> tuple[Parameter, ...]:
+        """The parameters ``theta`` holds for :meth:`expected_in_band`: the family's, then
+        ``position_noise`` (m) when the noise is fitted."""
+        return tuple(family.parameters) + ((POSITION_NOISE,) if self.noise == "fitted" else ())
+
+    def _tail_integral(self, s_last, s_prev):
+        """``int_{F}^{inf} S / (2 pi f)^2 df`` for ``S`` continued as a power law, and its derivatives in
+        ``s_last = S(F)`` and ``s_prev = S(F / r)`` (arrays over columns)."""
+        fmax, log_ratio = self._tail
+        s_last = max(float(s_last), 1e-300)
+        s_prev = max(float(s_prev), 1e-300)
+        p = np.log(s_prev / s_last) / log_ratio  # S ~ f^(-p) beyond the last node
+        c = 1.0 / (4 * np.pi**2 * fmax)  # int_F^inf (f/F)^(-p) / (2 pi f)^2 df = c / (p + 1)
+        if p <= 0.0:  # not red at the top: a flat continuation (bounded, and the tail is negligible then)
+            return c * s_last, c, 0.0
+        val = c * s_last / (p + 1)
+        return val, val / s_last * (1 + 1 / ((p + 1) * log_ratio)), -val / ((p + 1) * log_ratio * s_prev)
+
+    def _density_stack(self, family, theta, context, jacobian):
+        """``S`` at the nodes and, optionally, ``dS/dx`` (rows) by central differences per component."""
+        nodes = self.nodes_cpd
+        dens = np.zeros(nodes.size)
+        jac = np.zeros((len(theta), nodes.size)) if jacobian else None
+        for comp, sl in family.components():
+            th = theta[sl]
+            dens += np.real(comp.spectral_density(th, nodes, context))
+            if not jacobian:
+                continue
+            # the steps may leave the bounds by 1e-5 (relative): use the family's unchecked density if it has one
+            density = getattr(comp, "_spectral_density", comp.spectral_density)
+            for j, par in enumerate(comp.parameters):
+                tp, tm = th.copy(), th.copy()
+                if par.scale == "log":
+                    tp[j] *= np.exp(_FD_STEP)
+                    tm[j] *= np.exp(-_FD_STEP)
+                    step = _FD_STEP
+                else:
+                    step = _FD_STEP * max(1.0, abs(th[j]))
+                    tp[j] += step
+                    tm[j] -= step
+                jac[sl.start + j] = np.real(density(tp, nodes, context) - density(tm, nodes, context)) / (2 * step)
+        return dens, jac
+
+    def expected_in_band(self, family: ModelFamily, theta, context: FitContext, band_index=None,
+                         jacobian: bool = True):
+        """``E[I_k]`` over the band and ``dE/dx`` for the optimiser's coordinates, in band order.
+
+        Parameters
+        ----------
+        family : ModelFamily
+            The ocean model (not wrapped in an observation model: differencing and noise are here).
+        theta : array_like
+            Natural units, in the order of :meth:`parameters` (the family's, then ``position_noise`` when
+            the noise is fitted).
+        context : FitContext
+            Passed to ``family.spectral_density``.
+        band_index : array_like of int, optional
+            Must equal the band the operator was built for (``None`` for that band).
+        jacobian : bool
+            Also return ``dE/dx`` (``x = log(theta)`` for log-scale parameters, ``theta`` otherwise).
+
+        Returns
+        -------
+        e : ndarray (band,)
+            ``E[I_k]``, (m/s)^2 per cpd, at ``freq_cpd`` (FFT order of ``band_index``).
+        de : ndarray (parameters, band)
+            Its derivatives (only when ``jacobian``).
+        """
+        if band_index is not None and not np.array_equal(np.asarray(band_index), self.band_index):
+            raise ValueError("band_index differs from the band this operator was built for")
+        theta = np.asarray(theta, float)
+        p_model = len(family.parameters)
+        p_all = p_model + (self.noise == "fitted")
+        if theta.shape != (p_all,):
+            raise ValueError(f"theta must have {p_all} values ({', '.join(q.name for q in self.parameters(family))})")
+        dens, jac = self._density_stack(family, theta, context, jacobian)
+        cols = dens[:, None] if jac is None else np.concatenate([dens[:, None], jac[:p_model].T], axis=1)
+        out = self.kernel @ cols  # (band, 1 + p_model)
+        if self._tail is not None:
+            tot = np.zeros(cols.shape[1])
+            for last, prev in self._outer:
+                val, d_last, d_prev = self._tail_integral(dens[last], dens[prev])
+                tot[0] += val
+                if jac is not None:
+                    tot[1:] += d_last * jac[:p_model, last] + d_prev * jac[:p_model, prev]
+            out += np.outer(self.dt_days * self._diag, tot)
+        e = out[:, 0].copy()
+        de = np.zeros((p_all, e.size)) if jacobian else None
+        if jacobian:
+            de[:p_model] = out[:, 1:].T
+        if self.noise == "fixed":
+            e += self.fixed_noise
+        elif self.noise == "fitted":
+            en = theta[-1] ** 2 * self.noise_kernel
+            e += en
+            if jacobian:
+                de[-1] = 2.0 * en  # d/d log(sigma)
+        return (e, de) if jacobian else e
+
+    def expected(self, family: ModelFamily, theta, context: FitContext) -> np.ndarray:
+        """``E[I_k]`` over the band without derivatives."""
+        return self.expected_in_band(family, theta, context, jacobian=False)
