@@ -1,10 +1,18 @@
-"""The drifting-float explorer: a datashaded track map linked to the rotary spectrum and live fit of the
-selected track.
+"""The drifting-float explorer: a datashaded track map linked to the rotary spectrum and the fit of the
+selected track's windows.
 
-Reading guide: :class:`~driftspec.app.state.ExplorerState` holds every choice the user makes. The
-:class:`Explorer` holds the data and draws small views, each depending on the state parameters it
-needs (``@param.depends``). Clicking the map sets ``state.track``; a box selection sets
-``state.region``; moving a control changes a state parameter, and the views that depend on it redraw.
+Reading guide
+-------------
+* :class:`~driftspec.app.state.ExplorerState` holds every choice the user makes; ``state.SETTINGS`` is the one
+  list of settings from which the sidebar widgets, the URL and the fit key derive.
+* :class:`Explorer` holds the job state: the current window's fit (``current_fit``), the track's fits
+  (``track_fits``), the fits of every window (``all_fits``), status and progress. One watcher
+  (``_on_settings``) reacts to a changed setting: it computes the new fit key, shows a cached fit or starts a
+  background job (:mod:`driftspec.app.jobs`), and drops whatever an older job returns.
+* One :class:`panel.viewable.Viewer` per panel (track map, velocity, spectrum, fit table, track summary,
+  parameter map, dispersion), each depending by name on the parameters it draws.
+* Map geometry (projection, degree ticks, graticule, land, bins) lives in :mod:`driftspec.app.geo`; the shared,
+  read-only data of a file in :class:`~driftspec.app.trackdata.TrackData`.
 """
 
 from __future__ import annotations
@@ -12,7 +20,6 @@ from __future__ import annotations
 import threading
 import time
 
-import cartopy.crs as ccrs
 import datashader as dsh
 import holoviews as hv
 import numpy as np
@@ -20,22 +27,22 @@ import pandas as pd
 import panel as pn
 import param
 from holoviews.operation.datashader import dynspread, rasterize
-from scipy.spatial import cKDTree
 
 from driftspec.analysis.conventions import tidal_frequencies_cpd
 from driftspec.analysis.fitting import FitSpec, fit_window
-from driftspec.analysis.fitting.batch import window_rows
 from driftspec.analysis.models import get_family
 from driftspec.analysis.regional import default_params, grid_fits
-from driftspec.analysis.runs import circular_mean_lon, run_bounds
 from driftspec.analysis.spectral.periodogram import multitaper_spectrum, rotary_periodogram
 from driftspec.analysis.tracks.pipeline import load_velocities
 from driftspec.analysis.tracks.windows import iter_windows
 
-from .coastline import shoreline_paths
-from .state import URL_PARAMS, ExplorerState
+from .geo import bin_quads, degree_ticks, lat_label, lon_label
+from .jobs import Job
+from .state import ANALYSIS, FIT_PARAMS, URL_PARAMS, ExplorerState, parse_query, widgets_for
+from .trackdata import TrackData
 
 hv.extension("bokeh", logo=False)
+pn.extension("tabulator", inline=True)
 
 CAUTION = (
     "**A statistical description of observed currents, not a drift forecast.** The fits describe how "
@@ -44,112 +51,83 @@ CAUTION = (
 )
 #: colours of our own: clockwise rust, counterclockwise teal, model ink
 COLOURS = {"cw": "#b5522b", "ccw": "#1f7a7a", "model": "#20203a", "band": "#9aa0b4", "track": "#ff2d7a",
-           "tide": "#7a6a00", "inertial": "#6a2fb5"}
+           "tide": "#7a6a00", "inertial": "#6a2fb5", "land": "#d9d4c7", "coast": "#6b6b6b", "grid": "#8c96a0"}
 MIN_COVERAGE = 0.5
-#: the state parameters a window fit depends on
-FIT_SETTINGS = ("state.track", "state.window", "state.window_days", "state.overlap", "state.model", "state.estimator",
-                "state.max_freq", "state.auto_band", "state.observation", "state.taper", "state.inertial")
+
+
+def spec_of(st: ExplorerState) -> FitSpec:
+    """The fit specification of a state's settings."""
+    return FitSpec(models=(st.model,), estimator=st.estimator, band="auto" if st.auto_band else st.max_freq,
+                   observation=st.observation, taper=st.taper, inertial_frequency=st.inertial)
 
 
 class Explorer(param.Parameterized):
-    """The dashboard for one data set.
+    """The dashboard for one data set: state, jobs and results.
 
     Parameters
     ----------
-    velocities : pandas.DataFrame
-        Gridded velocities (``load_velocities`` output).
+    velocities : pandas.DataFrame or TrackData
+        Gridded velocities (``load_velocities`` output), or a prepared, shared :class:`TrackData`.
     fits : pandas.DataFrame, optional
         A fits table for the parameter map and for colouring the tracks.
     state : ExplorerState, optional
     title : str
     """
 
-    progress = param.Integer(default=0, bounds=(0, 100))
-    status_text = param.String(default="")
-    track_fits = param.DataFrame(default=None, allow_None=True)
-    all_fits = param.DataFrame(default=None, allow_None=True)
-    refit_ms = param.Number(default=np.nan)
+    current_window = param.Parameter(default=None, constant=True, doc="The current Window")
+    current_fit = param.Parameter(default=None, constant=True,
+                                  doc="FitResult of the current window under the current settings (None while "
+                                      "it is being fitted); ``current_fit.window_start`` names the window")
+    track_fits = param.DataFrame(default=None, allow_None=True, constant=True,
+                                 doc="Fits-table rows of every window of the selected track, current settings")
+    all_fits = param.DataFrame(default=None, allow_None=True, constant=True,
+                               doc="Fits of every window (first look, --fits, or Fit every window)")
+    progress = param.Integer(default=0, bounds=(0, 100), constant=True)
+    status_text = param.String(default="", constant=True)
+    message = param.String(default="", constant=True, doc="One-line notice (e.g. rejected URL values)")
+    refit_ms = param.Number(default=np.nan, constant=True, doc="Time from a change to its fit on screen, ms")
     dispersion = param.Parameter(default=None, doc="Observed dispersion in the region (DispersionResult)")
 
-    def __init__(self, velocities: pd.DataFrame, fits: pd.DataFrame | None = None,
-                 state: ExplorerState | None = None, title: str = "driftspec", **params):
+    def __init__(self, velocities, fits: pd.DataFrame | None = None, state: ExplorerState | None = None,
+                 title: str = "driftspec", first_look: bool = False, **params):
         super().__init__(**params)
         self.state = state or ExplorerState()
         self.title = title
-        vel = velocities.sort_values(["id", "segment", "time"], kind="stable").reset_index(drop=True)
-        self.vel = vel
-        self._prepare_points()
+        self.data = velocities if isinstance(velocities, TrackData) else TrackData(velocities)
+        self.vel = self.data.vel
+        self.track_ids = self.data.track_ids
+        self.doc = pn.state.curdoc if pn.state.curdoc is not None and pn.state.curdoc.session_context else None
         self._window_cache: dict = {}
         self._fit_cache: dict = {}
-        self._job = None
-        self._cancel = threading.Event()
+        self._jobs: dict[str, Job | None] = {"current": None, "track": None, "all": None}
+        self._job_started: dict[str, float] = {}
+        self._cancel = threading.Event()  # set: this explorer starts no background work (scripts, tests)
+        self._user_fits = False
+        self._first_look = first_look
         if fits is not None and len(fits):
-            self.all_fits = fits
+            self._set(all_fits=fits)
+            self._user_fits = True
         self._refresh_param_choices()
         if not self.state.track or self.state.track not in self.track_ids:
             self.state.track = self.track_ids[0] if len(self.track_ids) else ""
-        self.tap = self.bounds = None  # made with the map (map_view)
-        self.pointer = hv.streams.PointerXY(x=np.nan, y=np.nan)
-        self.state.param.watch(self._on_settings, ["window_days", "overlap", "model", "estimator", "observation",
-                                                    "auto_band", "max_freq", "taper", "inertial", "track"])
+        self.state.param.watch(self._on_settings, ["track", "window", *FIT_PARAMS])
+        self._started = False
+
+    def _set(self, **values):
+        with param.edit_constant(self):
+            self.param.update(**values)
 
     # ------------------------------------------------------------------ data
-    def _prepare_points(self):
-        v = self.vel
-        ok = v["valid_velocity"].to_numpy() if "valid_velocity" in v else np.isfinite(v["u"].to_numpy())
-        lon, lat = v["lon"].to_numpy(float), v["lat"].to_numpy(float)
-        self.central_lon = circular_mean_lon(lon) if len(lon) else 0.0
-        self.crs = ccrs.Mercator(central_longitude=self.central_lon)
-        xy = self.crs.transform_points(ccrs.PlateCarree(), lon, np.clip(lat, -85, 85))[:, :2]
-        codes, ids = pd.factorize(v["id"].astype(str), sort=True)
-        self.track_ids = list(ids)
-        t_ns = v["time"].to_numpy().astype("datetime64[ns]").astype(np.int64)
-        self.t0 = int(t_ns.min()) if len(t_ns) else 0
-        self.points = pd.DataFrame({
-            "x": xy[:, 0], "y": xy[:, 1],
-            "speed": np.hypot(v["u"].to_numpy(float), v["v"].to_numpy(float)),
-            "time": (t_ns - self.t0) / 86400e9, "track_code": codes.astype(np.int32), "t_ns": t_ns,
-        })[ok].reset_index(drop=True)
-        self.tree = cKDTree(self.points[["x", "y"]].to_numpy()) if len(self.points) else None
-        starts, stops = run_bounds(codes)
-        self.slices = {self.track_ids[codes[s]]: (s, e) for s, e in zip(starts, stops)}
-        self.time_range = (pd.Timestamp(t_ns.min()), pd.Timestamp(t_ns.max())) if len(t_ns) else None
-        self.date_range = pn.widgets.DatetimeRangeSlider(
-            name="Dates shown on the map", start=self.time_range[0], end=self.time_range[1],
-            value=self.time_range, step=86400000) if self.time_range else None
-
     def _refresh_param_choices(self):
         fits = self.all_fits
-        params = ["matern_alpha"]
-        if fits is not None and len(fits):
-            params = default_params(fits)
-            self._attach_fit_colours(fits)
+        params = default_params(fits) if fits is not None and len(fits) else ["matern_alpha"]
         self.state.param.map_param.objects = params
         if self.state.map_param not in params:
             self.state.map_param = params[0]
-        self.state.param.color_by.objects = ["speed", "time", *[p for p in params if p in self.points]]
-
-    def _attach_fit_colours(self, fits):
-        """Colour each map sample by the fitted value of the window that holds it (latest window wins)."""
-        ok = fits[fits["status"] == "ok"]
-        code = {tid: k for k, tid in enumerate(self.track_ids)}
-        tc = self.points["track_code"].to_numpy()
-        tt = self.points["t_ns"].to_numpy()
-        for p in default_params(fits):
-            col = np.full(len(self.points), np.nan)
-            for row in ok[["track_id", "window_start", "window_end", p]].itertuples(index=False):
-                k = code.get(str(row[0]))
-                if k is None:
-                    continue
-                s, e = np.searchsorted(tc, [k, k + 1])
-                a, b = np.searchsorted(tt[s:e], [pd.Timestamp(row[1]).value, pd.Timestamp(row[2]).value + 1])
-                col[s + a:s + b] = row[3]
-            self.points[p] = col
 
     def track_velocity(self, track_id: str) -> pd.DataFrame:
         """Rows of the velocity table for one track (the table is sorted by track)."""
-        s, e = self.slices.get(track_id, (0, 0))
-        return self.vel.iloc[s:e]
+        return self.data.track_velocity(track_id)
 
     def windows(self, track_id=None):
         st = self.state
@@ -162,54 +140,178 @@ class Explorer(param.Parameterized):
     def fit_spec(self):
         """The :class:`~driftspec.analysis.fitting.spec.FitSpec` of the current settings: the same object the
         command line builds, so a window fitted here and by ``driftspec fit`` gives the same numbers."""
-        st = self.state
-        return FitSpec(models=(st.model,), estimator=st.estimator, band="auto" if st.auto_band else st.max_freq,
-                       observation=st.observation, taper=st.taper, inertial_frequency=st.inertial)
+        return spec_of(self.state)
 
-    def current_window(self):
+    def current(self):
         ws = self.windows()
-        if not ws:
-            return None
-        return ws[min(self.state.window, len(ws) - 1)]
+        return ws[min(self.state.window, len(ws) - 1)] if ws else None
+
+    def fit_key(self, w, spec=None):
+        """What a window's fit depends on: the window (track, start, length) and the fit specification."""
+        return (w.track_id, w.start, w.n_samples, (spec or self.fit_spec()).to_json())
+
+    def track_key(self):
+        st = self.state
+        return (st.track, st.window_days, st.overlap, self.fit_spec().to_json())
 
     def fit_current(self):
-        """Fit (or fetch from cache) the current window with the current settings."""
-        w = self.current_window()
+        """Fit (or fetch from cache) the current window with the current settings, here and now (blocking;
+        for scripts and tests: the page fits in the background)."""
+        w = self.current()
         if w is None:
             return None, None
-        spec = self.fit_spec()
-        key = (w.track_id, w.start, w.n_samples, spec.to_json())
+        key = self.fit_key(w)
         if key not in self._fit_cache:
-            t0 = time.perf_counter()
-            self._fit_cache[key] = fit_window(w, spec)[0]
-            self.refit_ms = 1e3 * (time.perf_counter() - t0)
-        return w, self._fit_cache[key]
+            self._fit_cache[key] = fit_window(w, self.fit_spec())[0]
+        res = self._fit_cache[key]
+        self._set(current_window=w, current_fit=res)
+        return w, res
 
-    # ------------------------------------------------------------------ events
-    def _on_tap(self, x=None, y=None, **_):
-        if self.tree is None or x is None or not np.isfinite(x):
+    # ------------------------------------------------------------------ jobs
+    def start(self):
+        """Begin background work (first fit, track fits, the first look); called when the page is built."""
+        if self._started:
             return
-        dist, i = self.tree.query([x, y])
-        xr = self._view_width()
-        if dist > 0.03 * xr:
+        self._started = True
+        self.data.subscribe(self)
+        if self._first_look and not self._cancel.is_set():
+            job = self.data.start_first_look(self.windows, spec_of(ExplorerState()))
+            if job is not None:
+                self.on_first_look(job)
+        self._on_settings()
+
+    def _launch(self, slot, windows, kind, key, label):
+        old = self._jobs.get(slot)
+        if old is not None:
+            old.cancel()
+        if self._cancel.is_set() or not windows:
+            self._jobs[slot] = None
+            return None
+        job = Job(windows, key[-1], kind, doc=self.doc, on_update=self._on_job, label=label, key=key,
+                  own_process=self.state.estimator == "exact")
+        self._jobs[slot] = job
+        self._job_started[slot] = time.perf_counter()
+        return job.start()
+
+    def _on_settings(self, *events):
+        """A setting changed: show what is known for the new settings at once, fit the rest in the background."""
+        if not self._started and not events:
             return
-        tid = self.track_ids[int(self.points["track_code"].iat[i])]
+        names = {e.name for e in events}
+        w = self.current()
+        if w is None:
+            self._set(current_window=None, current_fit=None)
+        else:
+            key = self.fit_key(w)
+            cached = self._fit_cache.get(key)
+            self._set(current_window=w, current_fit=cached)
+            job = self._jobs["current"]
+            if cached is None and (job is None or job.key != key or job.status in ("cancelled", "failed")):
+                self._launch("current", [w], "one", key, "current window")
+            elif cached is not None and job is not None:
+                job.cancel()
+        if names != {"window"}:
+            key = self.track_key()
+            job = self._jobs["track"]
+            if job is None or job.key != key:
+                self._set(track_fits=None)
+                self._launch("track", self.windows(), "rows", key, "whole track")
+        self._update_status()
+
+    def _on_job(self, job):
+        """A job reported (on this session's loop). Results of a job that is no longer current are dropped."""
+        slot = next((s for s, j in self._jobs.items() if j is job), None)
+        if slot is None:
+            return  # superseded: stale
+        if job.status == "done" and job.result is not None:
+            if slot == "current":
+                res = job.result[0]
+                self._fit_cache[job.key] = res
+                if self.current() is not None and self.fit_key(self.current()) == job.key:
+                    self._set(current_fit=res, refit_ms=1e3 * (time.perf_counter() - self._job_started[slot]))
+            elif slot == "track" and job.key == self.track_key():
+                self._set(track_fits=pd.DataFrame([r for rows in job.result for r in rows]))
+            elif slot == "all":
+                df = pd.DataFrame([r for rows in job.result for r in rows])
+                if len(df):
+                    self._user_fits = True
+                    self._set(all_fits=df)
+                    self._refresh_param_choices()
+            self._jobs[slot] = None
+        elif job.status in ("cancelled", "failed"):
+            self._jobs[slot] = None
+            if job.status == "failed":
+                self._set(message=f"{job.label}: {job.message}")
+        self._update_status(job)
+
+    def on_first_look(self, job):
+        """The shared first-look job reported: show its progress, and its fits when no others were chosen."""
+        if job.status == "done" and job.result is not None and not self._user_fits:
+            df = pd.DataFrame([r for rows in job.result for r in rows])
+            if len(df):
+                self._set(all_fits=df)
+                self._refresh_param_choices()
+        self._update_status(job if job.status == "running" else None)
+
+    def _update_status(self, job=None):
+        parts = []
+        for slot, label in (("current", "fitting this window"), ("track", "fitting the whole track"),
+                            ("all", "fitting every window")):
+            j = self._jobs.get(slot)
+            if j is not None:
+                parts.append(f"{label}{' (exact: minutes)' if self.state.estimator == 'exact' else ''}: "
+                             f"{j.n_done}/{j.n_total}" + _rate(j))
+        fl = self.data.first_look
+        if fl is not None and fl.status in ("queued", "running") and not self._user_fits:
+            parts.append(f"first look, every window: {fl.n_done}/{fl.n_total}" + _rate(fl))
+        if not parts and self.track_fits is not None and len(self.track_fits):
+            tf = self.track_fits
+            parts.append(f"track fitted: {int((tf['status'] == 'ok').sum())}/{len(tf)} ok")
+        lead = next((j for j in (self._jobs["all"], fl if not self._user_fits else None, self._jobs["track"])
+                     if j is not None and j.n_total), None)
+        pct = int(100 * lead.n_done / lead.n_total) if lead is not None and lead.status != "done" else 100
+        self._set(status_text=" · ".join(parts), progress=pct)
+
+    def fit_all(self, *_):
+        ws = [w for tid in self.tracks_in_region() for w in self.windows(tid)]
+        self._launch("all", ws, "rows", ("all", self.fit_spec().to_json()), "every window")
+        self._update_status()
+
+    def cancel(self, *_):
+        for slot, job in self._jobs.items():
+            if job is not None:
+                job.cancel()
+                self._jobs[slot] = None
+        self._set(status_text="cancelled")
+
+    def wait(self, timeout=120.0):
+        """Block until the background jobs finish (for notebooks and scripts)."""
+        deadline = time.time() + timeout
+        for job in list(self._jobs.values()):
+            if job is not None:
+                job.wait(max(deadline - time.time(), 0))
+        time.sleep(0.05)
+
+    # ------------------------------------------------------------------ selection
+    def select_at(self, x, y, tolerance=0.03):
+        """Select the track nearest to a projected map position (a click)."""
+        tree = self.data.tree
+        if tree is None or x is None or not np.isfinite(x):
+            return
+        dist, i = tree.query([x, y])
+        (x0, x1), _ = self.data.extent
+        if dist > tolerance * (x1 - x0):
+            return
+        tid = self.track_ids[int(self.data.points["track_code"].iat[i])]
         if tid != self.state.track:
             self.state.param.update(track=tid, window=0)
 
-    def _view_width(self):
-        x = self.points["x"]
-        return float(x.max() - x.min()) if len(x) else 1.0
-
-    def _on_bounds(self, bounds=None, **_):
+    def select_box(self, bounds):
         if not bounds or bounds[0] == bounds[2] or bounds[1] == bounds[3]:
             return
         x0, y0, x1, y1 = bounds
-        ll = ccrs.PlateCarree().transform_points(self.crs, np.array([x0, x1]), np.array([y0, y1]))
-        self.state.region = [float(ll[0, 0]), float(ll[0, 1]), float(ll[1, 0]), float(ll[1, 1])]
-
-    def _on_settings(self, *events):
-        self._start_track_job()
+        lon, lat = self.data.proj.inverse(np.array([x0, x1]), np.array([y0, y1]))
+        self.state.region = [float(lon[0]), float(lat[0]), float(lon[1]), float(lat[1])]
 
     def tracks_in_region(self):
         r = self.state.region
@@ -222,214 +324,304 @@ class Explorer(param.Parameterized):
                   & (lon >= min(lon0, lon1)) & (lon <= max(lon0, lon1)))
         return sorted(set(v.loc[inside, "id"].astype(str)))
 
-    # ------------------------------------------------------------------ background fits
-    def _run_job(self, windows, target, cancel):
-        rows = []
-        spec = self.fit_spec()
-        for k, w in enumerate(windows):
-            if cancel.is_set():
-                break
-            rows.extend(window_rows(w, spec))
-            self._job_progress = int(100 * (k + 1) / max(len(windows), 1))
-        self._job_result = (target, pd.DataFrame(rows), cancel.is_set())
-
-    def _launch(self, windows, target, label):
-        self._cancel.set()
-        self._cancel = threading.Event()
-        self._job_progress = 0
-        self._job_result = None
-        self.status_text = f"{label}: {len(windows)} windows"
-        self._job = threading.Thread(target=self._run_job, args=(windows, target, self._cancel), daemon=True)
-        self._job.start()
-
-    def _start_track_job(self):
+    # ------------------------------------------------------------------ URL
+    def apply_query(self, args: dict) -> None:
+        """Apply URL values (strings); invalid ones are named in ``message`` and none of them is applied."""
+        good, bad = parse_query(self.state, args)
+        track = good.get("track")
+        if track is not None and track not in self.track_ids:
+            bad.append(f"track={track[:40]} (no such track)")
+            good.pop("track")
+        if good:
+            self.state.param.update(**good)
         ws = self.windows()
-        if ws:
-            self._launch(ws, "track", "fitting the whole track")
+        if "window" in good and ws and self.state.window >= len(ws):
+            bad.append(f"window={good['window']} (this track has {len(ws)} windows)")
+            self.state.window = len(ws) - 1
+        if bad:
+            self._set(message="Ignored invalid link values: " + ", ".join(bad))
 
-    def fit_all(self, *_):
-        ws = [w for tid in self.tracks_in_region() for w in self.windows(tid)]
-        self._launch(ws, "all", "fitting all windows in the region")
+    def url_query(self) -> str:
+        from urllib.parse import urlencode
 
-    def cancel(self, *_):
-        self._cancel.set()
-        self.status_text = "cancelled"
+        vals = {}
+        for p in URL_PARAMS:
+            v = getattr(self.state, p)
+            if isinstance(v, list):
+                v = ",".join(f"{x:.4f}" for x in v)
+            elif isinstance(v, bool):
+                v = "true" if v else "false"
+            vals[p] = str(v)
+        return urlencode(vals)
 
-    def poll(self):
-        """Copy progress and results of the background job into parameters (runs on the server's loop)."""
-        if self._job is None:
-            return
-        self.progress = getattr(self, "_job_progress", 0)
-        res = getattr(self, "_job_result", None)
-        if res is None:
-            return
-        target, df, cancelled = res
-        self._job_result = None
-        self._job = None
-        if target == "track":
-            self.track_fits = df
-            self.status_text = f"track fitted: {int((df['status'] == 'ok').sum()) if len(df) else 0}/{len(df)} ok"
+    def _fits_bytes(self, fmt):
+        import io
+
+        df = self.all_fits if self.all_fits is not None else self.track_fits
+        df = df if df is not None else pd.DataFrame()
+        buf = io.BytesIO()
+        if fmt == "csv":
+            buf.write(df.to_csv(index=False).encode())
         else:
-            if len(df):
-                self.all_fits = df
-                self._refresh_param_choices()
-            self.status_text = ("cancelled after " if cancelled else "done: ") + f"{len(df)} fits"
-        self.progress = 100
+            df.to_parquet(buf, index=False)
+        buf.seek(0)
+        return buf
 
-    def wait(self, timeout=60.0):
-        """Block until the background job finishes (for notebooks and scripts)."""
-        if self._job is not None:
-            self._job.join(timeout)
-        self.poll()
+    def compute_dispersion(self, *_):
+        from driftspec.analysis.regional.dispersion import single_particle_dispersion
 
-    # ------------------------------------------------------------------ views
-    def _ink(self):
-        """Colour of model lines: dark on the light theme, light on the dark one."""
+        try:
+            self.dispersion = single_particle_dispersion(self.vel, self.state.region or None, max_lag_days=20,
+                                                         plateau_lags=(8, 16), n_boot=100)
+            self._set(status_text=f"dispersion: {self.dispersion.n_tracks} track segments")
+        except ValueError as exc:
+            self.dispersion = None
+            self._set(status_text=f"dispersion: {exc}")
+
+    # ------------------------------------------------------------------ page
+    def panel(self):
+        """The whole dashboard as one Panel layout (for notebooks)."""
+        self.start()
+        return pn.Row(pn.Column(Controls(ex=self), width=300), self.main_area(), sizing_mode="stretch_width")
+
+    def main_area(self):
+        bar = pn.indicators.Progress(value=self.param.progress, max=100, sizing_mode="stretch_width", height=14,
+                                     name="progress")
+        status = pn.pane.Markdown(self.param.status_text, css_classes=["ds-status"])
+        notice = pn.pane.Markdown(self.param.message, css_classes=["ds-message"], styles={"color": "#b5522b"})
+        cancel = pn.widgets.Button(name="Cancel", button_type="warning", width=90)
+        cancel.on_click(self.cancel)
+        explore = pn.Column(TrackMap(ex=self), Summary(ex=self), VelocityView(ex=self),
+                            pn.Row(SpectrumView(ex=self), pn.Column(FitTable(ex=self), width=470),
+                                   sizing_mode="stretch_width"),
+                            sizing_mode="stretch_width", name="Explore")
+        tabs = pn.Tabs(explore, ("Track summary", TrackSummary(ex=self)), ("Parameter map", ParameterMap(ex=self)),
+                       ("Dispersion", DispersionView(ex=self)), ("About", about()), dynamic=True,
+                       sizing_mode="stretch_width")
+        return pn.Column(pn.Row(bar, cancel, sizing_mode="stretch_width"), status, notice, tabs,
+                         sizing_mode="stretch_width")
+
+    def template(self):
+        """The dashboard in a page template (for ``panel serve`` and ``driftspec serve``)."""
+        dark = self.state.theme == "dark"
+        tpl = OfflineTemplate(
+            title=self.title, sidebar=[Controls(ex=self)], main=[self.main_area()],
+            header_background="#0d1620" if dark else "#1d2b3a", sidebar_width=320,
+            theme="dark" if dark else "default", raw_css=[PRESENTATION_CSS])
+        self.start()
+        return tpl
+
+    def sync_url(self):
+        """Write the state to the page URL on every change (reading it is :meth:`apply_query`)."""
+        loc = pn.state.location
+        if loc is None:
+            return
+
+        def write(*_):
+            loc.search = "?" + self.url_query()
+        self.state.param.watch(write, list(URL_PARAMS))
+
+    def servable(self, title=None):
+        return self.template().servable(title=title or self.title)
+
+    def _repr_mimebundle_(self, include=None, exclude=None):
+        return self.panel()._repr_mimebundle_(include, exclude)
+
+
+def _rate(job) -> str:
+    if job.n_done and np.isfinite(job.rate):
+        return f" · {job.rate:.1f} windows/s · {job.eta_s:.0f} s left"
+    return ""
+
+
+# ====================================================================== views
+class View(pn.viewable.Viewer):
+    """A panel of the page drawing from one Explorer."""
+
+    ex = param.ClassSelector(class_=Explorer)
+    state = param.ClassSelector(class_=ExplorerState)
+
+    def __init__(self, **params):
+        super().__init__(**params)
+        if self.state is None:
+            self.state = self.ex.state
+
+    def ink(self):
         return "#e6e6f0" if self.state.theme == "dark" else COLOURS["model"]
 
-    def _fontscale(self):
+    def fontscale(self):
         return 1.8 if self.state.presentation else 1.0
 
-    def _map_points(self, color_by, date_range):
-        pts = self.points
-        if date_range is not None and self.time_range is not None:
+
+def geography_layers(data: TrackData, labels: bool):
+    """Land, shoreline and graticule of a data set's map, and the axis options putting degrees on the axes."""
+    land, lines, glabels = data.geography
+    gap = np.full((1, 2), np.nan)
+    land_el = hv.Polygons([{"x": r[:, 0], "y": r[:, 1]} for r in land], kdims=["x", "y"]).opts(
+        color=COLOURS["land"], line_color=COLOURS["coast"], line_width=0.7)
+    grid_xy = np.concatenate([a for p in lines for a in (p, gap)]) if lines else np.zeros((0, 2))
+    grid = hv.Path([grid_xy], kdims=["x", "y"]).opts(color=COLOURS["grid"], line_width=0.6, line_dash="dashed",
+                                                      alpha=0.8)
+    layers = [land_el, grid]
+    (x0, x1), (y0, y1) = data.extent
+    xt, yt = degree_ticks(data.proj, (x0 - (x1 - x0), x1 + (x1 - x0)), (y0 - (y1 - y0), y1 + (y1 - y0)))
+    if xt:
+        axis = dict(xticks=list(xt.items()), yticks=list(yt.items()), xlabel="longitude", ylabel="latitude")
+    else:
+        axis = dict(xaxis=None, yaxis=None)
+        if labels:
+            keep = [(x, y, t) for x, y, t in glabels if x0 <= x <= x1 and y0 <= y <= y1]
+            if keep:
+                layers.append(hv.Labels(keep, kdims=["x", "y"], vdims="text").opts(
+                    text_color="#3a4450", text_font_size="9pt"))
+    return layers, axis
+
+
+class TrackMap(View):
+    """All tracks, datashaded, over land and graticule; click selects a track, box-select sets the region."""
+
+    pointer = param.Parameter()
+
+    def __init__(self, **params):
+        super().__init__(**params)
+        self.pointer = hv.streams.PointerXY(x=np.nan, y=np.nan)
+        data = self.ex.data
+        self.date_range = pn.widgets.DatetimeRangeSlider(
+            name="Dates shown on the map", start=data.time_range[0], end=data.time_range[1],
+            value=data.time_range, step=86400000) if data.time_range else None
+
+    def _points(self, color_by, date_range):
+        pts = self.ex.data.points
+        if date_range is not None:
             lo, hi = (pd.Timestamp(d).value for d in date_range)
-            sel = (pts["t_ns"].to_numpy() >= lo) & (pts["t_ns"].to_numpy() <= hi)
-            pts = pts[sel]
+            t = pts["t_ns"].to_numpy()
+            pts = pts[(t >= lo) & (t <= hi)]
         col = color_by if color_by in pts else "speed"
         return hv.Points((pts["x"].to_numpy(), pts["y"].to_numpy(), pts[col].to_numpy()), kdims=["x", "y"],
                          vdims=[hv.Dimension("value", label=col)])
 
-    def map_view(self):
-        """The datashaded track map with shoreline, selected track and region."""
-        dr = self.date_range.param.value if self.date_range is not None else None
-        pts = hv.DynamicMap(pn.bind(self._map_points, self.state.param.color_by, dr))
-        shaded = dynspread(rasterize(pts, aggregator=dsh.mean("value"), width=900, height=560),
-                           threshold=0.6, max_px=2)
-        shaded = shaded.apply.opts(cmap=pn.bind(self._cmap, self.state.param.color_by), colorbar=True,
-                                   data_aspect=1,
-                                   cnorm="eq_hist", tools=["tap", "box_select"], active_tools=["wheel_zoom"],
-                                   default_tools=["pan", "wheel_zoom", "reset", "save"], xaxis=None, yaxis=None,
-                                   responsive=True, min_height=420, clabel=pn.bind(self._clabel,
-                                                                                   self.state.param.color_by),
-                                   bgcolor="#eef2f5")
-        # the streams are bound to the plot they listen to when it is made
-        self.tap = hv.streams.Tap(source=shaded, x=np.nan, y=np.nan)
-        self.tap.add_subscriber(self._on_tap)
-        # box select acts on glyphs that support selection: an invisible, thinned copy of the samples
-        step = max(1, len(self.points) // 5000)
-        picker = hv.Points((self.points["x"].to_numpy()[::step], self.points["y"].to_numpy()[::step]),
-                           kdims=["x", "y"]).opts(alpha=0, nonselection_alpha=0, selection_alpha=0, size=1,
-                                                  tools=["box_select"])
-        self.bounds = hv.streams.BoundsXY(source=picker, bounds=(0, 0, 0, 0))
-        self.bounds.add_subscriber(self._on_bounds)
-        self.pointer.source = shaded
-        sel = hv.DynamicMap(pn.bind(self._selected_path, self.state.param.track))
-        box = hv.DynamicMap(pn.bind(self._region_box, self.state.param.region))
-        (x0, x1), (y0, y1) = self.extent
-        return (shaded * picker * self._coast() * sel * box).opts(hv.opts.Overlay(
-            responsive=True, min_height=420, title="All tracks", xlim=(x0, x1), ylim=(y0, y1),
-            data_aspect=1))
-
-    @property
-    def extent(self):
-        """Projected x and y ranges of the data with a margin."""
-        if not len(self.points):
-            return (-1e6, 1e6), (-1e6, 1e6)
-        x, y = self.points["x"].to_numpy(), self.points["y"].to_numpy()
-        dx = max(np.ptp(x), 2e5) * 0.08
-        dy = max(np.ptp(y), 2e5) * 0.08
-        return (x.min() - dx, x.max() + dx), (y.min() - dy, y.max() + dy)
-
-    def _coast(self):
-        """Shoreline rings near the data (projected), so the map opens on the data, not the globe."""
-        (x0, x1), (y0, y1) = self.extent
-        w, h = x1 - x0, y1 - y0
-        if getattr(self, "_coast_xy", None) is None:
-            keep = [p for p in shoreline_paths(self.crs)
-                    if p[:, 0].max() > x0 - w and p[:, 0].min() < x1 + w and p[:, 1].max() > y0 - h
-                    and p[:, 1].min() < y1 + h]
-            # one NaN-separated path draws as fast as one line; hundreds of separate paths do not
-            gap = np.full((1, 2), np.nan)
-            self._coast_xy = np.concatenate([a for p in keep for a in (p, gap)]) if keep else np.zeros((0, 2))
-        return hv.Path([self._coast_xy], kdims=["x", "y"]).opts(color="#5b5b5b", line_width=0.8)
-
-    @staticmethod
-    def _cmap(color_by):
-        return "viridis" if color_by == "time" else ("fire" if color_by == "speed" else "cividis")
-
-    @staticmethod
-    def _clabel(color_by):
-        return {"speed": "speed (m/s)", "time": "days since first fix"}.get(color_by, color_by)
-
-    def _selected_path(self, track):
-        s, e = self.slices.get(track, (0, 0))
-        v = self.vel.iloc[s:e]
+    def _selected(self, track):
+        v = self.ex.track_velocity(track)
         if not len(v):
             return hv.Path([]).opts(color=COLOURS["track"])
-        xy = self.crs.transform_points(ccrs.PlateCarree(), v["lon"].to_numpy(), v["lat"].to_numpy().clip(-85, 85))
-        return hv.Path([xy[:, :2]], kdims=["x", "y"]).opts(color=COLOURS["track"], line_width=2.5)
+        x, y = self.ex.data.proj.forward(v["lon"].to_numpy(), v["lat"].to_numpy())
+        return hv.Path([np.column_stack([x, y])], kdims=["x", "y"]).opts(color=COLOURS["track"], line_width=2.5)
 
     def _region_box(self, region):
         if not region:
-            return hv.Bounds((np.nan,) * 4).opts(color="#2b5fd9", line_width=2)  # same style: only data change
+            return hv.Bounds((np.nan,) * 4).opts(color="#2b5fd9", line_width=2)
         lon0, lat0, lon1, lat1 = region
-        xy = self.crs.transform_points(ccrs.PlateCarree(), np.array([lon0, lon1]), np.array([lat0, lat1]))
-        return hv.Bounds((xy[0, 0], xy[0, 1], xy[1, 0], xy[1, 1])).opts(color="#2b5fd9", line_width=2)
+        x, y = self.ex.data.proj.forward(np.array([lon0, lon1]), np.array([lat0, lat1]))
+        return hv.Bounds((x[0], y[0], x[1], y[1])).opts(color="#2b5fd9", line_width=2)
+
+    def plot(self):
+        data, st = self.ex.data, self.state
+        dr = self.date_range.param.value if self.date_range is not None else None
+        pts = hv.DynamicMap(pn.bind(self._points, st.param.color_by, dr))
+        shaded = dynspread(rasterize(pts, aggregator=dsh.mean("value"), width=900, height=560),
+                           threshold=0.6, max_px=2)
+        shaded = shaded.apply.opts(
+            cmap=pn.bind(lambda c: "viridis" if c == "time" else "fire", st.param.color_by), colorbar=True,
+            cnorm="eq_hist", tools=["tap", "box_select"], clabel=pn.bind(
+                lambda c: {"speed": "speed (m/s)", "time": "days since first fix"}.get(c, c), st.param.color_by))
+        tap = hv.streams.Tap(source=shaded, x=np.nan, y=np.nan)
+        tap.add_subscriber(lambda x=None, y=None, **_: self.ex.select_at(x, y))
+        # hover and box select act on glyphs: an invisible, thinned copy of the samples carrying degrees
+        p = data.points
+        step = max(1, len(p) // 5000)
+        tid = np.asarray(data.track_ids, dtype=object)[p["track_code"].to_numpy()[::step]]
+        picker = hv.Points((p["x"].to_numpy()[::step], p["y"].to_numpy()[::step], p["lon"].to_numpy()[::step],
+                            p["lat"].to_numpy()[::step], tid), kdims=["x", "y"], vdims=["lon", "lat", "track"]).opts(
+            alpha=0, nonselection_alpha=0, selection_alpha=0, size=4, tools=["box_select", "hover"],
+            hover_tooltips=[("track", "@track"), ("longitude", "@lon{0.00}°"), ("latitude", "@lat{0.00}°")])
+        bounds = hv.streams.BoundsXY(source=picker, bounds=(0, 0, 0, 0))
+        bounds.add_subscriber(lambda bounds=None, **_: self.ex.select_box(bounds))
+        self.pointer.source = shaded
+        geo, axis = geography_layers(data, labels=True)
+        sel = hv.DynamicMap(pn.bind(self._selected, st.param.track))
+        box = hv.DynamicMap(pn.bind(self._region_box, st.param.region))
+        (x0, x1), (y0, y1) = data.extent
+        return hv.Overlay([geo[0], shaded, *geo[1:], picker, sel, box]).opts(hv.opts.Overlay(
+            responsive=True, min_height=440, title="All tracks", xlim=(x0, x1), ylim=(y0, y1), data_aspect=1,
+            active_tools=["wheel_zoom"], bgcolor="#eef2f5", **axis))
 
     @param.depends("pointer.x", "pointer.y")
     def readout(self):
         x, y = self.pointer.x, self.pointer.y
-        if self.tree is None or x is None or not np.isfinite(x):
+        data = self.ex.data
+        if data.tree is None or x is None or not np.isfinite(x):
             return pn.pane.Markdown("Hover over the map for track, time and value; click a track to select it.",
                                     css_classes=["ds-readout"], margin=(10, 10, 4, 10))
-        dist, i = self.tree.query([x, y])
-        p = self.points.iloc[int(i)]
-        col = self.state.color_by if self.state.color_by in self.points else "speed"
+        _, i = data.tree.query([x, y])
+        p = data.points.iloc[int(i)]
+        col = self.state.color_by if self.state.color_by in data.points else "speed"
         when = pd.Timestamp(int(p["t_ns"])).strftime("%Y-%m-%d %H:%M")
-        lonlat = ccrs.PlateCarree().transform_point(x, y, self.crs)
+        lon, lat = data.proj.inverse(np.array([x]), np.array([y]))
         return pn.pane.Markdown(
-            f"**{self.track_ids[int(p['track_code'])]}** · {when} UTC · {col} = {p[col]:.4g} · "
-            f"{lonlat[1]:.2f}°N {lonlat[0]:.2f}°E", css_classes=["ds-readout"], margin=(10, 10, 4, 10))
+            f"**{self.ex.track_ids[int(p['track_code'])]}** · {when} UTC · {col} = {p[col]:.4g} · "
+            f"{lat_label(round(float(lat[0]), 2))} {lon_label(round(float(lon[0]), 2))}",
+            css_classes=["ds-readout"], margin=(10, 10, 4, 10))
+
+    def __panel__(self):
+        items = [pn.pane.HoloViews(self.plot(), sizing_mode="stretch_width", min_height=440), self.readout]
+        return pn.Column(*items, sizing_mode="stretch_width")
+
+
+class Summary(View):
+    """One line saying what is selected (also what a browser test reads)."""
 
     @param.depends("state.track", "state.window", "state.window_days", "state.overlap", "state.model",
                    "state.estimator", "state.region")
-    def summary_view(self):
-        """One line saying what is selected (also what a browser test reads)."""
-        ws = self.windows()
-        st = self.state
-        cur = self.current_window()
+    def line(self):
+        ex, st = self.ex, self.state
+        ws = ex.windows()
+        cur = ex.current()
         when = f" ({cur.start:%Y-%m-%d} to {cur.end:%Y-%m-%d})" if cur is not None else ""
+        region = ""
+        if st.region:
+            region = (f" · region {st.region[1]:.1f}..{st.region[3]:.1f}°N, {st.region[0]:.1f}..{st.region[2]:.1f}°E"
+                      f" ({len(ex.tracks_in_region())} tracks)")
         return pn.pane.Markdown(
             f"**Track {st.track}** · window {min(st.window, max(len(ws) - 1, 0)) + 1} of {len(ws)}{when} · "
-            f"{len(ws)} windows of {st.window_days:g} days · model {st.model} · {st.estimator} estimator"
-            + (f" · region {st.region[1]:.1f}..{st.region[3]:.1f}°N, {st.region[0]:.1f}..{st.region[2]:.1f}°E "
-               f"({len(self.tracks_in_region())} tracks)" if st.region else ""),
+            f"{len(ws)} windows of {st.window_days:g} days · model {st.model} · {st.estimator} estimator" + region,
             css_classes=["ds-summary"], sizing_mode="stretch_width")
 
+    def __panel__(self):
+        return pn.panel(self.line, sizing_mode="stretch_width")
+
+
+class VelocityView(View):
     @param.depends("state.track", "state.window", "state.window_days", "state.overlap", "state.presentation")
-    def series_view(self):
-        v = self.track_velocity(self.state.track)
-        fs = self._fontscale()
+    def plot(self):
+        ex, st = self.ex, self.state
+        v = ex.track_velocity(st.track)
+        fs = self.fontscale()
         if not len(v):
             return hv.Curve([]).opts(responsive=True, height=230)
         t = v["time"]
         u = hv.Curve((t, v["u"]), "time", hv.Dimension("vel", label="velocity (m/s)"), label="u (east)")
         w = hv.Curve((t, v["v"]), "time", hv.Dimension("vel", label="velocity (m/s)"), label="v (north)")
-        ws = self.windows()
+        ws = ex.windows()
         spans = [hv.VSpan(x.start, x.end).opts(color="#c9d3e6", alpha=0.25) for x in ws]
-        cur = self.current_window()
+        cur = ex.current()
         layers = spans + ([hv.VSpan(cur.start, cur.end).opts(color="#f2c14e", alpha=0.45)] if cur else [])
         overlay = hv.Overlay([*layers, u.opts(color="#33658a"), w.opts(color="#b5522b")])
         return overlay.opts(hv.opts.Curve(line_width=1.2 * fs), hv.opts.Overlay(
             responsive=True, height=int(230 * min(fs, 1.4)), fontscale=fs, legend_position="top_left",
             xlabel="time (UTC)", ylabel="velocity (m/s)",
-            title=f"{self.state.track}: velocity; {len(ws)} windows of {self.state.window_days:g} days"))
+            title=f"{st.track}: velocity; {len(ws)} windows of {st.window_days:g} days"))
 
-    @param.depends(*FIT_SETTINGS, "state.presentation")
-    def spectrum_view(self):
-        w, res = self.fit_current()
-        fs = self._fontscale()
+    def __panel__(self):
+        return pn.panel(self.plot, sizing_mode="stretch_width")
+
+
+class SpectrumView(View):
+    """Rotary spectra of the current window (clockwise and counterclockwise), with the fitted model."""
+
+    @param.depends("ex.current_window", "ex.current_fit", "state.presentation")
+    def plot(self):
+        w, res = self.ex.current_window, self.ex.current_fit
+        fs = self.fontscale()
         if w is None:
             return pn.pane.Markdown("No window of this length with enough valid samples on this track.")
         mt = multitaper_spectrum(w.z, w.dt_seconds, time_bandwidth=3)
@@ -459,10 +651,10 @@ class Explorer(param.Parameterized):
                 om = np.argsort(fa)
                 e_side, in_side = ee[side_sel][om], inb[side_sel][om]
                 layers.append(hv.Curve((fa[om], np.where(in_side, e_side, np.nan)), kd, vd,
-                                       label="fitted model").opts(color=self._ink(), line_width=2.2 * fs,
+                                       label="fitted model").opts(color=self.ink(), line_width=2.2 * fs,
                                                                   line_dash="dashed"))
                 layers.append(hv.Curve((fa[om], np.where(in_side, np.nan, e_side)), kd, vd,
-                                       label="model beyond fitted band").opts(color=self._ink(),
+                                       label="model beyond fitted band").opts(color=self.ink(),
                                                                               line_width=1.2 * fs,
                                                                               line_dash="dotted"))
                 floor = res.noise_floor(fa[om] * sign)
@@ -470,6 +662,8 @@ class Explorer(param.Parameterized):
                     layers.append(hv.Curve((fa[om][floor > 0], floor[floor > 0]), kd, vd,
                                            label="position-noise floor").opts(color="#8a8a8a", line_width=1.5,
                                                                               line_dash="dashdot"))
+                layers.append(hv.VLine(res.prepared.freq_cpd[res.prepared.band].max() if res.prepared is not None
+                                       else 0).opts(color="#888", line_width=1))
             fc = w.inertial_frequency_cpd
             if np.sign(fc) == sign and abs(fc) > 0:
                 layers.append(hv.VLine(abs(fc)).opts(color=COLOURS["inertial"], line_width=1.5, line_dash="dotdash"))
@@ -480,12 +674,9 @@ class Explorer(param.Parameterized):
                 layers.append(hv.Text(ft, float(np.nanmin(mt.lower[mt.lower > 0])), name, halign="center",
                                       valign="bottom").opts(color=COLOURS["tide"],
                                                             text_font_size=f"{int(8 * fs)}pt"))
-            top = hv.VLine(res.prepared.freq_cpd[res.prepared.band].max() if res is not None and res.prepared
-                           is not None else 0).opts(color="#888", line_width=1)
-            layers.append(top)
-            title = "clockwise" if side == "cw" else "counterclockwise"
             pos = mt.lower[mt.lower > 0]
             ylim = (float(pos.min()) / 5 if pos.size else 1e-8, float(np.nanmax(mt.upper)) * 3)
+            title = "clockwise" if side == "cw" else "counterclockwise"
             ov = hv.Overlay(layers).opts(
                 hv.opts.Overlay(logx=True, logy=True, responsive=True, height=int(330 * min(fs, 1.3)), ylim=ylim,
                                 title=title, fontscale=fs, legend_position="bottom_left",
@@ -494,19 +685,30 @@ class Explorer(param.Parameterized):
             panels.append(pn.pane.HoloViews(ov, sizing_mode="stretch_width", min_width=300))
         return pn.Row(*panels, sizing_mode="stretch_width")
 
-    @param.depends(*FIT_SETTINGS, "refit_ms")
-    def table_view(self):
-        w, res = self.fit_current()
+    def __panel__(self):
+        return pn.Column(self.plot, sizing_mode="stretch_width")
+
+
+class FitTable(View):
+    """Parameters of the current window's fit, with status, goodness of fit and timing."""
+
+    @param.depends("ex.current_fit", "ex.current_window")
+    def table(self):
+        ex = self.ex
+        w, res = ex.current_window, ex.current_fit
+        if w is None:
+            return pn.pane.Markdown("No window to fit.")
         if res is None:
-            return pn.pane.Markdown("No fit.")
-        fam = res.family
+            slow = " (the exact estimator takes minutes; *Cancel* stops it)" if self.state.estimator == "exact" \
+                else ""
+            return pn.pane.Markdown(f"Fitting window {w.start:%Y-%m-%d} → {w.end:%Y-%m-%d}{slow} …",
+                                    css_classes=["ds-fitinfo"])
         rows = [{"parameter": p.name, "value": res.params[p.name], "std. error": res.stderr[p.name],
-                 "unit": p.unit} for p in fam.parameters]
+                 "unit": p.unit} for p in res.family.parameters] if res.family is not None else []
         rows.append({"parameter": "diffusivity", "value": res.diffusivity, "std. error": res.diffusivity_se,
                      "unit": "m2 s-1"})
         table = pn.widgets.Tabulator(pd.DataFrame(rows), show_index=False, disabled=True, layout="fit_data_fill",
-                                     formatters={"value": {"type": "money", "precision": 5},
-                                                 "std. error": {"type": "money", "precision": 5}},
+                                     formatters={"value": {"type": "plaintext"}, "std. error": {"type": "plaintext"}},
                                      sizing_mode="stretch_width", name="fit-table")
         colour = "#1f7a4a" if res.ok else "#b5522b"
         info = pn.pane.Markdown(
@@ -514,102 +716,105 @@ class Explorer(param.Parameterized):
             f"**goodness of fit** p = {res.gof_pvalue:.3f} · log L = {res.loglik:.1f} · AIC = {res.aic:.1f}  \n"
             f"window {w.start:%Y-%m-%d} → {w.end:%Y-%m-%d} · {res.n_valid}/{res.n_samples} valid · "
             f"{res.n_freq} frequencies fitted · local f = {w.inertial_frequency_cpd:.3f} cpd · "
-            f"{res.stderr_method or 'no'} standard errors · refit {self.refit_ms:.0f} ms",
+            f"{res.stderr_method or 'no'} standard errors · refit {ex.refit_ms:.0f} ms",
             css_classes=["ds-fitinfo"])
         return pn.Column(info, table, sizing_mode="stretch_width")
 
-    @param.depends("track_fits", "state.presentation")
-    def track_fits_view(self):
-        df = self.track_fits
-        if df is None or not len(df):
-            return pn.pane.Markdown("The whole track is fitted in the background after each change.")
-        ok = df[df["status"] == "ok"]
-        fs = self._fontscale()
+    def __panel__(self):
+        return pn.Column(self.table, sizing_mode="stretch_width")
+
+
+class TrackSummary(View):
+    """Fitted parameters of every window of the selected track against time, with standard errors."""
+
+    @param.depends("ex.track_fits", "state.presentation")
+    def plot(self):
+        df = self.ex.track_fits
+        if df is None:
+            return pn.pane.Markdown("Fitting the whole track in the background …", css_classes=["ds-track-summary"])
+        ok = df[df["status"] == "ok"] if len(df) else df
+        if not len(ok):
+            return pn.pane.Markdown("No ok fits on this track.", css_classes=["ds-track-summary"])
+        fs = self.fontscale()
         fam = get_family(self.state.model, self.state.inertial)
+        mid = ok["window_start"] + (ok["window_end"] - ok["window_start"]) / 2
         plots = []
         for p in [n for n in fam.names if n in ok][:3] + ["diffusivity"]:
             if p not in ok:
                 continue
-            mid = ok["window_start"] + (ok["window_end"] - ok["window_start"]) / 2
-            pts = hv.ErrorBars((mid, ok[p], ok[p + "_se"]), "time", p) * hv.Scatter((mid, ok[p]), "time", p)
-            plots.append(pts.opts(hv.opts.Scatter(size=6, color=COLOURS["ccw"]),
-                                  hv.opts.Overlay(responsive=True, height=170, fontscale=fs, title=p)))
-        return hv.Layout(plots).cols(2) if plots else pn.pane.Markdown("No ok fits on this track.")
+            se = ok[p + "_se"] if p + "_se" in ok else np.zeros(len(ok))
+            bars = hv.ErrorBars((mid, ok[p], se), "time", [p, p + "_se"])
+            pts = hv.Scatter((mid, ok[p]), "time", p)
+            plots.append((bars * pts).opts(hv.opts.Scatter(size=6, color=COLOURS["ccw"]),
+                                           hv.opts.Overlay(responsive=True, height=190, fontscale=fs, title=p)))
+        text = (f"{len(ok)} ok of {len(df)} windows · {self.state.window_days:g}-day windows · "
+                f"model {self.state.model}")
+        return pn.Column(pn.pane.Markdown(text, css_classes=["ds-track-summary"]),
+                         pn.pane.HoloViews(hv.Layout(plots).cols(2), sizing_mode="stretch_width"),
+                         sizing_mode="stretch_width")
 
-    @param.depends("all_fits", "state.map_param", "state.bin_deg", "state.presentation")
-    def param_map_view(self):
-        fits = self.all_fits
-        if fits is None or not len(fits) or self.state.map_param not in fits:
-            return pn.pane.Markdown("No fits yet: press **Fit every window** (or start with `--fits`).")
-        p = self.state.map_param
+    def __panel__(self):
+        return pn.Column(self.plot, sizing_mode="stretch_width")
+
+
+class ParameterMap(View):
+    """Median of a fitted parameter in lon/lat bins over land and graticule; hover gives bin, value, count."""
+
+    def __init__(self, **params):
+        super().__init__(**params)
+        self.fit_all = pn.widgets.Button(name="Fit every window", button_type="success")
+        self.fit_all.on_click(self.ex.fit_all)
+
+    @param.depends("ex.all_fits", "state.map_param", "state.bin_deg", "state.presentation")
+    def plot(self):
+        ex, st = self.ex, self.state
+        fits = ex.all_fits
+        if fits is None or not len(fits) or st.map_param not in fits:
+            return pn.pane.Markdown("Fitting every window for the first look … (progress above)",
+                                    css_classes=["ds-param-map"])
+        p, b, data = st.map_param, st.bin_deg, ex.data
         lon = fits["lon"].to_numpy(float)
         lat = fits["lat"].to_numpy(float)
-        b = self.state.bin_deg
-        lon_rel = ((lon - self.central_lon + 180) % 360) - 180
-        lo0 = np.floor(np.nanmin(lon_rel) / b) * b + self.central_lon
-        lo1 = np.ceil(np.nanmax(lon_rel) / b) * b + self.central_lon + b
-        la0, la1 = np.floor(np.nanmin(lat) / b) * b, np.ceil(np.nanmax(lat) / b) * b + b
-        shifted = fits.assign(lon=((lon - lo0) % 360) + lo0 - 360 * (lo0 > 180))
-        ds = grid_fits(shifted, [p], b, "median", lat_range=(max(la0, -90), min(la1, 90)),
-                       lon_range=(lo0, lo1))
-        xe = self.crs.transform_points(ccrs.PlateCarree(), np.r_[ds["lon_bnds"][:, 0], ds["lon_bnds"][-1, 1]],
-                                       np.zeros(ds.sizes["lon"] + 1))[:, 0]
-        ye = self.crs.transform_points(ccrs.PlateCarree(), np.zeros(ds.sizes["lat"] + 1),
-                                       np.clip(np.r_[ds["lat_bnds"][:, 0], ds["lat_bnds"][-1, 1]], -85, 85))[:, 1]
-        val = ds[p].values
-        mesh = hv.QuadMesh((xe, ye, val), ["x", "y"], hv.Dimension(p, label=f"median {p}")).opts(
-            cmap="cividis", colorbar=True, tools=["hover"], xaxis=None, yaxis=None, responsive=True,
-            min_height=380, title=f"median {p} in {b:g}° bins ({int(ds['count'].sum())} ok fits)",
-            fontscale=self._fontscale())
-        coast = self._coast()
-        cnt = hv.QuadMesh((xe, ye, np.where(ds["count"].values > 0, ds["count"].values, np.nan)), ["x", "y"],
-                          "count").opts(cmap="Blues", colorbar=True, tools=["hover"], xaxis=None, yaxis=None,
-                                        responsive=True, min_height=380, title="ok fits per bin")
-        xr_ = (xe.min(), xe.max())
-        yr_ = (ye.min(), ye.max())
-        left = mesh * coast
-        if {"cov_uu", "cov_vv", "cov_uv"} <= set(fits.columns):
-            left = left * self._ellipses(shifted, b, (la0, la1), (lo0, lo1), xe, ye)
-        return pn.Row(left.opts(xlim=xr_, ylim=yr_), (cnt * coast).opts(xlim=xr_, ylim=yr_),
-                      sizing_mode="stretch_width")
+        rel = ((lon - data.central_lon + 180) % 360) - 180
+        lo0 = np.floor(np.nanmin(rel) / b) * b + data.central_lon
+        lo1 = np.ceil(np.nanmax(rel) / b) * b + data.central_lon + b
+        la0, la1 = max(np.floor(np.nanmin(lat) / b) * b, -90), min(np.ceil(np.nanmax(lat) / b) * b + b, 90)
+        shifted = fits.assign(lon=((lon - lo0) % 360) + lo0)
+        ds = grid_fits(shifted, [p], b, "median", lat_range=(la0, la1), lon_range=(lo0, lo1))
+        lon_e = np.r_[ds["lon_bnds"].values[:, 0], ds["lon_bnds"].values[-1, 1]]
+        lat_e = np.r_[ds["lat_bnds"].values[:, 0], ds["lat_bnds"].values[-1, 1]]
+        quads = bin_quads(data.proj, lon_e, lat_e)
+        val, cnt = ds[p].values, ds["count"].values
+        polys = [{"x": quads[i][j][:, 0], "y": quads[i][j][:, 1], p: float(val[i, j]), "count": int(cnt[i, j]),
+                  "lon": float(0.5 * (lon_e[j] + lon_e[j + 1]) + 180) % 360 - 180,
+                  "lat": float(0.5 * (lat_e[i] + lat_e[i + 1]))}
+                 for i in range(val.shape[0]) for j in range(val.shape[1]) if cnt[i, j] > 0]
+        mesh = hv.Polygons(polys, kdims=["x", "y"], vdims=[hv.Dimension(p, label=f"median {p}"), "count", "lon",
+                                                            "lat"]).opts(
+            color=p, cmap="cividis", colorbar=True, line_width=0.2, line_color="white", tools=["hover"],
+            hover_tooltips=[("bin centre", "@lat{0.0}°N @lon{0.0}°E"), (f"median {p}", f"@{{{p}}}{{0.000}}"),
+                            ("ok fits", "@count")])
+        geo, axis = geography_layers(data, labels=True)
+        qx = np.concatenate([q[:, 0] for row in quads for q in row])
+        qy = np.concatenate([q[:, 1] for row in quads for q in row])
+        pad = 0.05 * max(np.ptp(qx), np.ptp(qy))
+        return hv.Overlay([geo[0], mesh, *geo[1:]]).opts(hv.opts.Overlay(
+            responsive=True, min_height=440, data_aspect=1, fontscale=self.fontscale(), bgcolor="#eef2f5",
+            title=f"median {p} in {b:g}° bins ({int(cnt.sum())} ok fits)",
+            xlim=(qx.min() - pad, qx.max() + pad), ylim=(qy.min() - pad, qy.max() + pad), **axis))
 
-    def _ellipses(self, fits, b, lat_range, lon_range, xe, ye):
-        """Variance ellipses of each bin (mean covariance of its windows), scaled so the largest fills a bin."""
-        from driftspec.analysis.tracks.ellipse import ellipse_from_covariance
+    def __panel__(self):
+        mp = pn.widgets.Select.from_param(self.state.param.map_param, name="Parameter")
+        binsz = pn.widgets.FloatSlider.from_param(self.state.param.bin_deg, name="Bin size (degrees)")
+        return pn.Column(pn.Row(mp, binsz, self.fit_all), pn.panel(self.plot, sizing_mode="stretch_width"),
+                         sizing_mode="stretch_width")
 
-        cov = grid_fits(fits, ["cov_uu", "cov_vv", "cov_uv"], b, "mean", lat_range=(max(lat_range[0], -90),
-                        min(lat_range[1], 90)), lon_range=lon_range)
-        e = ellipse_from_covariance(cov["cov_uu"].values, cov["cov_vv"].values, cov["cov_uv"].values)
-        major = np.sqrt(e["var_major"])
-        if not np.isfinite(major).any():
-            return hv.Overlay([])
-        cell = min(np.min(np.diff(xe)), np.min(np.abs(np.diff(ye))))
-        scale = 0.9 * cell / np.nanmax(major)
-        shapes = []
-        for i in range(major.shape[0]):
-            for j in range(major.shape[1]):
-                if cov["count"].values[i, j] == 0 or not np.isfinite(major[i, j]):
-                    continue
-                cx, cy = 0.5 * (xe[j] + xe[j + 1]), 0.5 * (ye[i] + ye[i + 1])
-                shapes.append(hv.Ellipse(cx, cy, (scale * major[i, j], scale * np.sqrt(e["var_minor"][i, j])),
-                                         orientation=np.deg2rad(e["ellipse_angle_deg"][i, j])))
-        return hv.Overlay(shapes).opts(hv.opts.Ellipse(color="#ff2d7a", line_width=1.5))
 
-    def compute_dispersion(self, *_):
-        from driftspec.analysis.regional.dispersion import single_particle_dispersion
-
-        region = self.state.region or None
-        try:
-            self.dispersion = single_particle_dispersion(self.vel, region, max_lag_days=20, plateau_lags=(8, 16),
-                                                         n_boot=100)
-            self.status_text = f"dispersion: {self.dispersion.n_tracks} track segments"
-        except ValueError as exc:
-            self.dispersion = None
-            self.status_text = f"dispersion: {exc}"
-
-    @param.depends("dispersion", "all_fits", "state.presentation")
-    def dispersion_view(self):
-        res = self.dispersion
+class DispersionView(View):
+    @param.depends("ex.dispersion", "ex.all_fits", "state.presentation")
+    def plot(self):
+        ex = self.ex
+        res = ex.dispersion
         if res is None:
             return pn.pane.Markdown("Select a region with the box tool on the map (or use everything), then "
                                     "press **Compute dispersion**.")
@@ -622,176 +827,85 @@ class Explorer(param.Parameterized):
                          label="observed κ(τ)").opts(color=COLOURS["ccw"], line_width=2)
         a, b = res.plateau_lags
         plateau = hv.Curve(([a, b], [res.plateau, res.plateau]), "lag (days)", "kappa",
-                           label=f"plateau {res.plateau:.0f} m²/s").opts(color=self._ink(), line_width=4)
+                           label=f"plateau {res.plateau:.0f} m²/s").opts(color=self.ink(), line_width=4)
         layers = [band, curve, plateau]
         text = (f"observed plateau ({a:g}-{b:g} days) **{res.plateau:.0f} m²/s** "
                 f"[{res.plateau_lower:.0f}, {res.plateau_upper:.0f}], {res.n_tracks} track segments")
-        if self.all_fits is not None and "diffusivity" in self.all_fits:
-            k, n = model_diffusivity(self.all_fits, self.state.region or None)
+        if ex.all_fits is not None and "diffusivity" in ex.all_fits:
+            k, n = model_diffusivity(ex.all_fits, self.state.region or None)
             if np.isfinite(k):
                 layers.append(hv.HLine(k).opts(color=COLOURS["cw"], line_dash="dashed", line_width=2))
                 text += f"; model-based (median of {n} ok fits) **{k:.0f} m²/s**"
         plot = hv.Overlay(layers).opts(responsive=True, height=360, legend_position="bottom_right",
                                        ylabel="diffusivity per component (m²/s)", xlabel="lag τ (days)",
-                                       fontscale=self._fontscale(), title="single-particle diffusivity")
+                                       fontscale=self.fontscale(), title="single-particle diffusivity")
         return pn.Column(pn.pane.Markdown(text, css_classes=["ds-dispersion"]), plot, sizing_mode="stretch_width")
 
-    # ------------------------------------------------------------------ layout
-    def controls(self):
-        st = self.state
-        w = pn.Param(st, parameters=["window_days", "overlap", "model", "estimator", "observation", "auto_band",
-                                     "max_freq", "taper", "inertial"],
-                     widgets={"window_days": {"type": pn.widgets.FloatSlider, "name": "Window length (days)",
-                                              "throttled": True},
-                              "overlap": {"type": pn.widgets.FloatSlider, "name": "Overlap", "throttled": True},
-                              "model": {"type": pn.widgets.Select, "name": "Model family"},
-                              "estimator": {"type": pn.widgets.RadioButtonGroup, "name": "Estimator"},
-                              "observation": {"type": pn.widgets.Select, "name": "Observation model"},
-                              "auto_band": {"type": pn.widgets.Checkbox, "name": "Automatic fitted band"},
-                              "max_freq": {"type": pn.widgets.FloatSlider, "name": "Max fitted frequency (cpd)",
-                                           "throttled": True},
-                              "taper": {"type": pn.widgets.RadioButtonGroup, "name": "Taper"},
-                              "inertial": {"type": pn.widgets.Select, "name": "Inertial frequency"}},
-                     show_name=False, width=285)
-        track = pn.widgets.Select(name="Track", options=self.track_ids, value=st.track or None)
+    def __panel__(self):
+        button = pn.widgets.Button(name="Compute dispersion", button_type="primary")
+        button.on_click(self.ex.compute_dispersion)
+        return pn.Column(button, self.plot, sizing_mode="stretch_width")
+
+
+class Controls(View):
+    """The sidebar: selection, analysis settings (from ``state.SETTINGS``), map look and sharing."""
+
+    def __panel__(self):
+        ex, st = self.ex, self.state
+        analysis = pn.Param(st, parameters=list(ANALYSIS), widgets=widgets_for("analysis"), show_name=False,
+                            width=285)
+        track = pn.widgets.Select(name="Track", options=ex.track_ids, value=st.track or None)
         track.link(st, value="track", bidirectional=True)
-        win = pn.widgets.IntSlider(name="Window along the track", start=0, end=max(len(self.windows()) - 1, 0),
+        win = pn.widgets.IntSlider(name="Window along the track", start=0, end=max(len(ex.windows()) - 1, 0),
                                    value=st.window)
         win.link(st, value_throttled="window")
-        st.param.watch(lambda e: setattr(win, "value", e.new), "window")
 
-        def update_window_slider(*_):
-            win.end = max(len(self.windows()) - 1, 0)
-            win.value = min(st.window, win.end)
-        st.param.watch(update_window_slider, ["track", "window_days", "overlap"])
-        look = pn.Param(st, parameters=["color_by", "presentation", "theme"], show_name=False,
-                        widgets={"color_by": {"type": pn.widgets.Select, "name": "Colour tracks by"},
-                                 "presentation": {"type": pn.widgets.Toggle, "name": "Presentation mode"},
-                                 "theme": {"type": pn.widgets.RadioButtonGroup, "name": "Theme"}},
-                        sizing_mode="stretch_width")
+        def follow(*_):
+            end = max(len(ex.windows()) - 1, 0)
+            win.param.update(end=end, value=min(st.window, end))
+        st.param.watch(follow, ["track", "window", "window_days", "overlap"])
+        look = pn.Param(st, parameters=["color_by", "presentation", "theme"], widgets=widgets_for("map"),
+                        show_name=False, sizing_mode="stretch_width")
 
         def reload_for_theme(event):  # the page theme is chosen when the page is built
             if pn.state.location is not None:
-                pn.state.location.search = "?" + self.url_query()
+                pn.state.location.search = "?" + ex.url_query()
                 pn.state.location.reload = True
         st.param.watch(reload_for_theme, "theme")
-        items = [pn.pane.Markdown("### Selection"), track, win, pn.pane.Markdown("### Analysis"), w,
-                 pn.pane.Markdown("### Map"), look]
-        if self.date_range is not None:
-            items.append(self.date_range)
         clear = pn.widgets.Button(name="Clear region", button_type="light")
         clear.on_click(lambda *_: setattr(st, "region", []))
-        items += [clear, pn.pane.Markdown("### Share"), self._share_widgets()]
-        return pn.Column(*items, sizing_mode="stretch_width")
+        return pn.Column(pn.pane.Markdown("### Selection"), track, win, pn.pane.Markdown("### Analysis"), analysis,
+                         pn.pane.Markdown("### Map"), look, clear, pn.pane.Markdown("### Share"), self._share(),
+                         sizing_mode="stretch_width")
 
-    def _share_widgets(self):
+    def _share(self):
+        ex = self.ex
         link = pn.widgets.Button(name="Link to this view", button_type="primary")
-        out = pn.widgets.TextInput(name="Copy this address", value="", disabled=False)
+        out = pn.widgets.TextInput(name="Copy this address", value="", css_classes=["ds-link"])
 
         def make_link(*_):
             loc = pn.state.location
-            base = f"{loc.protocol}//{loc.host}{loc.pathname}" if loc is not None and loc.host else ""
-            out.value = base + "?" + self.url_query()
+            base = ""
+            if loc is not None and loc.href:
+                base = loc.href.split("?")[0].split("#")[0]
+            out.value = base + "?" + ex.url_query()
         link.on_click(make_link)
-        dl_csv = pn.widgets.FileDownload(callback=lambda: self._fits_bytes("csv"), filename="fits.csv",
+        dl_csv = pn.widgets.FileDownload(callback=lambda: ex._fits_bytes("csv"), filename="fits.csv",
                                          label="Download fits (CSV)", button_type="light")
-        dl_pq = pn.widgets.FileDownload(callback=lambda: self._fits_bytes("parquet"), filename="fits.parquet",
+        dl_pq = pn.widgets.FileDownload(callback=lambda: ex._fits_bytes("parquet"), filename="fits.parquet",
                                         label="Download fits (Parquet)", button_type="light")
         note = pn.pane.Markdown("Each plot's toolbar saves it as PNG.", styles={"font-size": "0.85em"})
         return pn.Column(link, out, dl_csv, dl_pq, note, sizing_mode="stretch_width")
 
-    def url_query(self) -> str:
-        from urllib.parse import urlencode
 
-        st = self.state
-        vals = {}
-        for p in URL_PARAMS:
-            v = getattr(st, p)
-            vals[p] = ",".join(f"{x:.4f}" for x in v) if isinstance(v, list) else str(v)
-        return urlencode(vals)
-
-    def _fits_bytes(self, fmt):
-        import io
-
-        df = self.all_fits if self.all_fits is not None else self.track_fits
-        df = df if df is not None else pd.DataFrame()
-        buf = io.BytesIO()
-        if fmt == "csv":
-            buf.write(df.to_csv(index=False).encode())
-        else:
-            df.to_parquet(buf, index=False)
-        buf.seek(0)
-        return buf
-
-    def about(self):
-        return pn.pane.Markdown(
-            "### About\n" + CAUTION + "\n\n"
-            "Rotary spectra of complex velocity *u + iv*: positive frequencies turn counterclockwise, negative "
-            "clockwise; frequencies in cycles per day. Fits use the debiased Whittle likelihood "
-            "(*The debiased Whittle likelihood*, Biometrika 106, 251-266, 2019) unless another estimator is "
-            "chosen. Shoreline: GSHHG coarse "
-            "(LGPL-3), shipped with the package.", sizing_mode="stretch_width")
-
-    def main_area(self):
-        bar = pn.indicators.Progress(value=self.param.progress, max=100, sizing_mode="stretch_width", height=14,
-                                     name="progress")
-        status = pn.pane.Markdown(self.param.status_text, css_classes=["ds-status"])
-        fit_all = pn.widgets.Button(name="Fit every window", button_type="success")
-        fit_all.on_click(self.fit_all)
-        cancel = pn.widgets.Button(name="Cancel", button_type="warning")
-        cancel.on_click(self.cancel)
-        binsz = pn.widgets.FloatSlider.from_param(self.state.param.bin_deg, name="Bin size (degrees)")
-        mp = pn.widgets.Select.from_param(self.state.param.map_param, name="Parameter")
-        explore = pn.Column(
-            pn.Row(pn.Column(self.map_view(), self.readout, sizing_mode="stretch_width"),
-                   sizing_mode="stretch_width"),
-            self.summary_view,
-            self.series_view,
-            pn.Row(pn.Column(self.spectrum_view, sizing_mode="stretch_width"),
-                   pn.Column(self.table_view, width=470), sizing_mode="stretch_width"),
-            sizing_mode="stretch_width", name="Explore")
-        track_tab = pn.Column(self.track_fits_view, sizing_mode="stretch_width", name="Track summary")
-        map_tab = pn.Column(pn.Row(mp, binsz, fit_all, cancel), self.param_map_view,
-                            sizing_mode="stretch_width", name="Parameter map")
-        disp_button = pn.widgets.Button(name="Compute dispersion", button_type="primary")
-        disp_button.on_click(self.compute_dispersion)
-        disp_tab = pn.Column(disp_button, self.dispersion_view, sizing_mode="stretch_width", name="Dispersion")
-        tabs = pn.Tabs(explore, track_tab, map_tab, disp_tab, ("About", self.about()), dynamic=True,
-                       sizing_mode="stretch_width")
-        return pn.Column(pn.Row(bar, status, sizing_mode="stretch_width"), tabs, sizing_mode="stretch_width")
-
-    def panel(self):
-        """The whole dashboard as one Panel layout (for notebooks)."""
-        self._start_poller()
-        return pn.Row(pn.Column(self.controls(), width=300), self.main_area(), sizing_mode="stretch_width")
-
-    def template(self):
-        """The dashboard in a page template (for ``panel serve`` and ``driftspec serve``)."""
-        self._start_poller()
-        dark = self.state.theme == "dark"
-        tpl = OfflineTemplate(
-            title=self.title, sidebar=[self.controls()], main=[self.main_area()],
-            header_background="#0d1620" if dark else "#1d2b3a", sidebar_width=320,
-            theme="dark" if dark else "default", raw_css=[PRESENTATION_CSS])
-        self._sync_url()
-        return tpl
-
-    def _sync_url(self):
-        if pn.state.location is not None:
-            pn.state.location.sync(self.state, {p: p for p in URL_PARAMS})
-
-    def _start_poller(self):
-        if getattr(self, "_poller", None) is None:
-            try:
-                self._poller = pn.state.add_periodic_callback(self.poll, period=250)
-            except Exception:  # noqa: BLE001 - no event loop (plain script): poll on demand via wait()
-                self._poller = None
-
-    def servable(self, title=None):
-        return self.template().servable(title=title or self.title)
-
-    def _repr_mimebundle_(self, include=None, exclude=None):
-        return self.panel()._repr_mimebundle_(include, exclude)
+def about():
+    return pn.pane.Markdown(
+        "### About\n" + CAUTION + "\n\n"
+        "Rotary spectra of complex velocity *u + iv*: positive frequencies turn counterclockwise, negative "
+        "clockwise; frequencies in cycles per day. Fits use the debiased Whittle likelihood "
+        "(*The debiased Whittle likelihood*, Biometrika 106, 251-266, 2019) unless another estimator is "
+        "chosen. Shoreline: GSHHG coarse (LGPL-3), shipped with the package. Maps: Mercator on a sphere, or a "
+        "polar stereographic view for data beyond 60° of latitude.", sizing_mode="stretch_width")
 
 
 class OfflineTemplate(pn.template.VanillaTemplate):
@@ -811,12 +925,14 @@ def explore(source, fits=None, title="driftspec", **state) -> Explorer:
     """Build the dashboard for a path, DataFrame or Dataset of fixes (or a velocities table).
 
     In a notebook, the returned object displays the whole dashboard inline; its ``state`` attribute
-    (selected track, window, model, ...) can be read and set from code.
+    (selected track, window, model, ...) can be read and set from code, and ``current_fit`` (the current
+    window's FitResult) and ``track_fits`` (the track's fits table) follow it.
 
     Examples
     --------
     >>> ex = explore("demo_data/fixes.parquet")            # doctest: +SKIP
     >>> ex.state.window_days = 20; ex.state.model = "matern"  # doctest: +SKIP
+    >>> ex.wait(); ex.current_fit.params                    # doctest: +SKIP
     """
     if isinstance(source, pd.DataFrame) and {"u", "v", "segment", "valid"} <= set(source.columns):
         vel = source

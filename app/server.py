@@ -9,7 +9,9 @@ from __future__ import annotations
 
 import functools
 import os
+import threading
 from pathlib import Path
+from urllib.parse import urlencode
 
 import panel as pn
 
@@ -38,6 +40,21 @@ def _velocities(path: str):
     return vel, report
 
 
+_DATA: dict = {}
+_DATA_LOCK = threading.Lock()
+
+
+def track_data(path: str):
+    """The prepared, shared data of one file (built once; every session showing the file uses it)."""
+    from .trackdata import TrackData
+
+    with _DATA_LOCK:
+        if path not in _DATA:
+            vel, report = _velocities(path)
+            _DATA[path] = (TrackData(vel) if len(vel) else None, report)
+        return _DATA[path]
+
+
 @functools.lru_cache(maxsize=4)
 def _fits(path: str):
     from driftspec.analysis.io.tables import read_table
@@ -59,7 +76,24 @@ def resolve_in(data_dir: Path, name: str) -> Path | None:
     return p if p.is_file() and p.is_relative_to(data_dir.resolve()) else None
 
 
-def make_app(input_path: Path, fits_path: Path | None = None):
+def _one_line(exc: Exception, path: Path, name: str) -> str:
+    """An error message for the page: one line, the file's name as the user gave it, no server path."""
+    text = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+    for p in (str(path), str(path.parent)):
+        text = text.replace(p, name if p == str(path) else ".")
+    return text
+
+
+def _message(title: str, text: str):
+    return pn.pane.Markdown(f"### {title}\n{text}", css_classes=["ds-error"])
+
+
+def _query() -> dict:
+    args = pn.state.session_args or {}
+    return {k: v[0].decode(errors="replace") for k, v in args.items() if v}
+
+
+def make_app(input_path: Path, fits_path: Path | None = None, first_look: bool = True):
     """A function building one session's page."""
     from .dashboard import Explorer
     from .state import ExplorerState
@@ -67,29 +101,34 @@ def make_app(input_path: Path, fits_path: Path | None = None):
     data_dir = input_path.parent.resolve()
 
     def session():
-        name = pn.state.session_args.get("data", [input_path.name.encode()])[0].decode() \
-            if pn.state.session_args else input_path.name
+        query = _query()
+        name = query.get("data", input_path.name)
         path = resolve_in(data_dir, name)
         if path is None:
-            return pn.pane.Markdown(f"### Not available\n`{name}` is not a data file in the served folder.")
+            return _message("Not available", f"`{name}` is not a data file in the served folder.")
         from driftspec.analysis.errors import InputError
 
         try:
-            vel, report = _velocities(str(path))
-        except InputError as exc:
-            return pn.pane.Markdown(f"### Cannot open `{name}`\n{exc}")
+            data, report = track_data(str(path))
+        except (InputError, ValueError, OSError) as exc:
+            return _message(f"Cannot open `{name}`", _one_line(exc, path, name))
+        if data is None:
+            return _message(f"Nothing to show in `{name}`",
+                            f"no fix passed quality control ({report.summary()}).")
         fits = _fits(str(fits_path)) if fits_path else None
-        theme = pn.state.session_args.get("theme", [b"light"])[0].decode() if pn.state.session_args else "light"
+        theme = query.get("theme", "light")
         state = ExplorerState(theme=theme if theme in ("light", "dark") else "light")
-        ex = Explorer(vel, fits=fits, state=state, title=f"driftspec · {path.name}")
+        ex = Explorer(data, fits=fits, state=state, title=f"driftspec · {path.name}", first_look=first_look)
+        ex.apply_query(query)
         tpl = ex.template()
+        ex.sync_url()
         files = data_files(data_dir)
         if len(files) > 1:
             pick = pn.widgets.Select(name="Data file (in the served folder)", options=files, value=name)
 
             def go(event):
                 if pn.state.location is not None:
-                    pn.state.location.search = f"?data={event.new}"
+                    pn.state.location.search = "?" + urlencode({"data": event.new})
                     pn.state.location.reload = True
             pick.param.watch(go, "value")
             tpl.sidebar.insert(0, pick)
@@ -113,6 +152,25 @@ def _warm_up():
                         threshold=0.6, max_px=2))
 
 
+def prepare(path: Path) -> None:
+    """Work done once before the first page: read and prepare the data, start the fit workers, compile the
+    map's kernels, and start fitting every window for the first look."""
+    from driftspec.analysis.models.matern import _tables
+
+    from .jobs import start_pool
+    from .state import ExplorerState
+
+    start_pool()
+    _tables()
+    data, _ = track_data(str(path))
+    if data is not None:
+        data.geography  # noqa: B018 - land and graticule, once
+        from .dashboard import Explorer, spec_of
+
+        data.start_first_look(Explorer(data).windows, spec_of(ExplorerState()))
+    _warm_up()
+
+
 def serve(input_path=None, fits=None, port=5006, address="127.0.0.1", show=False, extra_origins=()):
     """Start the dashboard server and block; prints the URL."""
     from driftspec.analysis.errors import InputError
@@ -123,15 +181,12 @@ def serve(input_path=None, fits=None, port=5006, address="127.0.0.1", show=False
     fits_path = Path(fits) if fits else None
     if fits_path is not None and not fits_path.exists():
         raise InputError(f"{fits_path}: no such file")
-    print(f"driftspec: loading {path} ...", flush=True)
-    _velocities(str(path.resolve()))
-    from driftspec.analysis.models.matern import _tables
-
-    _tables()  # build the Matérn table before the first click
-    _warm_up()
+    print(f"driftspec: loading {path.name} ...", flush=True)
+    prepare(path.resolve())
     origins = [f"{address}:{port}", f"localhost:{port}", f"127.0.0.1:{port}", *extra_origins]
     url = f"http://{address}:{port}/driftspec"
     print(f"driftspec: dashboard at {url}  (Ctrl+C to stop)", flush=True)
+    pn.config.inline = True  # every resource from this server: the page works with no network
     pn.serve({"driftspec": make_app(path.resolve(), fits_path)}, port=port, address=address,
              websocket_origin=origins, show=show, title="driftspec", threaded=False, start=True,
              print_url=False)

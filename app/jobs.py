@@ -1,0 +1,192 @@
+"""Fits off the server's event loop: worker processes shared by all sessions, jobs that report progress, can be
+cancelled, and carry the settings they were computed for.
+
+The model is Panel's guidance on long-running work ("Set Up Manual Threading" in the Panel how-to guides): the work
+runs elsewhere, the job's status, progress and result are read-only (``constant``) parameters, and every change to
+them is applied on the session's own event loop (``pn.state.execute(..., schedule=True)`` under the session's
+document), so views redraw as if a user had changed them.
+
+Why processes: a window fit is mostly Python and numpy in small pieces, so threads would hold the GIL and slow
+down the server's loop for everyone. Fits go to a small shared pool of spawned worker processes, a few windows in
+flight per job so that a short job of one session never waits behind a long job of another. The exact estimator's
+windows run in a process of their own per job, which is terminated when the job is cancelled or superseded.
+"""
+
+from __future__ import annotations
+
+import multiprocessing
+import os
+import threading
+import time
+from collections.abc import Callable
+
+import param
+
+_POOL = None
+_POOL_LOCK = threading.Lock()
+#: windows in flight per job in the shared pool (the rest wait in the job, where cancelling is free)
+IN_FLIGHT = 2
+
+
+def _warm():
+    from driftspec.analysis.models.matern import _tables
+
+    _tables()
+
+
+def _fit_one(window, spec_json):
+    """Worker: the FitResult of one window under one model (what the spectrum and fit table show)."""
+    import json
+
+    from driftspec.analysis.fitting import FitSpec, fit_window
+
+    return fit_window(window, FitSpec.from_dict(json.loads(spec_json)))[0]
+
+
+def _fit_rows(window, spec_json):
+    """Worker: the fits-table rows of one window (``driftspec fit``'s rows)."""
+    import json
+
+    from driftspec.analysis.fitting import FitSpec
+    from driftspec.analysis.fitting.batch import window_rows
+
+    return window_rows(window, FitSpec.from_dict(json.loads(spec_json)))
+
+
+def worker_count() -> int:
+    return max(2, min(4, os.cpu_count() or 2))
+
+
+def shared_pool():
+    """The worker processes shared by every session of this server (started on first use)."""
+    global _POOL
+    with _POOL_LOCK:
+        if _POOL is None:
+            _POOL = multiprocessing.get_context("spawn").Pool(worker_count(), initializer=_warm)
+        return _POOL
+
+
+def start_pool() -> None:
+    """Start the shared workers now (the server calls this before the first page asks for a fit)."""
+    shared_pool()
+
+
+def call_in_session(doc, fn: Callable[[], None]) -> None:
+    """Run ``fn`` on the event loop of the session that owns ``doc`` (thread-safe); directly when there is no
+    server session (a notebook or a script)."""
+    if doc is None or getattr(doc, "session_context", None) is None:
+        fn()
+        return
+    import panel as pn
+    from panel.io.state import set_curdoc
+
+    with set_curdoc(doc):
+        pn.state.execute(fn, schedule=True)
+
+
+class Job(param.Parameterized):
+    """One background computation over a list of windows.
+
+    Parameters
+    ----------
+    key : object
+        The settings the job computes for (a tuple holding ``FitSpec.to_json()``, the track and the window
+        lengths); the owner compares it with the current key and drops a result that is no longer current.
+    """
+
+    label = param.String(default="", constant=True)
+    key = param.Parameter(default=None, constant=True)
+    status = param.Selector(default="queued", objects=["queued", "running", "done", "cancelled", "failed"],
+                            constant=True)
+    n_total = param.Integer(default=0, constant=True)
+    n_done = param.Integer(default=0, constant=True)
+    rate = param.Number(default=float("nan"), constant=True, doc="Windows fitted per second")
+    eta_s = param.Number(default=float("nan"), constant=True, doc="Estimated time left, s")
+    message = param.String(default="", constant=True)
+    result = param.Parameter(default=None, constant=True, doc="List of per-window outputs, in window order")
+
+    def __init__(self, windows, spec_json: str, kind: str, doc=None, on_update=None, own_process=False, **params):
+        super().__init__(**params)
+        self._windows = list(windows)
+        self._spec_json = spec_json
+        self._func = _fit_one if kind == "one" else _fit_rows
+        self._doc = doc
+        self._on_update = on_update
+        self._own_process = own_process
+        self._cancelled = threading.Event()
+        self._private_pool = None
+        self._thread = threading.Thread(target=self._run, daemon=True, name=f"job-{self.label}")
+        with param.edit_constant(self):
+            self.n_total = len(self._windows)
+
+    # ------------------------------------------------------------------ control
+    def start(self) -> Job:
+        self._thread.start()
+        return self
+
+    def cancel(self) -> None:
+        """Stop: windows not yet started are not fitted; an exact fit in progress is terminated."""
+        self._cancelled.set()
+        pool = self._private_pool
+        if pool is not None:
+            pool.terminate()
+
+    @property
+    def cancelled(self) -> bool:
+        return self._cancelled.is_set()
+
+    def wait(self, timeout: float | None = None) -> bool:
+        self._thread.join(timeout)
+        return not self._thread.is_alive()
+
+    # ------------------------------------------------------------------ worker thread
+    def _publish(self, **values):
+        def apply():
+            with param.edit_constant(self):
+                self.param.update(**values)
+            if self._on_update is not None:
+                self._on_update(self)
+        call_in_session(self._doc, apply)
+
+    def _run(self):
+        t0 = time.perf_counter()
+        out = [None] * len(self._windows)
+        self._publish(status="running")
+        try:
+            if self._own_process:
+                self._private_pool = multiprocessing.get_context("spawn").Pool(1, initializer=_warm)
+                pool = self._private_pool
+            else:
+                pool = shared_pool()
+            pending = {}
+            queue = list(range(len(self._windows)))
+            done = 0
+            last = 0.0
+            while (queue or pending) and not self.cancelled:
+                while queue and len(pending) < IN_FLIGHT:
+                    k = queue.pop(0)
+                    pending[k] = pool.apply_async(self._func, (self._windows[k], self._spec_json))
+                for k in [k for k, r in pending.items() if r.ready()]:
+                    out[k] = pending.pop(k).get()
+                    done += 1
+                if not pending:
+                    continue
+                now = time.perf_counter()
+                if done and now - last > 0.5:
+                    last = now
+                    rate = done / (now - t0)
+                    self._publish(n_done=done, rate=rate, eta_s=(len(self._windows) - done) / rate)
+                time.sleep(0.02)
+        except Exception as exc:  # noqa: BLE001 - a failed job says so on the page; the server goes on
+            if not self.cancelled:
+                self._publish(status="failed", message=f"{type(exc).__name__}: {exc}")
+            return
+        finally:
+            if self._private_pool is not None:
+                self._private_pool.terminate()
+        if self.cancelled:
+            self._publish(status="cancelled")
+            return
+        elapsed = time.perf_counter() - t0
+        self._publish(status="done", n_done=len(out), result=out, eta_s=0.0,
+                      rate=len(out) / elapsed if elapsed > 0 else float("nan"))
