@@ -79,12 +79,14 @@ from __future__ import annotations
 import json
 import os
 import shutil
+import zlib
 from collections.abc import Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import scipy.fft
 import scipy.stats
 import xarray as xr
 
@@ -101,6 +103,8 @@ SHARE_MODES = ("shape", "all")
 OFFSET = "inertial_frequency_offset"
 #: fewest drifters for the cluster-robust (empirical) score covariance; below, the model-based one
 MIN_CLUSTERS = 10
+#: drifters simulated from the fit for the model-based score covariance
+N_SIM = 128
 
 
 def _canonical(name: str) -> str:
@@ -184,6 +188,9 @@ class PooledResult:
     units : dict
     covariance : ndarray
         Covariance of the shared parameters (natural units, order of ``params``).
+    information : ndarray
+        Fisher information of the shared parameters with the nuisance parameters profiled out (the Schur complement
+        ``S``), in optimiser coordinates (log of log-scaled parameters), for those not at a bound.
     loglik : float
         Maximised composite log-likelihood (sum over windows).
     n_windows, n_tracks, n_skipped : int
@@ -206,6 +213,7 @@ class PooledResult:
     stderr: dict
     units: dict
     covariance: np.ndarray | None = field(default=None, repr=False)
+    information: np.ndarray | None = field(default=None, repr=False)
     loglik: float = np.nan
     n_windows: int = 0
     n_tracks: int = 0
@@ -309,6 +317,7 @@ class _Pool:
         A, B, C = np.zeros((W, ns, ns)), np.zeros((W, ns, na)), np.zeros((W, na, na))
         values = np.zeros(W)
         dlogs = [] if keep_dlog else None
+        es = [] if keep_dlog else None
         order = np.array(self.shared + self.nuis, int)
         for w, it in enumerate(self.items):
             sel = self.perm[w][order]
@@ -331,7 +340,9 @@ class _Pool:
             A[w], B[w], C[w] = f[:ns, :ns], f[:ns, ns:], f[ns:, ns:]
             if keep_dlog:
                 dlogs.append(dlog)
-        return float(values.sum()), {"gs": gs, "ga": ga, "A": A, "B": B, "C": C, "values": values, "dlogs": dlogs}
+                es.append(e)
+        return float(values.sum()), {"gs": gs, "ga": ga, "A": A, "B": B, "C": C, "values": values, "dlogs": dlogs,
+                                     "e": es}
 
 
 def _solve(st, act_s, act_a, mu):
@@ -447,28 +458,9 @@ def _scoring(pool: _Pool, max_iter: int = 100):
 
 
 # ---------------------------------------------------------------------------------------------- covariances
-def _overlap_weight(pw: PooledWindow, qw: PooledWindow) -> float:
-    """``rho = N sum_t h(t)^2 h'(t)^2`` over the common samples of two windows of one drifter (module docstring)."""
-    hp, hq = pw.problem.prep.taper, qw.problem.prep.taper
-    if pw is qw:
-        return float(pw.problem.prep.variance_inflation)
-    if pw.start is None or qw.start is None:
-        return 0.0
-    dt_ns = pw.problem.prep.dt_days * SECONDS_PER_DAY * 1e9
-    if abs(qw.problem.prep.dt_days - pw.problem.prep.dt_days) > 1e-9 * pw.problem.prep.dt_days:
-        return 0.0
-    d = int(round((pd.Timestamp(qw.start) - pd.Timestamp(pw.start)).value / dt_ns))
-    if d < 0:
-        return _overlap_weight(qw, pw)
-    if d >= hp.size:
-        return 0.0
-    m = min(hp.size - d, hq.size)
-    return float(np.sqrt(hp.size * hq.size) * np.sum(hp[d:d + m] ** 2 * hq[:m] ** 2))
-
-
 def _efficient(st, act_s, act_a):
-    """Per window: efficient scores ``u_w`` (W, ns), efficient score weights ``Dt_w`` (ns, nb) and informations
-    ``S_w`` (W, ns, ns), the nuisance coordinates at bounds or fixed treated as known."""
+    """Per window: efficient scores ``u_w`` (W, p), efficient score weights ``Dt_w`` (p, nb) and informations
+    ``S_w`` (W, p, p), the nuisance coordinates at bounds or fixed treated as known."""
     W = st["gs"].shape[0]
     ns = st["gs"].shape[1]
     u = st["gs"].copy()
@@ -489,34 +481,81 @@ def _efficient(st, act_s, act_a):
     return u[:, act_s], dt, s_w[:, act_s][:, :, act_s]
 
 
-def _pair_covariance(items, dt, w, v, rho):
-    """Model-based ``Cov(u_w, u_v) = rho Dt_w Dt_v^T`` (same frequency grid), or rho times the mean information."""
-    bw, bv = items[w].problem.prep.band_index, items[v].problem.prep.band_index
-    if bw.size == bv.size and np.array_equal(bw, bv):
-        return rho * (dt[w] @ dt[v].T)
-    return rho * 0.5 * (dt[w] @ dt[w].T + dt[v] @ dt[v].T)
+def _circulant_draws(acov, n, rng, size):
+    """``size`` proper complex Gaussian series of ``n`` samples with autocovariance ``acov`` (lags ``0..m/2``) by
+    circulant embedding (C. R. Dietrich, G. N. Newsam, SIAM J. Sci. Comput. 18, 1088-1107, 1997), drawn in single
+    precision (ample for a score covariance, twice as fast)."""
+    acov = np.asarray(acov, complex)
+    half = acov.size - 1
+    row = np.concatenate([acov, np.conj(acov[1:half][::-1])])
+    amp = np.sqrt(np.clip(scipy.fft.fft(row).real, 0, None) * row.size / 2.0).astype(np.float32)
+    eps = rng.standard_normal((size, 2 * row.size), dtype=np.float32).view(np.complex64)
+    return scipy.fft.ifft(eps * amp, axis=-1, overwrite_x=True)[:, :n]
 
 
-def _group_covariances(items, dt, groups, n_groups, p):
-    """Model-based covariance of the group score sums: ``(n_groups p) x (n_groups p)``, overlaps within a drifter
-    included (windows of different drifters are independent)."""
-    J = np.zeros((n_groups * p, n_groups * p))
+def _simulated_scores(pool: _Pool, s, a, st, dt, n_sim: int | None = None) -> dict:
+    """The efficient scores of every window over ``n_sim`` drifters simulated from the fit: ``{track: (window
+    indices, scores (n_sim, n_windows, p))}``.
+
+    Each drifter is simulated once over its whole span (circulant embedding, one series per model component, with
+    its first window's parameters), so overlapping windows see the same samples; window ``w`` takes each component
+    rescaled to its own amplitude, its own mask, taper and demeaning, and its score at its own fitted ``E[I]``.
+    """
+    from ..models.inertial import modulation_sequence
+    from ..simulation.simulate import embedding_autocovariance
+
+    n_sim = N_SIM if n_sim is None else n_sim
     by_track = {}
-    for w, it in enumerate(items):
+    for w, it in enumerate(pool.items):
         by_track.setdefault(it.track_id, []).append(w)
-    for ws in by_track.values():
-        ws = sorted(ws, key=lambda i: (pd.Timestamp(items[i].start).value if items[i].start is not None else i))
-        for i, w in enumerate(ws):
-            for v in ws[i:]:
-                rho = _overlap_weight(items[w], items[v])
-                if rho == 0.0 and v != w:
-                    break  # later windows start later still
-                c = _pair_covariance(items, dt, w, v, rho)
-                gw, gv = groups[w], groups[v]
-                J[gw * p:(gw + 1) * p, gv * p:(gv + 1) * p] += c
-                if v != w:
-                    J[gv * p:(gv + 1) * p, gw * p:(gw + 1) * p] += c.T
-    return J
+    out = {}
+    for track, ws in by_track.items():
+        items = [pool.items[w] for w in ws]
+        dt_days = items[0].problem.prep.dt_days
+        starts = [it.start for it in items]
+        if any(t is None for t in starts) or any(abs(it.problem.prep.dt_days - dt_days) > 1e-9 * dt_days
+                                                 for it in items):
+            offsets = np.cumsum([0] + [it.problem.prep.n for it in items[:-1]])  # unknown times: no overlap
+        else:
+            t0 = min(pd.Timestamp(t).value for t in starts)
+            step_ns = dt_days * SECONDS_PER_DAY * 1e9
+            offsets = np.array([round((pd.Timestamp(t).value - t0) / step_ns) for t in starts])
+        span = int(max(o + it.problem.prep.n for o, it in zip(offsets, items)))
+        ref = items[0].problem
+        theta_ref = ref.theta(pool.full_x(ws[0], s, a[ws[0]])[ref.free])
+        rng = np.random.default_rng(zlib.crc32(b"".join(it.problem.prep.periodogram[:8].tobytes() for it in items)))
+        lat = None
+        comps = []
+        for comp, sl in ref.family.components():
+            r = embedding_autocovariance(
+                lambda lag, c=comp, q=theta_ref[sl], ctx=ref.context: c.autocovariance(q, lag, ctx), span, dt_days,
+                max_factor=2)
+            x = _circulant_draws(r, span, rng, n_sim)
+            if comp.modulated:
+                if lat is None:
+                    lat = np.full(span, np.nan)
+                    for o, it in zip(offsets, items):
+                        series = it.problem.context.latitude_series
+                        lat[o:o + it.problem.prep.n] = it.lat if series is None else series
+                x = x * modulation_sequence(lat, dt_days)
+            v_ref = float(np.real(comp.autocovariance(theta_ref[sl], np.zeros(1), ref.context))[0])
+            comps.append((comp, sl, x, v_ref))
+        scores = np.zeros((n_sim, len(ws), dt[ws[0]].shape[0]))
+        for i, (w, o, it) in enumerate(zip(ws, offsets, items)):
+            p = it.problem
+            theta_w = p.theta(pool.full_x(w, s, a[w])[p.free])
+            z = np.zeros((n_sim, p.prep.n), complex)
+            for comp, sl, x, v_ref in comps:
+                if v_ref > 0:
+                    v_w = float(np.real(comp.autocovariance(theta_w[sl], np.zeros(1), p.context))[0])
+                    z += np.sqrt(max(v_w, 0.0) / v_ref) * x[:, o:o + p.prep.n]
+            valid = p.prep.valid
+            z = np.where(valid, z, 0.0)
+            z = np.where(valid, z - z.sum(axis=1, keepdims=True) / max(p.prep.n_valid, 1), 0.0)
+            pg = dt_days * np.abs(scipy.fft.fft(p.prep.taper * z, axis=-1)[:, p.prep.band_index]) ** 2
+            scores[:, i] = (1.0 - pg / st["e"][w]) @ dt[w].T
+        out[track] = (ws, scores)
+    return out
 
 
 def heterogeneity_test(u_groups, info_groups, j_groups):
@@ -631,7 +670,12 @@ def _finish(pool: _Pool, s, a, val, success, message, n_iter, name, share, skipp
     n_tracks = len(track_names)
     cov = np.full((p, p), np.nan)
     stderr_method = ""
-    j_model_tracks = _group_covariances(items, dt, codes, n_tracks, p) if p else np.zeros((0, 0))
+    track_names = pd.Index(track_names)
+    # model-based covariance of the scores: drifters simulated from the fit (overlaps, gaps, leakage included)
+    sims = _simulated_scores(pool, s, a, st, dt) if p else {}
+    j_tracks = np.zeros((n_tracks, p, p))
+    for track, (_, sc) in sims.items():
+        j_tracks[track_names.get_loc(track)] = np.atleast_2d(np.cov(sc.sum(axis=1), rowvar=False))
     try:
         info_inv = np.linalg.inv(info)
         if n_tracks >= MIN_CLUSTERS:
@@ -640,7 +684,7 @@ def _finish(pool: _Pool, s, a, val, success, message, n_iter, name, share, skipp
             j = n_tracks / (n_tracks - 1) * (u_c.T @ u_c)
             stderr_method = "cluster"
         else:
-            j = sum(j_model_tracks[c * p:(c + 1) * p, c * p:(c + 1) * p] for c in range(n_tracks))
+            j = j_tracks.sum(axis=0)
             stderr_method = "model"
         cov = info_inv @ j @ info_inv
     except np.linalg.LinAlgError:
@@ -654,9 +698,15 @@ def _finish(pool: _Pool, s, a, val, success, message, n_iter, name, share, skipp
             np.add.at(u_g, codes, u)
             i_g = np.zeros((n_tracks, p, p))
             np.add.at(i_g, codes, s_w)
-            het, groups = heterogeneity_test(u_g, i_g, j_model_tracks), "tracks"
+            j_g = np.zeros((n_tracks * p, n_tracks * p))
+            for c in range(n_tracks):
+                j_g[c * p:(c + 1) * p, c * p:(c + 1) * p] = j_tracks[c]
+            het, groups = heterogeneity_test(u_g, i_g, j_g), "tracks"
         elif W >= 2 and p:
-            het = heterogeneity_test(u, s_w, _group_covariances(items, dt, np.arange(W), W, p))
+            (ws, sc), = sims.values()
+            order = np.argsort(ws)
+            j_w = np.atleast_2d(np.cov(sc[:, order].reshape(sc.shape[0], -1), rowvar=False))
+            het = heterogeneity_test(u, s_w, j_w)
             groups = "windows"
     except np.linalg.LinAlgError:
         pass
@@ -696,7 +746,8 @@ def _finish(pool: _Pool, s, a, val, success, message, n_iter, name, share, skipp
         message = "standard errors unavailable (singular information)"
     return PooledResult(
         model=name, share=share, params=dict(zip(pool.shared_names, map(float, shared_nat))),
-        stderr=dict(zip(pool.shared_names, map(float, se))), units=units, covariance=cov_full, loglik=-float(val),
+        stderr=dict(zip(pool.shared_names, map(float, se))), units=units, covariance=cov_full, information=info,
+        loglik=-float(val),
         n_windows=W, n_tracks=n_tracks, n_skipped=skipped, stderr_method=stderr_method,
         heterogeneity_statistic=het[0], heterogeneity_df=het[1], heterogeneity_pvalue=het[2],
         heterogeneity_groups=groups, status=status, message=message, windows=pd.DataFrame(rows),

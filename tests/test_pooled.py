@@ -1,0 +1,194 @@
+"""Pooled (composite-likelihood) fits over a region's windows: estimates against a known simulated truth, standard
+errors against the 1/sqrt(n) law, the heterogeneity test against its chi-squared null and a two-regime
+alternative, the block elimination against a dense inverse, a single window against fit_window, the command line.
+
+Simulations: complex velocity from driftspec.analysis.simulate (circulant embedding), hourly, measured velocities
+(observation "none"); 60-day drifters cut into 30-day windows with 50 % overlap (3 windows per drifter), each
+drifter at its own latitude (so its own inertial frequency) and with its own amplitudes.
+"""
+
+import subprocess
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+from scipy import stats
+
+from driftspec.analysis import FitSpec, Window, fit_window, inertial_frequency_cpd, simulate
+from driftspec.analysis.fitting.estimators import DebiasedWhittle, to_x
+from driftspec.analysis.regional.pooled import OFFSET, pool_fit, pool_map, prepare_pooled_window
+
+HOUR = 3600.0
+T0 = pd.Timestamp("2030-01-01")
+TRUTH = {"matern_alpha": 1.2, "matern_damping": 1.0, "inertial_damping": 0.15, OFFSET: 0.02}
+SPEC = FitSpec(models=("matern+inertial",), velocity="measured", observation="none", inertial_frequency="free")
+
+
+def drifters(n_tracks, seed, days=60, window_days=30, overlap=0.5, alpha=None, lon=-30.0):
+    """Windows of ``n_tracks`` simulated drifters sharing TRUTH (``alpha``: per-drifter slopes instead)."""
+    rng = np.random.default_rng(seed)
+    n, length = int(days * 24), int(window_days * 24)
+    hop = int(length * (1 - overlap))
+    out = []
+    for t in range(n_tracks):
+        lat = rng.uniform(20, 40)
+        fc = inertial_frequency_cpd(lat)
+        a = TRUTH["matern_alpha"] if alpha is None else alpha[t]
+        theta = [rng.uniform(0.01, 0.04), a, TRUTH["matern_damping"], rng.uniform(0.005, 0.02),
+                 fc + TRUTH[OFFSET], TRUTH["inertial_damping"]]
+        z = simulate("matern+inertial", theta, n=n, dt=HOUR, seed=rng)
+        for k, s in enumerate(range(0, n - length + 1, hop)):
+            out.append(Window(f"D{seed}-{t}", 0, k, T0 + pd.Timedelta(hours=s), T0 + pd.Timedelta(hours=s + length - 1),
+                              HOUR, z[s:s + length].copy(), np.full(length, lat), np.full(length, lon)))
+    return out
+
+
+@pytest.fixture(scope="module")
+def shared40():
+    return drifters(40, seed=11)
+
+
+def test_estimates_near_truth_and_errors_shrink_as_one_over_root_n(shared40):
+    small = pool_fit(shared40[:30], SPEC)  # 10 drifters, 30 windows
+    large = pool_fit(shared40, SPEC)  # 40 drifters, 120 windows
+    for res in (small, large):
+        assert res.status == "ok", res.message
+        assert res.stderr_method == "cluster" and res.n_tracks in (10, 40)
+        # the simulated truth lies within about two standard errors (3 allows for four parameters at once)
+        for k, v in TRUTH.items():
+            assert abs(res.params[k] - v) < 3 * res.stderr[k], (k, res.params[k], res.stderr[k])
+    # composite-likelihood asymptotics over independent clusters (Varin, Reid & Firth 2011, section 2.3): the
+    # variance falls as 1 / (number of clusters): 4 times the drifters, half the standard error
+    ratios = [small.stderr[k] / large.stderr[k] for k in TRUTH]
+    assert 1.4 < np.median(ratios) < 2.8, ratios
+    # the amplitudes are per window: one row per window with its own variances
+    assert len(large.windows) == 120 and large.windows["matern_variance"].nunique() == 120
+
+
+def test_heterogeneity_rejects_two_slopes_and_keeps_a_shared_truth(shared40):
+    # Rao's score test, chi-squared with (drifters - 1) x parameters degrees of freedom under the null
+    same = pool_fit(shared40[:60], SPEC)
+    assert same.heterogeneity_groups == "tracks" and same.heterogeneity_df == 19 * 4
+    assert same.heterogeneity_pvalue > 0.05
+    assert same.heterogeneity_pvalue == pytest.approx(stats.chi2.sf(same.heterogeneity_statistic, 76))
+    two = pool_fit(drifters(20, seed=12, alpha=[1.0] * 10 + [1.5] * 10), SPEC)
+    assert two.heterogeneity_pvalue < 1e-3, two.heterogeneity_pvalue
+
+
+def test_schur_elimination_matches_a_dense_inverse():
+    # five drifters, one complete window each: the profiled information S (Schur complement over the per-window
+    # blocks) inverts to the shared block of the inverse of the whole (shared + every window's amplitudes) Fisher
+    # information, built densely here from each window's own DebiasedWhittle.fisher and inverted by numpy
+    ws = [drifters(1, seed=20 + i, days=30)[0] for i in range(5)]
+    res = pool_fit(ws, SPEC)
+    assert res.status == "ok" and res.stderr_method == "model"
+    names = list(TRUTH)
+    nuis = ["matern_variance", "inertial_variance"]
+    size = len(names) + len(nuis) * len(ws)
+    dense = np.zeros((size, size))
+    for w, win in enumerate(ws):
+        pw = prepare_pooled_window(win, SPEC)
+        fam = pw.problem.family
+        row = res.windows.iloc[w]
+        theta = {**{k: row[k] for k in nuis}, "inertial_frequency": row["inertial_frequency"],
+                 **{k: res.params[k] for k in names if k != OFFSET}}
+        x = to_x([theta[k] for k in fam.names], fam)
+        f = DebiasedWhittle().fisher(pw.problem, x)
+        idx = [names.index(OFFSET) if k == "inertial_frequency" else
+               (names.index(k) if k in names else len(names) + len(nuis) * w + nuis.index(k)) for k in fam.names]
+        dense[np.ix_(idx, idx)] += f
+    order = [names.index(k) for k in res.params]
+    np.testing.assert_allclose(np.linalg.inv(res.information),
+                               np.linalg.inv(dense)[np.ix_(order, order)], rtol=1e-6, atol=1e-12)
+
+
+def differenced_window(seed, lat=30.0):
+    """30 days of hourly central-difference velocities, (x(t + 1 h) - x(t - 1 h)) / 2 h, of positions integrated
+    from a velocity simulated every 10 minutes: what the observation model "differenced" describes."""
+    theta = [0.02, 1.2, 1.0, 0.01, inertial_frequency_cpd(lat) + 0.02, 0.15]
+    fine = simulate("matern+inertial", theta, n=6 * 722, dt=600.0, seed=seed)
+    x = np.cumsum(fine) * 600.0
+    t = np.arange(1, 721)
+    z = (x[6 * (t + 1)] - x[6 * (t - 1)]) / (2 * HOUR)
+    return Window("A", 0, 0, T0, T0 + pd.Timedelta(hours=719), HOUR, z, np.full(720, lat), np.full(720, -30.0))
+
+
+@pytest.mark.parametrize("velocity, observation", [("measured", "none"), ("central", "differenced")])
+def test_single_window_equals_fit_window(velocity, observation):
+    # an independent computation: fit_window's own optimiser on the same window and specification
+    spec = SPEC.replace(velocity=velocity, observation=observation)
+    w = drifters(1, seed=5, days=30)[0] if velocity == "measured" else differenced_window(seed=6)
+    single = fit_window(w, spec)[0]
+    sandwich = fit_window(w, spec.replace(stderr="sandwich"))[0]
+    pooled = pool_fit([w], spec)
+    assert single.status == pooled.status == "ok"
+    for k in ("matern_alpha", "matern_damping", "inertial_damping"):
+        assert pooled.params[k] == pytest.approx(single.params[k], abs=0.02 * single.stderr[k])
+        # model-based errors (score covariance of drifters simulated from the fit) against fit_window's sandwich
+        # (its own simulation of the window): the same up to Monte Carlo error
+        assert 0.5 < pooled.stderr[k] / sandwich.stderr[k] < 2.0
+    f_local = inertial_frequency_cpd(w.lat)
+    assert pooled.params[OFFSET] + f_local == pytest.approx(single.params["inertial_frequency"],
+                                                            abs=0.02 * single.stderr["inertial_frequency"])
+    for k in ("matern_variance", "inertial_variance"):
+        assert pooled.windows[k].iloc[0] == pytest.approx(single.params[k], abs=0.02 * single.stderr[k])
+    assert np.isnan(pooled.heterogeneity_pvalue)  # one window: nothing to compare
+
+
+def test_share_all_and_bad_options():
+    ws = drifters(3, seed=7)
+    res = pool_fit(ws, SPEC, share="all")  # the drifters' amplitudes differ: a bound may be met
+    assert res.status in ("ok", "at_bound") and "matern_variance" in res.params and "matern_variance" not in res.windows
+    with pytest.raises(ValueError, match="share must be"):
+        pool_fit(ws, SPEC, share="some")
+    with pytest.raises(ValueError, match="debiased Whittle"):
+        pool_fit(ws, SPEC.replace(estimator="whittle"))
+    assert pool_fit(ws[:1], SPEC, min_windows=2).status == "too_few_windows"
+
+
+def test_pool_map_bins_and_cf_layout(tmp_path):
+    # drifters at longitudes 30 W and 10 W (latitudes 20-40 N) land in two 20-degree bins
+    ws = drifters(4, seed=8, lon=-30.0) + drifters(4, seed=9, lon=-10.0)
+    ds = pool_map(ws, SPEC, bin_deg=20.0, region=(-40.0, 20.0, 0.0, 40.0), out=tmp_path / "p.nc", progress=False)
+    back = xr.open_dataset(tmp_path / "p.nc")
+    assert int(back["n_windows"].sum()) == len(ws) and int(back["n_tracks"].sum()) == 8
+    assert back["n_windows"].attrs["standard_name"] == "number_of_observations"  # CF 1.11 appendix C
+    for k in TRUTH:
+        assert k in back and k + "_se" in back
+    assert back["matern_damping"].attrs["units"] == "day-1" and back.attrs["Conventions"] == "CF-1.11"
+    assert "heterogeneity_pvalue" in back and "flag_meanings" in back["pooled_status"].attrs
+    assert not (tmp_path / "p.nc.partial").exists()
+    # the map's cell equals a pooled fit of the same windows
+    one = pool_fit(ws[:12], SPEC)
+    cell = ds.sel(lat=30.0, lon=-30.0)
+    assert float(cell["matern_alpha"]) == pytest.approx(one.params["matern_alpha"])
+    with pytest.raises(ValueError, match="LAT0 < LAT1"):
+        pool_map(ws, SPEC, bin_deg=20.0, region=(-40, 50, 0, 0), progress=False)
+
+
+def test_command_line(tmp_path, demo_dir):
+    def run(*args):
+        return subprocess.run([sys.executable, "-m", "driftspec.app.cli", *map(str, args)], capture_output=True,
+                              text=True, timeout=600)
+
+    out = tmp_path / "pooled.nc"
+    r = run("pool", demo_dir / "fixes.parquet", "--window-days", 60, "--bin-deg", 10, "--out", out, "--workers", 1,
+            "--no-progress", "--region=-180,10,0,30")
+    assert r.returncode == 0, r.stderr
+    ds = xr.open_dataset(out)
+    assert {"matern_alpha", "matern_alpha_se", "n_windows", "n_tracks", "heterogeneity_pvalue"} <= set(ds.data_vars)
+    assert "sha256" in ds.attrs["source"] and "driftspec pool" in ds.attrs["history"]
+    assert int(ds["n_windows"].sum()) > 0
+    for bad in (["--bin-deg", 0], ["--bin-deg", 5, "--region", "1,2"], ["--bin-deg", 5, "--overlap", 1.5]):
+        r = run("pool", demo_dir / "fixes.parquet", "--window-days", 30, "--out", out, *bad)
+        assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1, r.stderr
+
+
+@pytest.mark.slow
+def test_heterogeneity_size_over_replicates():
+    # under a shared truth the score test rejects about 5 % of the time at the 5 % level (binomial band for 100
+    # replicates: 1-11 %)
+    p = [pool_fit(drifters(12, seed=1000 + r), SPEC).heterogeneity_pvalue for r in range(100)]
+    assert 0.01 <= np.mean(np.array(p) < 0.05) <= 0.11
