@@ -80,8 +80,8 @@ def _track(rng, days, lat0, lon0, u_mean, v_mean, theta):
     t = np.arange(n) * _STEP_S / 86400.0
     lat_mean = lat0 + np.rad2deg(v_mean * t * 86400.0 / EARTH_RADIUS_M)
     # an offset from the local inertial frequency, where the family has one, is zero here
-    z = simulate("matern+inertial", {"inertial_frequency_offset": 0.0, **theta}, n=n, dt=_STEP_S, seed=rng, latitude=lat_mean,
-                 inertial_frequency="follow-latitude")
+    z = simulate("matern+inertial", {"inertial_frequency_offset": 0.0, **theta}, n=n, dt=_STEP_S, seed=rng,
+                 latitude=lat_mean, inertial_frequency="follow-latitude")
     u, v = u_mean + z.real, v_mean + z.imag
     # trapezoid rule northward, then eastward at the running latitude
     dn = np.concatenate([[0.0], np.cumsum(0.5 * (v[1:] + v[:-1]) * _STEP_S)])
