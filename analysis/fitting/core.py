@@ -51,10 +51,13 @@ def fit_window(window, spec: FitSpec, start: dict | None = None) -> list[FitResu
     """
     fix_days = window.fix_interval_s / SECONDS_PER_DAY if window.fix_interval_s else None
     plan = spec.resolve(window.dt_seconds / SECONDS_PER_DAY, window.latitude, fix_days, window.position_error_m)
-    results = [_fit_planned(window.z, plan, spec, m, start=start) for m in spec.candidate_models]
+    defer = not spec.keep_all and len(spec.candidate_models) > 1
+    results = [_fit_planned(window.z, plan, spec, m, start=start, defer=defer) for m in spec.candidate_models]
     for r in results:
         r.window_start = window.start
-    select(results, window.n_samples * window.dt_seconds / SECONDS_PER_DAY)
+    best = select(results, window.n_samples * window.dt_seconds / SECONDS_PER_DAY)
+    if defer and best >= 0:  # the sandwich and the goodness of fit for the selected candidate only
+        complete(results[best])
     return results
 
 
@@ -139,7 +142,7 @@ def fit_series(z, dt, *, model="matern+inertial", estimator="debiased", max_freq
     return _fit_planned(z, plan, spec, spec.candidate_models[0], mask=mask, start=start)
 
 
-def _fit_planned(z, plan: WindowPlan, spec: FitSpec, model, mask=None, start=None) -> FitResult:
+def _fit_planned(z, plan: WindowPlan, spec: FitSpec, model, mask=None, start=None, defer=False) -> FitResult:
     """Prepare one window for one candidate as ``plan`` says and fit it."""
     family = spec.family(model, plan.follow_latitude)
     name = spec.model_name(model)
@@ -178,16 +181,21 @@ def _fit_planned(z, plan: WindowPlan, spec: FitSpec, model, mask=None, start=Non
                       "N^3)", stacklevel=3)
     try:
         return fit_prepared(family, prep, context, estimator, fixed=fixed, start=start, stderr=spec.stderr,
-                            model_name=name)
+                            model_name=name, defer=defer)
     except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:
         return failed("failed", f"{type(exc).__name__}: {exc}")
 
 
 def fit_prepared(family: ModelFamily, prep: PreparedWindow, context: FitContext, estimator: Estimator, *,
                  fixed: dict | None = None, start: dict | None = None, stderr: str = "auto",
-                 model_name: str | None = None) -> FitResult:
+                 model_name: str | None = None, defer: bool = False) -> FitResult:
     """The short driver: start, optimise and covariance from ``estimator``; then the diffusivity (delta
-    method), goodness of fit and status. ``fixed`` holds parameters at values (natural units)."""
+    method), goodness of fit and status. ``fixed`` holds parameters at values (natural units).
+
+    ``defer=True`` leaves the costly extras, the simulated sandwich and the goodness of fit, for
+    :func:`complete` (the Fisher-information errors stand in until then): a window's candidates are fitted that
+    way and only the selected one is completed.
+    """
     fixed = dict(fixed or {})
     names = family.names
     f_band = prep.freq_cpd[prep.band]
@@ -197,43 +205,65 @@ def fit_prepared(family: ModelFamily, prep: PreparedWindow, context: FitContext,
     problem = Problem.build(family, prep, context, theta0, fixed)
     x0 = estimator.start(problem) if not start else problem.x0
     opt = estimator.optimise(problem, x0)
-    x_hat = problem.full(opt.x)
     theta = problem.theta(opt.x)
+    kappa, kappa_grad = _diffusivity_and_gradient(problem, opt.x)
+    loglik = -opt.value
+    n_free = int(problem.free.sum())
+    result = FitResult(
+        model=model_name or family.name, estimator=estimator.name,
+        params=dict(zip(names, map(float, theta))), stderr={}, units=family.units, loglik=loglik,
+        aic=2 * n_free - 2 * loglik, diffusivity=kappa, derived=family.derived(theta, context), n_samples=prep.n,
+        n_valid=prep.n_valid, n_freq=int(prep.band.sum()), n_evaluations=problem.n_evaluations,
+        max_freq=float(np.abs(prep.freq_cpd[prep.band_index]).max()), fixed=fixed, family=family,
+        context=context, prepared=prep,
+    )
+    result.pending = (problem, opt, estimator, stderr, kappa_grad)
+    _set_covariance(result, "fisher" if defer and estimator.name == "debiased" else stderr)
+    if not defer:
+        complete(result)
+    return result
+
+
+def complete(result: FitResult) -> FitResult:
+    """Finish a result fitted with ``defer=True``: the requested standard errors and the goodness of fit."""
+    if result.pending is None:
+        return result
+    problem, opt, estimator, stderr, _ = result.pending
+    if result.stderr_method == "fisher" and stderr != "fisher":
+        _set_covariance(result, stderr)
+    e_band = estimator.expected_band(problem, opt)
+    prep = problem.prep
+    result.gof_pvalue = ks_exponential_pvalue(prep.periodogram[prep.band_index] / np.maximum(e_band, 1e-300))
+    result.pending = None
+    return result
+
+
+def _set_covariance(result: FitResult, stderr: str) -> None:
+    """Covariance, standard errors (natural units, delta method) and status of a result for ``stderr``."""
+    problem, opt, estimator, _, kappa_grad = result.pending
     free = problem.free
     n_free = int(free.sum())
-
+    names = problem.family.names
     cov_x = np.full((n_free, n_free), np.nan)
-    stderr_method = ""
+    method = ""
     with np.errstate(all="ignore"):
         try:
-            cov_x, stderr_method = estimator.covariance(problem, opt, stderr)
+            cov_x, method = estimator.covariance(problem, opt, stderr)
         except np.linalg.LinAlgError:
             pass
-    jac_nat = natural_jacobian(theta, family)[free]
+    theta = result.theta
+    jac_nat = natural_jacobian(theta, problem.family)[free]
     cov_nat = cov_x * np.outer(jac_nat, jac_nat)
     se = np.full(len(names), np.nan)
     se[free] = np.sqrt(np.clip(np.diag(cov_nat), 0, None)) if np.all(np.isfinite(cov_nat)) else np.nan
     se[~free] = 0.0
-
-    kappa, kappa_grad = _diffusivity_and_gradient(problem, opt.x)
-    kappa_se = float(np.sqrt(max(kappa_grad @ cov_x @ kappa_grad, 0))) if np.all(np.isfinite(cov_x)) else np.nan
-
-    e_band = estimator.expected_band(problem, opt)
-    gof = ks_exponential_pvalue(prep.periodogram[prep.band_index] / np.maximum(e_band, 1e-300))
-
-    status, message, below = _status(problem, x_hat, opt, se)
+    finite = np.all(np.isfinite(cov_x))
+    result.diffusivity_se = float(np.sqrt(max(kappa_grad @ cov_x @ kappa_grad, 0))) if finite else np.nan
+    status, message, below = _status(problem, problem.full(opt.x), opt, se)
     se[below] = np.nan  # a curvature at the bound is no standard error
-    loglik = -opt.value
-    return FitResult(
-        model=model_name or family.name, estimator=estimator.name,
-        params=dict(zip(names, map(float, theta))), stderr=dict(zip(names, map(float, se))),
-        units=family.units, loglik=loglik, aic=2 * n_free - 2 * loglik, gof_pvalue=gof,
-        status=status, message=message, diffusivity=kappa, diffusivity_se=kappa_se,
-        derived=family.derived(theta, context), n_samples=prep.n, n_valid=prep.n_valid,
-        n_freq=int(prep.band.sum()), n_evaluations=problem.n_evaluations, stderr_method=stderr_method,
-        max_freq=float(np.abs(prep.freq_cpd[prep.band_index]).max()), fixed=fixed, covariance=cov_nat,
-        family=family, context=context, prepared=prep,
-    )
+    result.stderr = dict(zip(names, map(float, se)))
+    result.covariance, result.stderr_method = cov_nat, method
+    result.status, result.message = status, message
 
 
 def _diffusivity_and_gradient(problem: Problem, xf):
@@ -290,4 +320,4 @@ def _unfitted(model, estimator, family, status, message, n=0, n_valid=0, max_fre
                      n_samples=n, n_valid=n_valid, max_freq=max_freq, family=family)
 
 
-__all__ = ["EXACT_WARN_SAMPLES", "MIN_VALID_SAMPLES", "fit_prepared", "fit_series", "fit_window"]
+__all__ = ["EXACT_WARN_SAMPLES", "MIN_VALID_SAMPLES", "complete", "fit_prepared", "fit_series", "fit_window"]

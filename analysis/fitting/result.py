@@ -79,6 +79,7 @@ class FitResult:
     selection: str = ""
     fixed: dict = field(default_factory=dict)
     covariance: np.ndarray | None = field(default=None, repr=False)
+    pending: tuple | None = field(default=None, repr=False)  # what completing a deferred fit needs
     family: ModelFamily | None = field(default=None, repr=False)
     context: FitContext | None = field(default=None, repr=False)
     prepared: PreparedWindow | None = field(default=None, repr=False)

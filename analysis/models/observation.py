@@ -121,6 +121,32 @@ def _moment_weights(h: int) -> np.ndarray:
     return np.array([w_half[abs(int(x))] for x in nodes])
 
 
+class _LagGrid:
+    """Signed lags (days) at which a component is evaluated for one window shape, and their quadrature layout."""
+
+    def __init__(self, x_all, n_int, n_half, n_mid, near, near_weights, mids, mid_index, n_lags):
+        self.x_days = x_all
+        neg = x_all < 0
+        self.negative = neg if neg.any() else None
+        self.abs_days = np.abs(x_all)
+        self.n_int, self.n_half, self.n_mid = n_int, n_half, n_mid
+        self.near, self.near_weights = near, near_weights
+        self.mids, self.mid_index = mids, mid_index
+        self.n_lags = n_lags
+        self._rotations = {}
+
+    def rotation(self, f_cpd: float, lags_only: bool = False) -> np.ndarray:
+        """``exp(2 pi i f x)`` at the grid's lags (or at the window's lags ``0..n-1`` times the step)."""
+        key = (f_cpd, lags_only)
+        if key not in self._rotations:
+            if len(self._rotations) > 8:
+                self._rotations.clear()
+            dt = self.x_days[1] if self.x_days.size > 1 else 0.0
+            x = np.arange(self.n_lags) * dt if lags_only else self.x_days
+            self._rotations[key] = np.exp(2j * np.pi * f_cpd * x)
+        return self._rotations[key]
+
+
 class _AveragedComponent(ModelFamily):
     """One model component seen through the difference operator."""
 
@@ -134,41 +160,34 @@ class _AveragedComponent(ModelFamily):
         self._s, self._w = _simpson_weights(op.half_width)
         self._w_int = _moment_weights(op.half_width)
 
-    def _raw(self, theta, x_days, ctx, jac):
-        """Base autocovariance at arbitrary signed lags (R(-x) = conj R(x)), shifted to the window's mean
+    def _raw(self, theta, grid, ctx, jac):
+        """Base autocovariance at the grid's signed lags (R(-x) = conj R(x)), shifted to the window's mean
         inertial frequency for a modulated component."""
-        neg = x_days < 0
-        any_neg = bool(neg.any())
-        ax = np.abs(x_days) if any_neg else x_days
         if jac:
-            r, j = self.base.autocovariance_jacobian(theta, ax, ctx)
+            r, j = self.base._autocovariance_jacobian(theta, grid.abs_days, ctx)
         else:
-            r, j = self.base.autocovariance(theta, ax, ctx), None
-        if any_neg:
-            r = np.where(neg, np.conj(r), r)
+            r, j = self.base._autocovariance(theta, grid.abs_days, ctx), None
+        if grid.negative is not None:
+            r = np.where(grid.negative, np.conj(r), r)
             if j is not None:
-                j = np.where(neg[None, :], np.conj(j), j)
+                j = np.where(grid.negative[None, :], np.conj(j), j)
         if self.modulated and ctx.inertial_frequency_cpd is not None:
-            rot = np.exp(2j * np.pi * ctx.inertial_frequency_cpd * x_days)
+            rot = grid.rotation(ctx.inertial_frequency_cpd)
             r = r * rot
             if j is not None:
                 j = j * rot
         return r, j
 
     def _apply(self, theta, lags_days, ctx, jac):
-        dt = ctx.dt_days
         n = len(lags_days)
         h = self.op.half_width
-        n_mid = min(n, _FAR_LAG)  # lags h < j < n_mid: Simpson on half samples; j >= n_mid: integer nodes
-        near, x_near, wq = self._near_rule(min(h + 1, n), dt)
-        x_int = np.arange(n + h) * dt
-        x_half = (np.arange(2 * (h + 1 - h), 2 * (n_mid - 1 + h) + 1) / 2.0) * dt if n_mid > h + 1 else np.zeros(0)
-        r_all, j_all = self._raw(theta, np.concatenate([x_int, x_half, x_near]), ctx, jac)
-        a, b = x_int.size, x_int.size + x_half.size
-        rows = [r_all[None, :]] + ([j_all] if jac else [])
-        stack = np.concatenate(rows, axis=0)  # (1 + p, points): value and derivatives together
+        grid = self._grid(n, ctx.dt_days)
+        r_all, j_all = self._raw(theta, grid, ctx, jac)
+        a, b = grid.n_int, grid.n_int + grid.n_half
+        stack = np.concatenate([r_all[None, :], j_all], axis=0) if jac else r_all[None, :]
         v_int, v_half, v_near = stack[:, :a], stack[:, a:b], stack[:, b:]
-        out = np.zeros((stack.shape[0], n), stack.dtype)  # real for a real autocovariance
+        out = np.empty((stack.shape[0], n), stack.dtype)  # real for a real autocovariance
+        n_mid = grid.n_mid
         # far lags: the moment-matched rule on integer nodes j-h .. j+h (exact for polynomials of degree 2h);
         # its weights are symmetric, so nodes j-m and j+m share one multiplication
         if n > n_mid:
@@ -177,15 +196,29 @@ class _AveragedComponent(ModelFamily):
             for m in range(1, h + 1):
                 far += self._w_int[h + m] * (v_int[:, n_mid - m:n - m] + v_int[:, n_mid + m:n + m])
         # middle lags: Simpson on half samples; v_half[q - 2] is the value at q / 2 samples
-        if n_mid > h + 1:
-            mids = np.arange(h + 1, n_mid)
-            idx = (2 * mids - 2 * h - 2)[:, None] + np.arange(4 * h + 1)[None, :]
-            out[:, mids] = v_half[:, idx] @ self._w
+        if grid.mids.size:
+            out[:, grid.mids] = v_half[:, grid.mid_index] @ self._w
         # lags within h of zero: Gauss-Legendre on unit sub-intervals, the cusp at 0 on their edges
-        out[:, near] = (v_near.reshape(stack.shape[0], len(near), -1) * wq).sum(axis=2)
+        out[:, grid.near] = (v_near.reshape(stack.shape[0], grid.near.size, -1) * grid.near_weights).sum(axis=2)
         if self.modulated and ctx.inertial_frequency_cpd is not None:
-            out *= np.exp(-2j * np.pi * ctx.inertial_frequency_cpd * np.asarray(lags_days))[None, :]
+            out *= np.conj(grid.rotation(ctx.inertial_frequency_cpd, lags_only=True))[None, :]
         return out[0], (out[1:] if jac else None)
+
+    def _grid(self, n, dt):
+        """The quadrature nodes for ``n`` lags at step ``dt`` (days), kept for the last window seen."""
+        key = (n, dt)
+        if getattr(self, "_grid_key", None) != key:
+            h = self.op.half_width
+            n_mid = min(n, _FAR_LAG)  # lags h < j < n_mid: Simpson on half samples; j >= n_mid: integer nodes
+            near, x_near, wq = self._near_rule(min(h + 1, n), dt)
+            x_int = np.arange(n + h) * dt
+            x_half = (np.arange(2, 2 * (n_mid - 1 + h) + 1) / 2.0) * dt if n_mid > h + 1 else np.zeros(0)
+            x_all = np.concatenate([x_int, x_half, x_near])
+            mids = np.arange(h + 1, n_mid) if n_mid > h + 1 else np.zeros(0, int)
+            self._grid_key = key
+            self._grid_val = _LagGrid(x_all, x_int.size, x_half.size, n_mid, near, wq, mids,
+                                      (2 * mids - 2 * h - 2)[:, None] + np.arange(4 * h + 1)[None, :], n)
+        return self._grid_val
 
     def _near_rule(self, n_near, dt):
         """Lags 0..n_near-1, their Gauss-Legendre abscissae (days) and weights (cached per window step)."""
