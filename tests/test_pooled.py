@@ -14,7 +14,6 @@ import numpy as np
 import pandas as pd
 import pytest
 import xarray as xr
-from scipy import stats
 
 from driftspec.analysis import FitSpec, Window, fit_window, inertial_frequency_cpd, simulate
 from driftspec.analysis.fitting.estimators import DebiasedWhittle, to_x
@@ -72,9 +71,11 @@ def test_heterogeneity_rejects_two_slopes_and_keeps_a_shared_truth(shared40):
     same = pool_fit(shared40[:60], SPEC)
     assert same.heterogeneity_groups == "tracks" and same.heterogeneity_df == 19 * 4
     assert same.heterogeneity_pvalue > 0.05
-    assert same.heterogeneity_pvalue == pytest.approx(stats.chi2.sf(same.heterogeneity_statistic, 76))
+    # the statistic is of the size of its degrees of freedom (chi-squared mean 76, sd 12.3)
+    assert abs(same.heterogeneity_statistic - 76) < 3 * np.sqrt(2 * 76)
     two = pool_fit(drifters(20, seed=12, alpha=[1.0] * 10 + [1.5] * 10), SPEC)
-    assert two.heterogeneity_pvalue < 1e-3, two.heterogeneity_pvalue
+    # the smallest bootstrap p-value is 1 / (N_SIM + 1); the statistic is far beyond the null's range
+    assert two.heterogeneity_pvalue < 0.01 and two.heterogeneity_statistic > 76 + 5 * np.sqrt(2 * 76)
 
 
 def test_schur_elimination_matches_a_dense_inverse():
