@@ -17,6 +17,8 @@ Reading guide
 
 from __future__ import annotations
 
+import functools
+import operator
 import threading
 import time
 
@@ -464,7 +466,7 @@ def geography_layers(data: TrackData, labels: bool):
                                                       alpha=0.8)
     layers = [land_el, grid]
     (x0, x1), (y0, y1) = data.extent
-    xt, yt = degree_ticks(data.proj, (x0 - (x1 - x0), x1 + (x1 - x0)), (y0 - (y1 - y0), y1 + (y1 - y0)))
+    xt, yt = degree_ticks(data.proj, (x0, x1), (y0, y1))
     if xt:
         axis = dict(xticks=list(xt.items()), yticks=list(yt.items()), xlabel="longitude", ylabel="latitude")
     else:
@@ -498,7 +500,8 @@ class TrackMap(View):
             pts = pts[(t >= lo) & (t <= hi)]
         col = color_by if color_by in pts else "speed"
         return hv.Points((pts["x"].to_numpy(), pts["y"].to_numpy(), pts[col].to_numpy()), kdims=["x", "y"],
-                         vdims=[hv.Dimension("value", label=col)])
+                         vdims=[hv.Dimension("value", label={"speed": "speed (m/s)",
+                                                             "time": "days since first fix"}.get(col, col))])
 
     def _selected(self, track):
         v = self.ex.track_velocity(track)
@@ -521,9 +524,8 @@ class TrackMap(View):
         shaded = dynspread(rasterize(pts, aggregator=dsh.mean("value"), width=900, height=560),
                            threshold=0.6, max_px=2)
         shaded = shaded.apply.opts(
-            cmap=pn.bind(lambda c: "viridis" if c == "time" else "fire", st.param.color_by), colorbar=True,
-            cnorm="eq_hist", tools=["tap", "box_select"], clabel=pn.bind(
-                lambda c: {"speed": "speed (m/s)", "time": "days since first fix"}.get(c, c), st.param.color_by))
+            clabel=pn.bind(lambda c: {"speed": "speed (m/s)", "time": "days since first fix"}.get(c, c),
+                           st.param.color_by), cmap="fire", colorbar=True, cnorm="eq_hist", tools=["tap", "box_select"])
         tap = hv.streams.Tap(source=shaded, x=np.nan, y=np.nan)
         tap.add_subscriber(lambda x=None, y=None, **_: self.ex.select_at(x, y))
         # hover and box select act on glyphs: an invisible, thinned copy of the samples carrying degrees
@@ -541,8 +543,8 @@ class TrackMap(View):
         sel = hv.DynamicMap(pn.bind(self._selected, st.param.track))
         box = hv.DynamicMap(pn.bind(self._region_box, st.param.region))
         (x0, x1), (y0, y1) = data.extent
-        return hv.Overlay([geo[0], shaded, *geo[1:], picker, sel, box]).opts(hv.opts.Overlay(
-            responsive=True, min_height=440, title="All tracks", xlim=(x0, x1), ylim=(y0, y1), data_aspect=1,
+        return functools.reduce(operator.mul, [geo[0], shaded, *geo[1:], picker, sel, box]).opts(hv.opts.Overlay(
+            frame_height=480, title="All tracks", xlim=(x0, x1), ylim=(y0, y1), data_aspect=1,
             active_tools=["wheel_zoom"], bgcolor="#eef2f5", **axis))
 
     @param.depends("pointer.x", "pointer.y")
@@ -563,7 +565,7 @@ class TrackMap(View):
             css_classes=["ds-readout"], margin=(10, 10, 4, 10))
 
     def __panel__(self):
-        items = [pn.pane.HoloViews(self.plot(), sizing_mode="stretch_width", min_height=440), self.readout]
+        items = [pn.pane.HoloViews(self.plot()), self.readout]
         return pn.Column(*items, sizing_mode="stretch_width")
 
 
@@ -799,14 +801,14 @@ class ParameterMap(View):
         qy = np.concatenate([q[:, 1] for row in quads for q in row])
         pad = 0.05 * max(np.ptp(qx), np.ptp(qy))
         return hv.Overlay([geo[0], mesh, *geo[1:]]).opts(hv.opts.Overlay(
-            responsive=True, min_height=440, data_aspect=1, fontscale=self.fontscale(), bgcolor="#eef2f5",
+            frame_height=480, data_aspect=1, fontscale=self.fontscale(), bgcolor="#eef2f5",
             title=f"median {p} in {b:g}° bins ({int(cnt.sum())} ok fits)",
             xlim=(qx.min() - pad, qx.max() + pad), ylim=(qy.min() - pad, qy.max() + pad), **axis))
 
     def __panel__(self):
         mp = pn.widgets.Select.from_param(self.state.param.map_param, name="Parameter")
         binsz = pn.widgets.FloatSlider.from_param(self.state.param.bin_deg, name="Bin size (degrees)")
-        return pn.Column(pn.Row(mp, binsz, self.fit_all), pn.panel(self.plot, sizing_mode="stretch_width"),
+        return pn.Column(pn.Row(mp, binsz, self.fit_all), pn.panel(self.plot),
                          sizing_mode="stretch_width")
 
 

@@ -110,18 +110,22 @@ def lat_label(lat: float) -> str:
     return f"{abs(lat):g}°{'N' if lat > 0 else 'S' if lat < 0 else ''}"
 
 
-def degree_ticks(proj: MapProjection, xlim, ylim) -> tuple[dict, dict]:
+def degree_ticks(proj: MapProjection, xlim, ylim, reach: float = 1.0) -> tuple[dict, dict]:
     """Axis ticks of a cylindrical view: ``{x_position: "150°W", ...}`` and ``{y_position: "30°N", ...}``
-    for round degree values inside the view. Empty for polar views (their labels sit on the graticule)."""
+    at round degree values, spaced for the view ``xlim`` x ``ylim`` and extending ``reach`` view widths beyond
+    it (for panning). Empty for polar views (their labels sit on the graticule)."""
     if not proj.cylindrical:
         return {}, {}
     lon, lat = proj.inverse(np.array([xlim[0], xlim[1]]), np.array([ylim[0], ylim[1]]))
-    span_lon = (xlim[1] - xlim[0]) / (np.pi * EARTH_RADIUS_M / 180)
-    lon0 = proj.central_lon + (xlim[0] / (np.pi * EARTH_RADIUS_M / 180))
+    deg = np.pi * EARTH_RADIUS_M / 180  # metres of x per degree of longitude
+    span_lon = (xlim[1] - xlim[0]) / deg
+    lon0 = proj.central_lon + xlim[0] / deg
     step = _step(span_lon)
-    lons = np.arange(np.ceil(lon0 / step) * step, lon0 + span_lon + 1e-9, step)
+    lons = np.arange(np.ceil((lon0 - reach * span_lon) / step) * step, lon0 + (1 + reach) * span_lon, step)
     lat_step = _step(lat[1] - lat[0])
-    lats = np.arange(np.ceil(lat[0] / lat_step) * lat_step, lat[1] + 1e-9, lat_step)
+    la0 = max(lat[0] - reach * (lat[1] - lat[0]), -proj.max_abs_lat)
+    la1 = min(lat[1] + reach * (lat[1] - lat[0]), proj.max_abs_lat)
+    lats = np.arange(np.ceil(la0 / lat_step) * lat_step, la1 + 1e-9, lat_step)
     xs, _ = proj.forward(lons, np.zeros_like(lons))
     _, ys = proj.forward(np.full_like(lats, proj.central_lon), lats)
     return ({float(x): lon_label(v) for x, v in zip(xs, lons)}, {float(y): lat_label(v) for y, v in zip(ys, lats)})
