@@ -411,6 +411,8 @@ class Explorer(param.Parameterized):
             header_background="#0d1620" if dark else "#1d2b3a", sidebar_width=320,
             theme="dark" if dark else "default", raw_css=[PRESENTATION_CSS])
         self.start()
+        if self.doc is not None:
+            pn.state.on_session_destroyed(lambda _ctx: self.cancel())  # a closed page stops its jobs
         return tpl
 
     def sync_url(self):
@@ -422,6 +424,8 @@ class Explorer(param.Parameterized):
         def write(*_):
             loc.search = "?" + self.url_query()
         self.state.param.watch(write, list(URL_PARAMS))
+        if any(k in loc.search for k in URL_PARAMS):
+            write()  # the link now shows the state actually applied
 
     def servable(self, title=None):
         return self.template().servable(title=title or self.title)

@@ -16,12 +16,18 @@ def _mpl():
     return plt
 
 
-def quicklook_map(ds, png, param: str | None = None) -> Path:
-    """A map of one gridded variable of a ``grid_fits`` dataset, with bins, counts and shoreline."""
+def quicklook_map(ds, png, param: str | None = None, return_projection: bool = False):
+    """A map of one gridded variable of a ``grid_fits`` dataset, with bins, shoreline, filled land and labelled
+    graticule, in the projection the dashboard would choose for the same extent (Mercator, or polar
+    stereographic beyond 60° of latitude; :func:`driftspec.app.geo.choose_projection`).
+
+    Returns the PNG's path (and the chosen :class:`~driftspec.app.geo.MapProjection` when asked).
+    """
     import cartopy.crs as ccrs
     import cartopy.feature as cfeature
 
     from .coastline import configure_cartopy
+    from .geo import choose_projection
 
     configure_cartopy()
     plt = _mpl()
@@ -32,23 +38,26 @@ def quicklook_map(ds, png, param: str | None = None) -> Path:
     lat_e = np.r_[ds["lat_bnds"].values[:, 0], ds["lat_bnds"].values[-1, 1]]
     has = ds["count"].values > 0
     rows, cols = np.flatnonzero(has.any(1)), np.flatnonzero(has.any(0))
-    fig = plt.figure(figsize=(9, 5.5), dpi=120)
-    central = float(np.mean(ds["lon"].values[cols])) if cols.size else 0.0
-    ax = fig.add_subplot(1, 1, 1, projection=ccrs.PlateCarree(central_longitude=central))
+    glon, glat = np.meshgrid(ds["lon"].values, ds["lat"].values)
+    proj = choose_projection(glon[has], glat[has])
+    fig = plt.figure(figsize=(9, 5.5 if proj.cylindrical else 7.5), dpi=120)
+    ax = fig.add_subplot(1, 1, 1, projection=proj.crs)
     vals = np.where(has, ds[param].values, np.nan)
     mesh = ax.pcolormesh(lon_e, lat_e, vals, transform=ccrs.PlateCarree(), cmap="cividis", shading="flat")
     ax.add_feature(cfeature.GSHHSFeature(scale="c", levels=[1], facecolor="#d9d4c7", edgecolor="#555"))
     if rows.size and cols.size:
         pad = 2 * float(ds.attrs.get("bin_size_degrees", 2.0))
-        ax.set_extent([lon_e[cols[0]] - pad, lon_e[cols[-1] + 1] + pad, max(lat_e[rows[0]] - pad, -89),
-                       min(lat_e[rows[-1] + 1] + pad, 89)], crs=ccrs.PlateCarree())
-    ax.gridlines(draw_labels=True, linewidth=0.3, color="#888")
+        ax.set_extent([lon_e[cols[0]] - pad, lon_e[cols[-1] + 1] + pad, max(lat_e[rows[0]] - pad, -89.5),
+                       min(lat_e[rows[-1] + 1] + pad, 89.5)], crs=ccrs.PlateCarree())
+    grid = ax.gridlines(draw_labels=True, linewidth=0.4, color="#888", linestyle="--")
+    if proj.cylindrical:  # labels left and below; the colour bar is on the right
+        grid.top_labels = grid.right_labels = False
     unit = ds[param].attrs.get("units", "")
     fig.colorbar(mesh, ax=ax, shrink=0.8, label=f"{ds[param].attrs.get('cell_methods', '')} {param} ({unit})")
     ax.set_title(f"{param}: {int(ds['count'].sum())} ok window fits in {ds.attrs.get('bin_size_degrees')}° bins")
     fig.savefig(png, bbox_inches="tight")
     plt.close(fig)
-    return Path(png)
+    return (Path(png), proj) if return_projection else Path(png)
 
 
 def dispersion_figure(res, png, model_kappa: float | None = None) -> Path:

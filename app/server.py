@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import functools
 import os
+import signal
+import sys
 import threading
 from pathlib import Path
 from urllib.parse import urlencode
@@ -186,6 +188,8 @@ def serve(input_path=None, fits=None, port=5006, address="127.0.0.1", show=False
     origins = [f"{address}:{port}", f"localhost:{port}", f"127.0.0.1:{port}", *extra_origins]
     url = f"http://{address}:{port}/driftspec"
     print(f"driftspec: dashboard at {url}  (Ctrl+C to stop)", flush=True)
+    # SIGTERM ends the server like Ctrl+C, so the fit workers are stopped with it
+    signal.signal(signal.SIGTERM, lambda *_: sys.exit(0))
     pn.config.inline = True  # every resource from this server: the page works with no network
     pn.serve({"driftspec": make_app(path.resolve(), fits_path)}, port=port, address=address,
              websocket_origin=origins, show=show, title="driftspec", threaded=False, start=True,

@@ -1,11 +1,15 @@
 """The dashboard in a real browser: Debian's Chromium driven by Playwright against `driftspec serve`.
 
+The tests read values, not just existence: the fit table against `driftspec fit`'s row for the same window and
+settings, the summaries against the settings last chosen, the axes' labels in degrees.
+
 Outside CI these tests skip when no browser is installed; with DRIFTSPEC_REQUIRE_BROWSER=1 (set by
 .ci/run) a missing browser is a failure.
 """
 
 import os
 import re
+import shutil
 import socket
 import subprocess
 import sys
@@ -18,6 +22,9 @@ from conftest import chromium_path
 pytestmark = pytest.mark.browser
 CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking",
                  "--disable-component-update", "--disable-sync", "--no-first-run", "--disable-quic"]
+#: settings of `driftspec fit` equal to the dashboard's defaults
+CLI_DEFAULTS = ["--window-days", "30", "--model", "matern+inertial", "--observation", "differenced+noise",
+                "--estimator", "debiased", "--taper", "none", "--inertial-frequency", "free"]
 
 
 def _browser_or_skip():
@@ -41,14 +48,44 @@ def _free_port():
         return s.getsockname()[1]
 
 
+def _moved(fixes, lon0, lat0, scale):
+    """The demo's tracks moved (and shrunk) to centre on lon0, lat0, degrees."""
+    out = fixes.copy()
+    out["lon"] = lon0 + scale * (out["lon"] - out["lon"].mean())
+    out["lat"] = lat0 + scale * (out["lat"] - out["lat"].mean())
+    return out
+
+
 @pytest.fixture(scope="module")
-def server(demo_dir):
+def served_dir(demo_dir, tmp_path_factory):
+    """The served folder: the demo, one track alone, numeric track ids, tracks off a coast, polar tracks, and
+    two CSV files with nothing to show."""
+    from driftspec.analysis.io import read_fixes, write_fixes
+
+    out = tmp_path_factory.mktemp("served")
+    shutil.copy(demo_dir / "fixes.parquet", out / "fixes.parquet")
+    fixes = read_fixes(str(demo_dir / "fixes.parquet")).drop(columns="row")
+    ids = sorted(fixes["id"].astype(str).unique())
+    write_fixes(fixes[fixes["id"].astype(str) == ids[0]], out / "one.parquet")
+    numeric = fixes[fixes["id"].astype(str).isin(ids[:3])].copy()
+    numeric["id"] = numeric["id"].astype(str).map({t: 101 + k for k, t in enumerate(ids[:3])})
+    write_fixes(numeric, out / "numeric.parquet")
+    few = fixes[fixes["id"].astype(str).isin(ids[:4])]
+    write_fixes(_moved(few, -13.0, 40.0, 0.25), out / "coast.parquet")  # off Portugal
+    write_fixes(_moved(few, 20.0, 74.0, 0.15), out / "polar.parquet")  # Barents Sea, south of Svalbard
+    (out / "header.csv").write_text("id,time,lat,lon\n")
+    (out / "allbad.csv").write_text("id,time,lat,lon\na,2020-01-01,95,10\na,2020-01-02,95,10\n")
+    return out
+
+
+@pytest.fixture(scope="module")
+def server(served_dir):
     _browser_or_skip()
     port = _free_port()
-    proc = subprocess.Popen([sys.executable, "-m", "driftspec.app.cli", "serve", str(demo_dir / "fixes.parquet"),
+    proc = subprocess.Popen([sys.executable, "-m", "driftspec.app.cli", "serve", str(served_dir / "fixes.parquet"),
                              "--port", str(port)], stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
     url = None
-    deadline = time.time() + 120
+    deadline = time.time() + 180
     lines = []
     while time.time() < deadline:
         line = proc.stdout.readline()
@@ -62,7 +99,6 @@ def server(demo_dir):
     if url is None:
         proc.kill()
         pytest.fail("server did not start:\n" + "".join(lines))
-    # wait until the port answers
     for _ in range(100):
         try:
             socket.create_connection(("127.0.0.1", port), timeout=0.5).close()
@@ -72,7 +108,7 @@ def server(demo_dir):
     yield url
     proc.terminate()
     try:
-        proc.wait(10)
+        proc.wait(20)
     except subprocess.TimeoutExpired:
         proc.kill()
 
@@ -88,36 +124,83 @@ def browser():
         b.close()
 
 
-@pytest.fixture
-def page(browser):
+def _new_page(browser):
     ctx = browser.new_context(viewport={"width": 1500, "height": 1250})
     pg = ctx.new_page()
     pg.console_errors = []
+    pg.outside = []
     pg.on("console", lambda m: pg.console_errors.append(m.text) if m.type == "error" else None)
     pg.on("pageerror", lambda e: pg.console_errors.append(str(e)))
+    pg.on("request", lambda r: pg.outside.append(r.url)
+          if not r.url.startswith(("http://127.0.0.1", "ws://127.0.0.1", "data:", "blob:", "about:")) else None)
+    return ctx, pg
+
+
+@pytest.fixture
+def page(browser):
+    ctx, pg = _new_page(browser)
     yield pg
     ctx.close()
 
 
-def _open(page, url):
-    page.goto(url)
-    page.wait_for_selector("canvas", timeout=60_000)
-    page.locator(".tabulator").first.wait_for(timeout=60_000)
-    time.sleep(1.5)
+def _open(page, url, table=True):
+    page.goto(url, timeout=120_000)
+    page.wait_for_selector("canvas", timeout=90_000)
+    if table:
+        page.locator(".tabulator").first.wait_for(timeout=90_000)
+    time.sleep(1.0)
 
 
-def _velocity_title(page):
-    """The selection summary line above the velocity plot (plot titles are drawn on canvas)."""
-    for _ in range(60):
-        text = page.locator(".ds-summary >> div").first.inner_text(timeout=30_000)
-        if text.strip():
-            return text
-        time.sleep(0.25)  # the pane is being redrawn
+def _text(page, css, timeout=30.0):
+    """Text of a Markdown pane (its div lives in the pane's shadow root), waiting while it is redrawn."""
+    deadline = time.time() + timeout
+    while time.time() < deadline:
+        loc = page.locator(f"{css} >> div")
+        if loc.count():
+            text = loc.first.inner_text(timeout=30_000)
+            if text.strip():
+                return text
+        time.sleep(0.25)
     return ""
 
 
-def _table_text(page):
-    return page.locator(".tabulator").first.inner_text(timeout=30_000)
+def _summary(page):
+    return _text(page, ".ds-summary")
+
+
+def _wait_for(fn, ok, timeout=60.0):
+    deadline = time.time() + timeout
+    value = fn()
+    while not ok(value) and time.time() < deadline:
+        time.sleep(0.3)
+        value = fn()
+    return value
+
+
+def _table_values(page):
+    """{parameter: (value, std. error)} read from the fit table's cells."""
+    text = page.locator(".tabulator").first.inner_text(timeout=30_000)
+    out = {}
+    for line in text.splitlines():
+        cells = [c for c in re.split(r"\s+", line.strip()) if c]
+        if len(cells) >= 3 and re.match(r"^[a-z_]+$", cells[0]):
+            try:
+                out[cells[0]] = (float(cells[1]), float(cells[2]))
+            except ValueError:
+                continue
+    return out
+
+
+def _axis_labels(page):
+    """Tick labels given to the plots' axes (BokehJS models of the page)."""
+    return page.evaluate("""() => {
+        const out = [];
+        for (const doc of window.Bokeh.documents)
+            for (const m of doc.all_models)
+                if (m.major_label_overrides && m.major_label_overrides.size)
+                    out.push(...[...m.major_label_overrides.values()].map(String));
+        return out;
+    }""")
 
 
 def _map_box(page):
@@ -126,96 +209,165 @@ def _map_box(page):
     return max((b for b in boxes if b), key=lambda b: b["width"] * b["height"])
 
 
-def _wait_change(fn, old, timeout=30.0):
-    deadline = time.time() + timeout
-    while time.time() < deadline:
-        new = fn()
-        if new != old:
-            return new
-        time.sleep(0.3)
-    return fn()
+def test_first_look_is_full_and_the_fit_equals_the_command_line(server, served_dir, page, tmp_path, artifacts_dir):
+    from driftspec.analysis.io import read_table
+    from driftspec.app.cli import main
 
-
-def test_map_renders_with_spectrum_and_table(server, page, artifacts_dir):
-    _open(page, server)
-    assert page.locator("canvas").count() >= 4  # map, velocity, two spectrum panels
-    text = _table_text(page)
-    assert "matern_alpha" in text and "diffusivity" in text
-    page.screenshot(path=str(artifacts_dir / "dashboard-first-render.png"), full_page=True)
+    _open(page, f"{server}?{urlencode({'data': 'one.parquet', 'window': 1})}")
+    summary = _summary(page)
+    assert "window 2 of" in summary and "windows of 30 days" in summary
+    shown = _wait_for(lambda: _table_values(page), lambda v: "matern_alpha" in v)
+    # the independent path: the command line reads, cleans and fits the same file itself
+    out = tmp_path / "fits.parquet"
+    assert main(["fit", str(served_dir / "one.parquet"), "--out", str(out), *CLI_DEFAULTS, "--workers", "1",
+                 "--no-progress"]) == 0
+    row = read_table(out).sort_values("window_start").iloc[1]
+    for name, (value, se) in shown.items():
+        if name in row:
+            assert value == pytest.approx(row[name], rel=1e-9), name
+            assert se == pytest.approx(row[name + "_se"], rel=1e-6, nan_ok=True), name
+    assert {"matern_alpha", "matern_damping", "diffusivity"} <= set(shown)
+    # the first look: the track summary and the parameter map fill without pressing anything
+    page.get_by_text("Track summary", exact=True).click()
+    track = _wait_for(lambda: _text(page, ".ds-track-summary"), lambda t: "ok of" in t)
+    n = int(re.search(r"(\d+) windows of 30 days", summary).group(1))
+    assert re.search(rf"ok of {n} windows · 30-day windows · model matern\+inertial", track), track
+    page.get_by_text("Parameter map", exact=True).click()
+    page.wait_for_function("() => true")
+    labels = _wait_for(lambda: _axis_labels(page), lambda v: sum("°" in x for x in v) >= 4)
+    assert sum("°" in x for x in labels) >= 4
+    page.screenshot(path=str(artifacts_dir / "dashboard-parameter-map.png"), full_page=True)
     assert page.console_errors == [], page.console_errors
+    assert page.outside == [], page.outside  # nothing is fetched from outside the machine
 
 
 def test_clicking_a_track_selects_it(server, page, artifacts_dir):
     _open(page, server)
-    before = _velocity_title(page)
-    table_before = _table_text(page)
-    # click points across the map until a different track is selected
+    before = _summary(page)
     box = _map_box(page)
     after = before
     for fx in (0.5, 0.3, 0.7, 0.4, 0.6, 0.2, 0.8):
         for fy in (0.5, 0.3, 0.7, 0.4, 0.6):
             page.mouse.click(box["x"] + fx * box["width"] * 0.9, box["y"] + fy * box["height"])
-            after = _wait_change(lambda: _velocity_title(page), before, timeout=2.0)
+            after = _wait_for(lambda: _summary(page), lambda t: t != before, timeout=2.0)
             if after != before:
                 break
         if after != before:
             break
     assert after != before, "no click on the map selected another track"
-    new_table = _wait_change(lambda: _table_text(page), table_before, timeout=30)
-    assert new_table != table_before and "matern_alpha" in new_table
+    track = re.search(r"Track (\S+)", after).group(1)
+    fitinfo = _wait_for(lambda: _text(page, ".ds-fitinfo"), lambda t: "status" in t)
+    assert "status" in fitinfo
     page.screenshot(path=str(artifacts_dir / "dashboard-after-click.png"), full_page=True)
-    assert page.console_errors == [], page.console_errors
+    assert track in after and page.console_errors == [], page.console_errors
 
 
-def test_box_select_sets_the_region(server, page, artifacts_dir):
+def test_box_select_sets_the_region_and_the_link_restores_it(server, browser, page, artifacts_dir):
     _open(page, server)
-    before = _velocity_title(page)
+    before = _summary(page)
     assert "region" not in before
     box = _map_box(page)
     page.locator("[title='Box Select']").first.click()
-    x, y = box["x"] + 0.25 * box["width"], box["y"] + 0.25 * box["height"]
+    x, y = box["x"] + 0.2 * box["width"], box["y"] + 0.2 * box["height"]
     page.mouse.move(x, y)
     page.mouse.down()
-    page.mouse.move(x + 0.3 * box["width"], y + 0.4 * box["height"], steps=10)
+    page.mouse.move(x + 0.5 * box["width"], y + 0.5 * box["height"], steps=10)
     page.mouse.up()
-    after = _wait_change(lambda: _velocity_title(page), before, timeout=30)
-    assert re.search(r"region .*°N.*\((\d+) tracks\)", after), after
+    after = _wait_for(lambda: _summary(page), lambda t: "region" in t, timeout=30)
+    m = re.search(r"region ([-\d.]+)\.\.([-\d.]+)°N, ([-\d.]+)\.\.([-\d.]+)°E \((\d+) tracks\)", after)
+    assert m, after
+    page.get_by_text("Link to this view").click()
+    link = _wait_for(lambda: page.locator(".ds-link input").first.input_value(), lambda v: "region=" in v)
+    assert link.startswith(server) and "region=" in link
+    ctx, other = _new_page(browser)
+    try:
+        _open(other, link)
+        restored = _summary(other)
+        assert re.search(r"region .*\((\d+) tracks\)", restored).group(0) == m.group(0), (restored, after)
+        assert _text(other, ".ds-message", timeout=2) == ""
+    finally:
+        ctx.close()
     page.screenshot(path=str(artifacts_dir / "dashboard-region.png"), full_page=True)
     assert page.console_errors == [], page.console_errors
 
 
-def test_window_length_control_changes_the_fit(server, page, artifacts_dir):
+def test_rapid_changes_end_on_the_current_settings(server, page, artifacts_dir):
     _open(page, server)
-    before = _table_text(page)
-    title = _velocity_title(page)
     handle = page.locator(".noUi-handle").nth(1)  # sliders: window index, then window length
     handle.focus()
-    for _ in range(10):
+    for _ in range(3):  # three key presses 0.2 s apart, each a new window length and new jobs
         page.keyboard.press("ArrowLeft")
-    after = _wait_change(lambda: _table_text(page), before, timeout=30)
-    assert after != before
-    deadline = time.time() + 40  # key presses arrive one by one; wait for the last
-    new_title = _velocity_title(page)
-    while "windows of 20 days" not in new_title and time.time() < deadline:
-        time.sleep(0.3)
-        new_title = _velocity_title(page)
-    assert "windows of 20 days" in new_title and new_title != title
-    page.screenshot(path=str(artifacts_dir / "dashboard-window-20d.png"), full_page=True)
+        time.sleep(0.2)
+    page.locator("select").nth(2).select_option("matern")  # selects: data file, track, model family
+    summary = _wait_for(lambda: _summary(page), lambda t: "windows of 27 days" in t and "model matern " in t)
+    assert "windows of 27 days" in summary and "model matern " in summary, summary
+    n = int(re.search(r"(\d+) windows of 27 days", summary).group(1))
+    page.get_by_text("Track summary", exact=True).click()
+    track = _wait_for(lambda: _text(page, ".ds-track-summary"), lambda t: "27-day" in t and "model matern" in t)
+    assert re.search(rf"ok of {n} windows · 27-day windows · model matern$", track.strip()), track
+    fits = _wait_for(lambda: _table_values(page), lambda v: "matern_alpha" in v)
+    assert "inertial_variance" not in fits  # the table is the current model's
+    page.screenshot(path=str(artifacts_dir / "dashboard-after-rapid-changes.png"), full_page=True)
     assert page.console_errors == [], page.console_errors
 
 
-def test_url_state_restores_the_view(server, page, artifacts_dir):
-    q = urlencode({"track": "TB31-0005", "window_days": "20.0", "model": "matern", "window": "1"})
+def test_a_slow_exact_fit_blocks_no_other_session(server, browser, page):
+    _open(page, f"{server}?{urlencode({'estimator': 'exact', 'window_days': 60})}", table=False)
+    assert "exact" in _text(page, ".ds-fitinfo")  # fitting, in the background
+    others = []  # (context, page, track, window length)
+    try:
+        t0 = time.time()
+        for k, days in enumerate((20, 25, 35, 40)):
+            ctx, pg = _new_page(browser)
+            track = f"TB31-{k + 2:04d}"
+            others.append((ctx, pg, track, days))
+            pg.goto(f"{server}?{urlencode({'track': track, 'window_days': days})}", wait_until="commit")
+        for _, pg, track, days in others:
+            text = _wait_for(lambda pg=pg: _text(pg, ".ds-summary", timeout=5),
+                             lambda t, track=track: f"Track {track}" in t, timeout=max(30 - (time.time() - t0), 1))
+            assert f"Track {track}" in text and f"windows of {days} days" in text, text
+        assert time.time() - t0 < 30
+        pg = others[0][1]
+        assert "matern_alpha" in _wait_for(lambda: _table_values(pg), lambda v: "matern_alpha" in v)
+        assert "exact" in _text(page, ".ds-fitinfo")  # still running there
+    finally:
+        for ctx, *_ in others:
+            ctx.close()
+
+
+def test_bad_links_and_files_give_one_line_messages(server, page):
+    q = urlencode({"track": "TB31-0003", "window_days": "abc", "model": "foo", "estimator": "bogus", "window": 1})
     _open(page, f"{server}?{q}")
-    title = _velocity_title(page)
-    assert "TB31-0005" in title and "windows of 20 days" in title
-    text = _table_text(page)
-    assert "matern_alpha" in text and "inertial_variance" not in text
-    page.screenshot(path=str(artifacts_dir / "dashboard-from-url.png"), full_page=True)
-    assert page.console_errors == [], page.console_errors
-
-
-def test_paths_outside_the_data_folder_are_refused(server, page):
+    msg = _text(page, ".ds-message")
+    assert all(f"{k}=" in msg for k in ("window_days", "model", "estimator")) and "\n" not in msg.strip(), msg
+    summary = _summary(page)
+    assert "Track TB31-0003 · window 2 of" in summary and "windows of 30 days" in summary, summary
+    assert "model matern+inertial · debiased estimator" in summary
+    _open(page, f"{server}?{urlencode({'track': 'nosuch'})}")
+    assert "track=nosuch" in _text(page, ".ds-message")
+    # numeric track ids restore
+    _open(page, f"{server}?{urlencode({'data': 'numeric.parquet', 'track': 102})}")
+    assert "Track 102 ·" in _summary(page)
+    for name in ("header.csv", "allbad.csv"):
+        page.goto(f"{server}?{urlencode({'data': name})}", timeout=60_000)
+        text = _text(page, ".ds-error")
+        assert name in text and "Traceback" not in page.content() and "/tmp" not in text, text
+        assert len(text.strip().splitlines()) == 2, text  # a title and one line
     page.goto(f"{server}?data=../../../etc/passwd")
-    page.get_by_text("Not available").wait_for(timeout=30_000)
+    assert "Not available" in _text(page, ".ds-error")
     assert "root:" not in page.content()
+
+
+@pytest.mark.parametrize("name, hemisphere", [("coast.parquet", "N"), ("polar.parquet", "N")])
+def test_maps_show_degrees_graticule_and_land(server, page, artifacts_dir, name, hemisphere):
+    _open(page, f"{server}?{urlencode({'data': name})}")
+    labels = _axis_labels(page)
+    if name == "coast.parquet":  # Mercator: degrees on both axes
+        assert any(re.fullmatch(r"\d+°W", x) for x in labels) and any(re.fullmatch(r"\d+°N", x) for x in labels)
+    page.screenshot(path=str(artifacts_dir / f"dashboard-map-{name.split('.')[0]}.png"),
+                    clip={**_map_box(page), "width": _map_box(page)["width"] + 80})
+    page.get_by_text("Parameter map", exact=True).click()
+    _wait_for(lambda: page.locator("canvas").count(), lambda c: c >= 5)
+    time.sleep(2)
+    page.screenshot(path=str(artifacts_dir / f"dashboard-parameter-map-{name.split('.')[0]}.png"), full_page=True)
+    assert page.console_errors == [], page.console_errors
