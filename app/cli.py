@@ -21,8 +21,10 @@ def _add_prep_options(p: argparse.ArgumentParser) -> None:
                    help="speed-spike ceiling, m/s (default 3, common practice for surface drifters)")
     g.add_argument("--step", default="1h", help="regular grid step (default 1h)")
     g.add_argument("--split-gap", default="3D", help="split tracks at gaps longer than this (default 3D)")
-    g.add_argument("--mask-distance", default="3h",
-                   help="grid samples further than this from any fix are missing (default 3h)")
+    g.add_argument("--mask-distance", default="auto",
+                   help="grid samples further than this from any fix are missing (default auto: 3h for tracks with "
+                        "regular fixes, 24h for tracks whose fixes are sparser than the grid, whose interpolation "
+                        "the fit then models exactly)")
     g.add_argument("--velocity", choices=["central", "forward", "measured"], default="central",
                    help="velocities by central or forward differences of positions, or the input's u, v")
 
@@ -225,6 +227,8 @@ def _windowing(args) -> dict:
     if not 0 < args.min_coverage <= 1:
         raise SystemExit(f"driftspec: --min-coverage must be in (0, 1], got {args.min_coverage:g}")
     for flag, text in (("--step", args.step), ("--split-gap", args.split_gap), ("--mask-distance", args.mask_distance)):
+        if flag == "--mask-distance" and text == "auto":
+            continue
         try:
             ok = pd.Timedelta(text) > pd.Timedelta(0)
         except ValueError:

@@ -36,7 +36,8 @@ WINDOW_COLUMNS = ["track_id", "window_start", "window_end", "lat", "lon", "n_sam
 #: units of the fixed columns of a fits table (parameters add their own from the families)
 COLUMN_UNITS = {
     "lat": "degrees_north", "lon": "degrees_east", "n_samples": "1", "coverage": "1",
-    "inertial_frequency_local": "day-1", "max_freq": "day-1", "position_noise": "m", "loglik": "1", "aic": "1",
+    "inertial_frequency_local": "day-1", "max_freq": "day-1", "position_noise": "m", "position_error_scale": "1",
+    "loglik": "1", "aic": "1",
     "gof_pvalue": "1",
     "diffusivity": "m2 s-1", "diffusivity_se": "m2 s-1", "matern_timescale_days": "day",
     "inertial_efold_days": "day", "window_start": "UTC", "window_end": "UTC",

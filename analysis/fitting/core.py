@@ -19,6 +19,7 @@ import numpy as np
 
 from ..conventions import SECONDS_PER_DAY, parse_timedelta_seconds
 from ..models import FitContext, ModelFamily
+from ..spectral.irregular import IrregularlyObserved, IrregularObservation
 from ..spectral.likelihood import PreparedWindow, prepare_window
 from .estimators import Estimator, Problem, get_estimator, natural_jacobian
 from .result import FitResult, ks_exponential_pvalue
@@ -50,7 +51,9 @@ def fit_window(window, spec: FitSpec, start: dict | None = None) -> list[FitResu
         (:mod:`.selection`); a failed fit is a result with a status.
     """
     fix_days = window.fix_interval_s / SECONDS_PER_DAY if window.fix_interval_s else None
-    plan = spec.resolve(window.dt_seconds / SECONDS_PER_DAY, window.latitude, fix_days, window.position_error_m)
+    plan = spec.resolve(window.dt_seconds / SECONDS_PER_DAY, window.latitude, fix_days, window.position_error_m,
+                        irregular=window.irregular, fix_times_days=window.fix_times_days,
+                        fix_error_m=window.fix_error_m)
     defer = not spec.keep_all and len(spec.candidate_models) > 1
     results = [_fit_planned(window.z, plan, spec, m, start=start, defer=defer) for m in spec.candidate_models]
     for r in results:
@@ -144,7 +147,7 @@ def fit_series(z, dt, *, model="matern+inertial", estimator="debiased", max_freq
 
 def _fit_planned(z, plan: WindowPlan, spec: FitSpec, model, mask=None, start=None, defer=False) -> FitResult:
     """Prepare one window for one candidate as ``plan`` says and fit it."""
-    family = spec.family(model, plan.follow_latitude)
+    family = spec.family(model, plan.follow_latitude, plan.observation)
     name = spec.model_name(model)
     estimator = get_estimator(spec.estimator)
     z = np.asarray(z)
@@ -172,6 +175,14 @@ def _fit_planned(z, plan: WindowPlan, spec: FitSpec, model, mask=None, start=Non
                               exclude=spec.exclude, modulated=family.modulated, latitude_series=lat_series)
     except ValueError as exc:
         return failed("failed", str(exc))
+    if plan.observation == "irregular":
+        if spec.estimator != "debiased":
+            return failed("failed", f"the {spec.estimator} estimator does not model irregular fixes; use debiased")
+        try:
+            family = _irregularly_observed(family, prep, plan, context, spec.operator)
+        except ValueError as exc:
+            return failed("failed", f"irregular observation: {exc}")
+        fixed = {k: v for k, v in fixed.items() if k in family.names}
     n_free = len(family.names) - len(fixed)
     if prep.band.sum() < max(2 * n_free + 2, 8):
         return failed("too_few_samples", f"{int(prep.band.sum())} frequencies in the fitted band "
@@ -184,6 +195,16 @@ def _fit_planned(z, plan: WindowPlan, spec: FitSpec, model, mask=None, start=Non
                             model_name=name, defer=defer)
     except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:
         return failed("failed", f"{type(exc).__name__}: {exc}")
+
+
+def _irregularly_observed(family, prep, plan: WindowPlan, context, operator):
+    """The ocean family seen through the window's interpolation of irregular fixes (built once per window)."""
+    noise = "fixed" if plan.fix_error_m is not None else "fitted"
+    obs = IrregularObservation(plan.fix_times_days, plan.dt_days, prep.n, valid=prep.valid, operator=operator,
+                               taper=prep.taper, position_error_m=plan.fix_error_m, noise=noise,
+                               band_index=prep.band_index, inertial_frequency_cpd=context.inertial_frequency_cpd)
+    typical = float(np.sqrt(np.mean(plan.fix_error_m**2))) if plan.fix_error_m is not None else None
+    return IrregularlyObserved(family, obs, fixed_sigma_m=typical)
 
 
 def fit_prepared(family: ModelFamily, prep: PreparedWindow, context: FitContext, estimator: Estimator, *,

@@ -65,6 +65,8 @@ class WindowPlan:
     latitude_series: np.ndarray | None  # per sample, for the latitude-following model
     position_noise: float | None  # metres, held fixed; None = fitted (or no noise model)
     follow_latitude: bool = False  # the inertial part follows the local inertial frequency
+    fix_times_days: np.ndarray | None = None  # irregular observation: the fixes behind the window
+    fix_error_m: np.ndarray | None = None  # irregular observation: per-fix errors held fixed (None: noise fitted)
     candidates: tuple = ()  # model names to fit
     n_samples: int = 0
 
@@ -89,10 +91,15 @@ class FitSpec:
         Top of the fitted band in cpd, or ``"auto"`` for the rule in the module docstring.
     velocity : {"central", "forward", "measured"}
         How the velocities were made: central or forward differences of positions, or measured.
-    observation : {"auto", "none", "differenced", "differenced+noise"}
-        Observation model (``"auto"``: ``differenced+noise`` for differenced velocities, ``none`` for measured).
-    position_noise : "fit", "input" or float
-        Fit the white position noise, take each window's median ``position_error_m``, or hold it at a value (m).
+    observation : {"auto", "none", "differenced", "differenced+noise", "irregular"}
+        Observation model. ``"irregular"``: the window's velocities are interpolated between irregular fixes and
+        differenced, and the expected periodogram models that linear map exactly
+        (:mod:`driftspec.analysis.spectral.irregular`). ``"auto"`` (default): ``irregular`` for windows whose fixes
+        are sparser than the grid, ``differenced+noise`` for other differenced velocities, ``none`` for measured.
+    position_noise : "auto", "fit", "input" or float
+        ``"auto"`` (default): each fix's own ``position_error_m`` where the input gives it and the fixes are
+        irregular, a fitted white noise otherwise; ``"fit"``: always fitted; ``"input"``: the input's errors (per
+        fix for irregular windows, the window's median otherwise); a number: held at that value (m).
     inertial_frequency : {"auto", "free", "follow-latitude"}
         The inertial part at a fitted constant frequency, or following ``-2 Omega sin(latitude(t))`` with a fitted
         offset; ``"auto"`` (default) follows the latitude where the window's latitude span moves the inertial
@@ -113,7 +120,7 @@ class FitSpec:
     band: str | float = "auto"
     velocity: str = "central"
     observation: str = "auto"
-    position_noise: str | float = "fit"
+    position_noise: str | float = "auto"
     inertial_frequency: str = "auto"
     taper: str = "none"
     exclude: tuple = ()
@@ -138,7 +145,7 @@ class FitSpec:
         put("models", models)
         _choice("estimator", self.estimator, ESTIMATOR_NAMES)
         _choice("velocity", self.velocity, VELOCITIES)
-        _choice("observation", self.observation, ("auto", *OBSERVATIONS))
+        _choice("observation", self.observation, ("auto", *OBSERVATIONS, "irregular"))
         _choice("inertial_frequency", self.inertial_frequency, INERTIAL_FREQUENCIES)
         _choice("stderr", self.stderr, STDERR_METHODS)
         put("taper", "none" if self.taper is None else self.taper)
@@ -147,10 +154,10 @@ class FitSpec:
             raise ValueError("measured velocities take observation 'none'")
         if self.band != "auto":
             put("band", _positive("band (top of the fitted band, cpd)", self.band))
-        if self.position_noise not in ("fit", "input"):
+        if self.position_noise not in ("auto", "fit", "input"):
             put("position_noise", _positive("position_noise (m)", self.position_noise))
-            if self.resolved_observation != "differenced+noise":
-                raise ValueError("a position noise value needs observation 'differenced+noise'")
+            if self.resolved_observation not in ("differenced+noise", "irregular"):
+                raise ValueError("a position noise value needs observation 'differenced+noise' or 'irregular'")
         exclude = []
         for pair in self.exclude or ():
             lo, hi = (float(v) for v in pair)
@@ -190,22 +197,24 @@ class FitSpec:
         """Whether a fits table keeps every candidate's row (explicit models) or only the selected one (auto)."""
         return self.models != "auto"
 
-    def family(self, model, follow_latitude: bool | None = None) -> ModelFamily:
-        """The model family of candidate ``model`` seen through this specification's observation model, its
+    def family(self, model, follow_latitude: bool | None = None, observation: str | None = None) -> ModelFamily:
+        """The model family of candidate ``model`` seen through the observation model (default: the
+        specification's; for ``irregular`` the plain ocean family, which the window's operator observes), its
         inertial part following the latitude when ``follow_latitude`` (default: when the spec says always)."""
         follow = self.inertial_frequency == "follow-latitude" if follow_latitude is None else follow_latitude
-        return observed(get_family(model, "follow-latitude" if follow else "free"), self.resolved_observation,
-                        self.operator)
+        observation = observation or self.resolved_observation
+        base = get_family(model, "follow-latitude" if follow else "free")
+        return base if observation == "irregular" else observed(base, observation, self.operator)
 
     def model_name(self, model) -> str:
         return model if isinstance(model, str) else model.name
 
-    def max_freq(self, dt_days: float, fix_interval_days: float | None = None) -> float:
+    def max_freq(self, dt_days: float, fix_interval_days: float | None = None, observation: str | None = None) -> float:
         """Top of the fitted band (cpd) for a window sampled every ``dt_days`` (the rule of the module docstring)."""
         if self.band != "auto":
             return float(self.band)
         nyquist = 0.5 / dt_days
-        if self.velocity != "measured" and self.resolved_observation == "none":
+        if self.velocity != "measured" and (observation or self.resolved_observation) == "none":
             top = BAND_FRACTION_UNMODELLED_DIFFERENCE * nyquist
         else:
             top = BAND_FRACTION_OBSERVED[self.velocity] * nyquist
@@ -214,11 +223,17 @@ class FitSpec:
         return float(top)
 
     def resolve(self, dt_days: float, latitude=None, fix_interval_days: float | None = None,
-                position_error_m: float | None = None) -> WindowPlan:
+                position_error_m: float | None = None, irregular: bool = False, fix_times_days=None,
+                fix_error_m=None) -> WindowPlan:
         """The plan for one window: band, observation model, latitude handling and position noise.
 
-        ``latitude`` is a scalar or one value per sample (degrees north), or None when unknown.
+        ``latitude`` is a scalar or one value per sample (degrees north), or None when unknown; ``irregular``
+        says the window's fixes are sparser than its grid, ``fix_times_days`` and ``fix_error_m`` are those fixes
+        (see :class:`~driftspec.analysis.tracks.windows.Window`).
         """
+        observation = self.resolved_observation
+        if self.observation == "auto" and irregular and fix_times_days is not None and self.velocity != "measured":
+            observation = "irregular"
         lat_series = lat_mean = None
         follow = self.inertial_frequency == "follow-latitude"
         n = 0
@@ -230,17 +245,25 @@ class FitSpec:
                 if self.inertial_frequency == "auto":
                     follow = _latitude_moves_the_inertial_frequency(lat, dt_days)
                 lat_series = lat if follow else None
-        noise = None
-        if self.resolved_observation == "differenced+noise":
+        noise = per_fix = None
+        if observation == "differenced+noise":
             if self.position_noise == "input":
                 if position_error_m is not None and np.isfinite(position_error_m) and position_error_m > 0:
                     noise = float(position_error_m)
-            elif self.position_noise != "fit":
+            elif self.position_noise not in ("auto", "fit"):
                 noise = float(self.position_noise)
-        return WindowPlan(dt_days=float(dt_days), max_freq=self.max_freq(dt_days, fix_interval_days),
-                          observation=self.resolved_observation, operator=self.operator, latitude=lat_mean,
+        elif observation == "irregular":
+            given = fix_error_m is not None and np.all(np.isfinite(fix_error_m)) and np.all(np.asarray(fix_error_m) > 0)
+            if self.position_noise in ("auto", "input") and given:
+                per_fix = np.asarray(fix_error_m, float)
+            elif self.position_noise not in ("auto", "fit", "input"):
+                per_fix = np.full(np.size(fix_times_days), float(self.position_noise))
+        return WindowPlan(dt_days=float(dt_days), max_freq=self.max_freq(dt_days, fix_interval_days, observation),
+                          observation=observation, operator=self.operator, latitude=lat_mean,
                           latitude_series=lat_series, position_noise=noise, follow_latitude=follow,
-                          candidates=tuple(self.model_name(m) for m in self.candidate_models), n_samples=n)
+                          fix_times_days=fix_times_days if observation == "irregular" else None,
+                          fix_error_m=per_fix, candidates=tuple(self.model_name(m) for m in self.candidate_models),
+                          n_samples=n)
 
     # ------------------------------------------------------------------ identity
     def to_dict(self) -> dict:

@@ -90,6 +90,8 @@ from .periodogram import masked_taper
 NOISE_MODES = ("auto", "fixed", "fitted", "none")
 #: the fitted white position noise (m per component): the same parameter as the regular observation model's
 POSITION_NOISE: Parameter = PositionNoise.parameters[0]
+#: a fitted factor on the given per-fix position errors (their fix-by-fix structure kept, their level fitted)
+ERROR_SCALE = Parameter("position_error_scale", "1", 0.05, 20.0, "factor on the given per-fix position errors")
 _FD_STEP = 1e-5  # central-difference step of the density in the optimiser's coordinates
 
 
@@ -481,3 +483,85 @@ class IrregularObservation:
     def expected(self, family: ModelFamily, theta, context: FitContext) -> np.ndarray:
         """``E[I_k]`` over the band without derivatives."""
         return self.expected_in_band(family, theta, context, jacobian=False)
+
+
+class IrregularlyObserved(ModelFamily):
+    """An ocean model family seen through one window's :class:`IrregularObservation`: what the debiased Whittle
+    likelihood fits for a window of velocities made from irregular fixes.
+
+    Its parameters are the ocean family's, then ``position_noise`` (m) when the noise is fitted. The expected
+    periodogram comes from the operator (:meth:`expected_in_band`, which
+    :func:`~driftspec.analysis.spectral.likelihood.expected_in_band` defers to); the continuous densities, the
+    zero-frequency density (diffusivity), derived quantities and bounds are the ocean family's. There is no
+    autocovariance of the observed series to simulate from, so ``simulable`` is False (the fit then reports
+    Fisher-information errors).
+    """
+
+    simulable = False
+
+    def __init__(self, base: ModelFamily, operator: IrregularObservation, fixed_sigma_m: float | None = None):
+        self.base = base
+        self.operator = operator
+        self.fixed_sigma_m = fixed_sigma_m  # a typical given error (m), for drawing the noise floor
+        self.name = base.name
+        self._p = len(base.parameters)
+        # given per-fix errors keep their fix-by-fix structure, with one fitted scale for their level (reported
+        # accuracies of satellite fixes are nominal classes, not measured standard deviations)
+        self._scaled = operator.noise == "fixed"
+        self.parameters = operator.parameters(base) + ((ERROR_SCALE,) if self._scaled else ())
+        self.modulated = False  # the operator treats a latitude-following part at the mean inertial frequency
+
+    def expected_in_band(self, theta, prep, context):
+        """``E[I_k]`` and ``dE/dx`` over the window's band (``prep`` must be the window the operator was built on)."""
+        theta = self.check_theta(theta)
+        if not self._scaled:
+            return self.operator.expected_in_band(self.base, theta, context, prep.band_index)
+        e, de = self.operator.expected_in_band(self.base, theta[:-1], context, prep.band_index)
+        noise = (theta[-1] ** 2 - 1.0) * self.operator.fixed_noise  # the operator added the unscaled noise
+        return e + noise, np.vstack([de, 2.0 * theta[-1] ** 2 * self.operator.fixed_noise])
+
+    def _spectral_density(self, theta, freq_cpd, context):
+        return self.base._spectral_density(theta[: self._p], freq_cpd, context)
+
+    def noise_spectral_density(self, theta, freq_cpd, context):
+        """White position noise seen through a central difference of the grid, for plotting a noise floor."""
+        if self._scaled:
+            sigma = float(theta[-1]) * (self.fixed_sigma_m or 0.0)
+        else:
+            sigma = float(theta[self._p]) if len(theta) > self._p else (self.fixed_sigma_m or 0.0)
+        if sigma <= 0:
+            return np.zeros_like(np.asarray(freq_cpd, float))
+        return PositionNoise(_central()).spectral_density([max(sigma, POSITION_NOISE.lower)], freq_cpd, context)
+
+    def _zero_frequency_density(self, theta, context):
+        return self.base._zero_frequency_density(theta[: self._p], context)
+
+    def _derived(self, theta, context):
+        return self.base._derived(theta[: self._p], context)
+
+    def bounds(self, context):
+        extra = self.parameters[self._p:]
+        return self.base.bounds(context) + [(q.lower, q.upper) for q in extra]
+
+    def _initial_guess(self, freq_cpd, power, context):
+        # the operator's response to a white velocity spectrum undoes the interpolation's smoothing before the
+        # ocean family guesses; a fixed noise is taken off first, a fitted one guessed from the top of the band
+        op = self.operator
+        p = np.asarray(power, float)
+        if op.fixed_noise is not None:
+            p = np.maximum(p - op.fixed_noise, 0.05 * p)
+        response = op.kernel.sum(axis=1)  # E[I_k] for a white velocity of unit density
+        guess = [self.base.initial_guess(freq_cpd, p / np.maximum(response, 0.1), context)]
+        if self._scaled:
+            guess.append([1.0])
+        elif len(self.parameters) > self._p:
+            top = np.abs(freq_cpd) >= 0.8 * np.abs(freq_cpd).max()
+            ratio = p[top] / np.maximum(op.noise_kernel[top], 1e-300) if top.any() else np.array([2500.0])
+            guess.append([float(np.clip(np.sqrt(0.5 * np.median(ratio)), 5.0, 2000.0))])
+        return np.concatenate(guess)
+
+
+def _central():
+    from ..models.observation import OPERATORS
+
+    return OPERATORS["central"]

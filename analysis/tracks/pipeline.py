@@ -31,8 +31,8 @@ class PrepOptions:
 def grid_velocities(fixes: pd.DataFrame, options: PrepOptions | None = None) -> pd.DataFrame:
     """Regular grid and velocities for cleaned fixes (the second half of :func:`load_velocities`)."""
     o = options or PrepOptions()
-    grid = regular_grid(fixes, step=pd.Timedelta(o.step), split_gap=pd.Timedelta(o.split_gap),
-                        mask_distance=pd.Timedelta(o.mask_distance))
+    mask = o.mask_distance if o.mask_distance == "auto" else pd.Timedelta(o.mask_distance)
+    grid = regular_grid(fixes, step=pd.Timedelta(o.step), split_gap=pd.Timedelta(o.split_gap), mask_distance=mask)
     return add_velocity(grid, method=o.velocity_method)
 
 

@@ -4,8 +4,10 @@ The gridded table has one row per grid sample:
 
 ``id``, ``segment`` (0-based within the track), ``time``, ``lat``, ``lon`` (interpolated),
 ``valid`` (the sample lies within ``mask_distance`` of a real fix), ``fix_distance_s`` (time to the
-nearest fix, s), ``u_meas``/``v_meas`` (interpolated
-measured velocity, when the input had it), and ``position_error_m`` when the input had it.
+nearest fix, s), ``mask_distance_s`` (the mask distance used for the track, s), ``fix_before`` and ``fix_after``
+(times of the two fixes the sample is interpolated between), ``u_meas``/``v_meas`` (interpolated measured
+velocity, when the input had it), and ``position_error_m`` (interpolated) with ``error_before_m`` and
+``error_after_m`` (the two fixes' own errors) when the input had it.
 
 Interpolation never crosses a segment boundary and never crosses the antimeridian the long way round:
 longitudes are unwrapped along each track before interpolation and wrapped back afterwards.
@@ -21,8 +23,16 @@ from ..runs import run_bounds, track_codes, wrap_lon
 DEFAULT_STEP = pd.Timedelta(hours=1)
 #: Split a track where consecutive fixes are further apart than this.
 DEFAULT_SPLIT_GAP = pd.Timedelta(days=3)
-#: A grid sample further than this from every real fix is marked invalid (common practice, no source).
-DEFAULT_MASK_DISTANCE = pd.Timedelta(hours=3)
+#: A grid sample further than this from every real fix is marked invalid (common practice, no source) ...
+REGULAR_MASK_DISTANCE = pd.Timedelta(hours=3)
+#: ... for tracks with regular fixes; for tracks whose fixes are irregular (a mean interval over 1.5 grid steps,
+#: as satellite fixes are) gaps of up to two days are bridged: the fit then models the interpolation exactly
+#: (:mod:`driftspec.analysis.spectral.irregular`), so a bridged sample is information, not invention.
+IRREGULAR_MASK_DISTANCE = pd.Timedelta(hours=24)
+#: ``mask_distance="auto"`` chooses per track between the two
+DEFAULT_MASK_DISTANCE = "auto"
+#: a track is irregular when its mean fix interval exceeds this many grid steps
+IRREGULAR_INTERVAL_STEPS = 1.5
 
 
 def _segment_starts(ids: np.ndarray, t_ns: np.ndarray, split_gap_ns: int) -> np.ndarray:
@@ -43,8 +53,10 @@ def regular_grid(fixes: pd.DataFrame, step=DEFAULT_STEP, split_gap=DEFAULT_SPLIT
         Grid step (default 1 hour). Grid times are whole multiples of ``step`` since the Unix epoch.
     split_gap : pandas.Timedelta or str
         Tracks are split into segments where consecutive fixes are further apart than this.
-    mask_distance : pandas.Timedelta or str
-        Samples further than this from the nearest real fix are kept but marked ``valid = False``.
+    mask_distance : pandas.Timedelta, str or "auto"
+        Samples further than this from the nearest real fix are kept but marked ``valid = False``. ``"auto"``
+        (default): 3 hours for tracks with regular fixes, 24 hours for tracks whose mean fix interval exceeds 1.5
+        grid steps (the column ``mask_distance_s`` says which).
 
     Returns
     -------
@@ -53,7 +65,8 @@ def regular_grid(fixes: pd.DataFrame, step=DEFAULT_STEP, split_gap=DEFAULT_SPLIT
     """
     step_ns = pd.Timedelta(step).value
     split_ns = pd.Timedelta(split_gap).value
-    mask_ns = pd.Timedelta(mask_distance).value
+    auto_mask = isinstance(mask_distance, str) and mask_distance == "auto"
+    mask_ns = 0 if auto_mask else pd.Timedelta(mask_distance).value
     if step_ns <= 0 or split_ns <= 0 or mask_ns < 0:
         raise ValueError("step and split_gap must be positive, mask_distance non-negative")
     if len(fixes) == 0:
@@ -107,8 +120,25 @@ def regular_grid(fixes: pd.DataFrame, step=DEFAULT_STEP, split_gap=DEFAULT_SPLIT
     d_next = np.where(seg_index[nxt] == grid_seg, np.abs(x_fix[nxt] - x_grid), np.inf)
     d_prev = np.where(seg_index[prv] == grid_seg, np.abs(x_grid - x_fix[prv]), np.inf)
     nearest = np.minimum(d_next, d_prev)
-    out["valid"] = nearest <= mask_ns
+    if auto_mask:  # per track, from its mean fix interval
+        counts = stops_track - starts_track
+        mean_interval = (t_ns[stops_track - 1] - t_ns[starts_track]) / np.maximum(counts - 1, 1)
+        irregular = mean_interval > IRREGULAR_INTERVAL_STEPS * step_ns
+        per_track = np.where(irregular, IRREGULAR_MASK_DISTANCE.value, REGULAR_MASK_DISTANCE.value)
+        mask_of_sample = per_track[track_of_fix[seg_first]][grid_seg]
+    else:
+        mask_of_sample = np.full(total, mask_ns)
+    out["valid"] = nearest <= mask_of_sample
+    out["mask_distance_s"] = mask_of_sample / 1e9
     out["fix_distance_s"] = nearest / 1e9
+    # the two fixes each sample is interpolated between (what an exact model of the interpolation needs)
+    same_before = seg_index[prv] == grid_seg
+    out["fix_before"] = np.where(same_before, t_ns[prv], t_ns[nxt]).astype("datetime64[ns]")
+    out["fix_after"] = np.where(seg_index[nxt] == grid_seg, t_ns[nxt], t_ns[prv]).astype("datetime64[ns]")
+    if "position_error_m" in fixes:
+        err = fixes["position_error_m"].to_numpy(float)
+        out["error_before_m"] = np.where(same_before, err[prv], err[nxt])
+        out["error_after_m"] = np.where(seg_index[nxt] == grid_seg, err[nxt], err[prv])
     for col, name in (("u", "u_meas"), ("v", "v_meas"), ("position_error_m", "position_error_m")):
         if col in fixes:
             vals = fixes[col].to_numpy(float)

@@ -15,6 +15,7 @@ import pandas as pd
 
 from ..conventions import inertial_frequency_cpd
 from ..runs import circular_mean_lon, run_bounds, track_codes
+from .resample import IRREGULAR_INTERVAL_STEPS
 
 
 @dataclass
@@ -41,9 +42,14 @@ class Window:
     position_error_m : float or None
         Median position error of the window's fixes, when the input carried one.
     fix_interval_s : float or None
-        Typical interval between the real fixes behind the window's samples, s: four times the mean time
-        from a sample to its nearest fix (for fixes at random times that mean is a quarter of the
-        interval), and at least the sample interval.
+        Mean interval between the real fixes inside the window, s (at least the sample interval).
+    fix_times_days : ndarray or None
+        Times (days after ``start``) of the fixes the window's velocities are interpolated from, those just
+        outside it included: what an exact model of the interpolation needs.
+    fix_error_m : ndarray or None
+        Those fixes' position errors (m, per component), when the input carried them.
+    mask_distance_s : float or None
+        The mask distance the track was gridded with, s.
     """
 
     track_id: str
@@ -57,6 +63,16 @@ class Window:
     longitude: np.ndarray
     position_error_m: float | None = None
     fix_interval_s: float | None = None
+    fix_times_days: np.ndarray | None = None
+    fix_error_m: np.ndarray | None = None
+    mask_distance_s: float | None = None
+
+    @property
+    def irregular(self) -> bool:
+        """Whether the fixes behind the window are sparser than its grid (mean interval above 1.5 steps), so
+        that interpolation shapes its velocities and the fit should model it exactly."""
+        return self.fix_times_days is not None and (self.fix_interval_s or 0.0) > IRREGULAR_INTERVAL_STEPS * \
+            self.dt_seconds
 
     @property
     def mask(self) -> np.ndarray:
@@ -164,6 +180,8 @@ def iter_windows(vel: pd.DataFrame, window_days: float = 60.0, overlap: float = 
     lat, lon = vel["lat"].to_numpy(float), vel["lon"].to_numpy(float)
     perr = vel["position_error_m"].to_numpy(float) if "position_error_m" in vel else None
     fixd = vel["fix_distance_s"].to_numpy(float) if "fix_distance_s" in vel else None
+    fixes = _FixLookup(vel) if "fix_before" in vel else None
+    maskd = vel["mask_distance_s"].to_numpy(float) if "mask_distance_s" in vel else None
     starts, stops = run_bounds(ids, seg)
     for a, b in zip(starts, stops):
         if b - a < 2:
@@ -184,13 +202,40 @@ def iter_windows(vel: pd.DataFrame, window_days: float = 60.0, overlap: float = 
                 census.low_coverage.append(float(coverage))
                 continue
             census.kept += 1
+            t_start = t_ns[a + s]
+            fix_t = fix_e = None
+            interval = (max(dt_ns / 1e9, 4.0 * float(np.mean(fixd[a + s:a + e]))) if fixd is not None else None)
+            if fixes is not None:
+                fix_t, fix_e, interval = fixes.window(max(a, a + s - 1), min(b, a + e + 1), t_start, t_ns[a + e - 1],
+                                                      dt_ns)
             yield Window(
                 track_id=str(names[ids[a]]), segment=int(seg[a]), index=k,
-                start=pd.Timestamp(t_ns[a + s]), end=pd.Timestamp(t_ns[a + e - 1]),
+                start=pd.Timestamp(t_start), end=pd.Timestamp(t_ns[a + e - 1]),
                 dt_seconds=dt_ns / 1e9, z=zz.copy(), latitude=lat[a + s:a + e].copy(),
                 longitude=lon[a + s:a + e].copy(),
                 position_error_m=(float(np.nanmedian(perr[a + s:a + e])) if perr is not None else None),
-                fix_interval_s=(max(dt_ns / 1e9, 4.0 * float(np.mean(fixd[a + s:a + e])))
-                                if fixd is not None else None),
+                fix_interval_s=interval, fix_times_days=fix_t, fix_error_m=fix_e,
+                mask_distance_s=float(maskd[a]) if maskd is not None else None,
             )
 
+
+class _FixLookup:
+    """The fixes behind rows of a gridded table (its ``fix_before``/``fix_after`` columns)."""
+
+    def __init__(self, vel: pd.DataFrame):
+        self.before = vel["fix_before"].to_numpy().astype("datetime64[ns]").astype(np.int64)
+        self.after = vel["fix_after"].to_numpy().astype("datetime64[ns]").astype(np.int64)
+        self.err_before = vel["error_before_m"].to_numpy(float) if "error_before_m" in vel else None
+        self.err_after = vel["error_after_m"].to_numpy(float) if "error_after_m" in vel else None
+
+    def window(self, lo: int, hi: int, t_start: int, t_end: int, dt_ns: int):
+        """Fix times (days after ``t_start``), their errors, and the mean fix interval inside the window (s)
+        for the rows ``lo:hi`` (the window's samples and their neighbours)."""
+        t = np.concatenate([self.before[lo:hi], self.after[lo:hi]])
+        t, first = np.unique(t, return_index=True)
+        err = None
+        if self.err_before is not None:
+            err = np.concatenate([self.err_before[lo:hi], self.err_after[lo:hi]])[first]
+        inside = t[(t >= t_start) & (t <= t_end)]
+        interval = float((inside[-1] - inside[0]) / (inside.size - 1) / 1e9) if inside.size > 1 else np.inf
+        return (t - t_start) / 86400e9, err, max(interval, dt_ns / 1e9)
