@@ -93,9 +93,11 @@ def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--tracks", type=int, default=8)
     ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--only", help="run only the case whose label starts with this")
     a = ap.parse_args()
     for case in CASES:
-        run_case(*case, tracks=a.tracks, seed=a.seed)
+        if a.only is None or case[0].startswith(a.only):
+            run_case(*case, tracks=a.tracks, seed=a.seed)
 
 
 if __name__ == "__main__":

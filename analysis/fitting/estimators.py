@@ -182,8 +182,8 @@ class DebiasedWhittle(Estimator):
         fisher = opt.fisher if opt.fisher is not None else self.fisher(problem, opt.x)
         f_inv = np.linalg.inv(fisher)
         gappy = bool(np.ptp(problem.prep.taper) > 0)  # missing samples or a taper
-        simulable = getattr(problem.family, "simulable", True)  # not a family seen through irregular fixes
-        if simulable and (stderr == "sandwich" or (stderr == "auto" and gappy)):
+        irregular = not getattr(problem.family, "simulable", True)  # seen through irregular fixes: always
+        if stderr == "sandwich" or (stderr == "auto" and (gappy or irregular)):
             v = score_covariance(problem.family, problem.theta(opt.x), problem.prep, problem.context, problem.free)
             return f_inv @ v @ f_inv, "sandwich"
         return f_inv * problem.prep.variance_inflation, "fisher"

@@ -15,7 +15,9 @@ import zlib
 import numpy as np
 import scipy.fft
 
+from ..conventions import SECONDS_PER_DAY
 from ..simulation.simulate import embedding_autocovariance
+from ..spectral.irregular import IrregularlyObserved
 from ..spectral.likelihood import expected_in_band
 
 
@@ -74,10 +76,69 @@ def score_covariance(family, theta, prep, context, free=None, n_sim: int = 64, s
     rng = np.random.default_rng(seed)
     # an embedding of 2 N (negative eigenvalues clipped): a variance estimated from 64 draws needs no exact
     # long-lag covariance, and this bounds the cost (checked against the Isserlis formula in the tests)
-    z = simulator(family, theta, prep, context, max_factor=1)(rng, n_sim)
+    if isinstance(family, IrregularlyObserved):
+        pg = _irregular_periodograms(family, np.asarray(theta, float), prep, context, rng, n_sim)
+    else:
+        z = simulator(family, theta, prep, context, max_factor=1)(rng, n_sim)
+        pg = _band_periodograms(z, prep)
+    scores = (1.0 - pg / e_band) @ dlog.T  # (n_sim, free)
+    return np.atleast_2d(np.cov(scores, rowvar=False))
+
+
+def _band_periodograms(z, prep) -> np.ndarray:
+    """Periodograms over the band of series ``z`` (rows) prepared as the window was: mask, demean, taper."""
     valid = prep.valid
     z = np.where(valid, z, 0.0)
     zz = np.where(valid, z - z.sum(axis=1, keepdims=True) / max(prep.n_valid, 1), 0.0)
-    pg = prep.dt_days * np.abs(scipy.fft.fft(prep.taper * zz, axis=-1)[:, prep.band_index]) ** 2
-    scores = (1.0 - pg / e_band) @ dlog.T  # (n_sim, free)
-    return np.atleast_2d(np.cov(scores, rowvar=False))
+    return prep.dt_days * np.abs(scipy.fft.fft(prep.taper * zz, axis=-1)[:, prep.band_index]) ** 2
+
+
+#: sub-steps per grid step of the continuous velocity simulated for windows of irregular fixes
+_FINE_STEPS = 6
+
+
+def _irregular_periodograms(family, theta, prep, context, rng, n_sim: int) -> np.ndarray:
+    """Periodograms over the band of windows observed as this one was from irregular fixes: the ocean velocity
+    simulated every ``dt / 6`` by circulant embedding, integrated to positions, read at the fix times, given
+    the fixes' errors (scaled as fitted) or the fitted white noise, interpolated to the grid and differenced
+    through the window's own operator (``family.operator.weights``)."""
+    op = family.operator
+    p = len(family.base.parameters)
+    ocean, extra = theta[:p], theta[p:]
+    dt_f = prep.dt_days / _FINE_STEPS
+    s = op._s - op._s[0]  # fix times from the first fix used, days
+    n_f = int(np.ceil(s[-1] / dt_f)) + 2
+    fc = context.inertial_frequency_cpd or 0.0
+
+    def acov(lag):  # a latitude-following part at the window's mean inertial frequency, as the operator has it
+        r = np.zeros(len(lag), complex)
+        for comp, sl in family.base.components():
+            rc = comp.autocovariance(ocean[sl], lag, context)
+            r += rc * np.exp(2j * np.pi * fc * lag) if comp.modulated else rc
+        return r
+
+    r = np.asarray(embedding_autocovariance(acov, n_f, dt_f, max_factor=1), complex)
+    half = r.size - 1
+    row = np.concatenate([r, np.conj(r[1:half][::-1])])
+    amp = np.sqrt(np.clip(scipy.fft.fft(row).real, 0, None) * row.size)
+    eps = rng.standard_normal((n_sim, 2 * amp.size), dtype=np.float32).view(np.complex64)
+    v = scipy.fft.ifft(eps * (amp / np.sqrt(2.0)), axis=-1, overwrite_x=True)[:, :n_f]  # m/s
+    x = np.concatenate([np.zeros((n_sim, 1)), np.cumsum(0.5 * (v[:, 1:] + v[:, :-1]), axis=1)], axis=1) \
+        * dt_f * SECONDS_PER_DAY  # m, by the trapezoid rule
+    pos = _interp_rows(x, s / dt_f)
+    if op.noise == "fixed":
+        sigma = op.sigma_used * (extra[-1] if family._scaled else 1.0)
+    elif op.noise == "fitted":
+        sigma = np.full(s.size, extra[0])
+    else:
+        sigma = np.zeros(s.size)
+    pos = pos + sigma * (rng.standard_normal(pos.shape) + 1j * rng.standard_normal(pos.shape))
+    y = (op.weights @ pos.T).T / SECONDS_PER_DAY  # m/s on the grid (zero rows where invalid)
+    return _band_periodograms(y, prep)
+
+
+def _interp_rows(x, at):
+    """Rows of ``x`` (samples at 0, 1, 2, ...) linearly interpolated at the fractional positions ``at``."""
+    i = np.clip(np.floor(at).astype(int), 0, x.shape[1] - 2)
+    w = at - i
+    return x[:, i] * (1 - w) + x[:, i + 1] * w

@@ -294,6 +294,7 @@ class IrregularObservation:
         #: ``E_noise[I_k]`` per unit variance (m^2) of white position noise on each component
         self.noise_kernel = dt * 2.0 / SECONDS_PER_DAY**2 * self._diag
         self.fixed_noise = None
+        self.sigma_used = None if sigma is None else sigma[used]  # given errors of the fixes used, m
         if sigma is not None:
             self.fixed_noise = dt * 2.0 / SECONDS_PER_DAY**2 * (a2 @ sigma[used] ** 2)
 
