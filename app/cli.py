@@ -50,6 +50,44 @@ def _exclusions(text: str | None):
     return tuple(out)
 
 
+def _add_window_options(p: argparse.ArgumentParser, default_days) -> None:
+    if default_days is None:
+        p.add_argument("--window-days", type=float, required=True)
+    else:
+        p.add_argument("--window-days", type=float, default=default_days)
+    p.add_argument("--overlap", type=float, default=0.5, help="fraction, [0, 1)")
+    p.add_argument("--min-coverage", type=float, default=0.8, help="minimum fraction of valid samples")
+
+
+def _add_spec_options(p: argparse.ArgumentParser) -> None:
+    """The options of the fit specification shared by ``fit`` and ``pool`` (see ``fit_spec_from_args``)."""
+    p.add_argument("--max-freq", type=float, default=None,
+                   help="fit |f| <= this, cpd (default, per window: a fraction of the grid's Nyquist frequency that "
+                        "depends on the observation model, and at most 3/4 of the Nyquist frequency of the mean fix "
+                        "interval)")
+    p.add_argument("--observation", choices=["none", "differenced", "differenced+noise", "irregular"], default=None,
+                   help="observation model (default, per window: irregular where the fixes are sparser than the "
+                        "grid, differenced+noise for other velocities from positions, none for measured u, v)")
+    p.add_argument("--position-noise", default="auto", metavar="auto|fit|input|METRES",
+                   help="auto (default): the input's per-fix position_error_m with a fitted scale where fixes are "
+                        "irregular, a fitted white noise otherwise; fit: always fitted; input: the input's errors; "
+                        "or held at METRES")
+    p.add_argument("--exclude", default=None, metavar="LOW:HIGH,...",
+                   help="leave out bands of |f| (cpd), e.g. 1.85:2.05 around semidiurnal tides")
+    p.add_argument("--taper", choices=["none", "hann", "dpss"], default="none")
+    p.add_argument("--inertial-frequency", choices=["auto", "free", "follow-latitude"], default="auto",
+                   help="inertial oscillation at a fitted constant frequency (free), following the local inertial "
+                        "frequency with a fitted offset (follow-latitude), or following it where the window's "
+                        "latitude span moves it by more than the frequency resolution (auto, default)")
+
+
+def _add_run_options(p: argparse.ArgumentParser, resume_help: str) -> None:
+    p.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="processes (default: all cores)")
+    p.add_argument("--dask", metavar="ADDRESS", help="a Dask scheduler address, or 'local' for a LocalCluster")
+    p.add_argument("--resume", action="store_true", help=resume_help)
+    p.add_argument("--no-progress", action="store_true")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="driftspec",
@@ -75,42 +113,22 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("fit", help="fit a model to every window of every track")
     p.add_argument("input", help="CSV, Parquet or CF trajectory netCDF")
     p.add_argument("--out", type=Path, required=True, help="fits table (.parquet or .csv)")
-    p.add_argument("--window-days", type=float, default=60.0)
-    p.add_argument("--overlap", type=float, default=0.5, help="fraction, [0, 1)")
-    p.add_argument("--min-coverage", type=float, default=0.8, help="minimum fraction of valid samples")
+    _add_window_options(p, default_days=60.0)
     p.add_argument("--model", default="auto",
                    help="auto (default: fit matern and matern+inertial to every window and write the one selected, "
                         "see the README), or model families separated by commas (matern, inertial, matern+inertial): "
                         "every candidate is written, the selected one marked in the column 'selected'")
     p.add_argument("--estimator", choices=["debiased", "whittle", "exact"], default="debiased")
-    p.add_argument("--max-freq", type=float, default=None,
-                   help="fit |f| <= this, cpd (default, per window: 3/4 of the Nyquist frequency of the grid "
-                        "step or of the fix interval, whichever is longer; Nyquist for measured velocities)")
-    p.add_argument("--observation", choices=["none", "differenced", "differenced+noise"], default=None,
-                   help="observation model (default: differenced+noise for velocities from positions, "
-                        "none for measured u, v)")
-    p.add_argument("--position-noise", default="fit", metavar="fit|input|METRES",
-                   help="fit the position noise (default), take it from the input's position_error_m, "
-                        "or hold it at METRES")
-    p.add_argument("--exclude", default=None, metavar="LOW:HIGH,...",
-                   help="leave out bands of |f| (cpd), e.g. 1.85:2.05 around semidiurnal tides")
-    p.add_argument("--taper", choices=["none", "hann", "dpss"], default="none")
-    p.add_argument("--inertial-frequency", choices=["auto", "free", "follow-latitude"], default="auto",
-                   help="inertial oscillation at a fitted constant frequency (free), following the local inertial "
-                        "frequency with a fitted offset (follow-latitude), or following it where the window's "
-                        "latitude span moves it by more than the frequency resolution (auto, default)")
+    _add_spec_options(p)
     p.add_argument("--stderr", choices=("auto", "fisher", "sandwich"), default="auto",
-                   help="standard errors: sandwich (score covariance simulated with the window's gaps) or "
-                        "fisher (inflated Fisher information; faster); auto: sandwich for windows with gaps "
-                        "(default: %(default)s)")
+                   help="standard errors: sandwich (score covariance simulated with the window's gaps, or from its "
+                        "irregular fixes) or fisher (inflated Fisher information; faster); auto: sandwich for windows "
+                        "with gaps or irregular fixes (default: %(default)s)")
     p.add_argument("--bootstrap", type=int, default=0, metavar="B",
                    help="also parametric-bootstrap standard errors from B refits of simulated replicates "
                         "(columns *_se_boot)")
-    p.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="processes (default: all cores)")
-    p.add_argument("--dask", metavar="ADDRESS", help="a Dask scheduler address, or 'local' for a LocalCluster")
-    p.add_argument("--resume", action="store_true", help="skip windows already in --out")
+    _add_run_options(p, "skip windows already in --out")
     p.add_argument("--chunk-size", type=int, default=64, help="windows per unit of work and per written part")
-    p.add_argument("--no-progress", action="store_true")
     _add_prep_options(p)
 
     p = sub.add_parser("map", help="grid fitted parameters into latitude-longitude bins (CF netCDF)")
@@ -124,27 +142,15 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("pool", help="one model fitted to every window of each bin at once (pooled fits, CF netCDF)")
     p.add_argument("input", help="CSV, Parquet or CF trajectory netCDF")
     p.add_argument("--out", type=Path, required=True, help="pooled map (.nc)")
-    p.add_argument("--window-days", type=float, required=True)
-    p.add_argument("--overlap", type=float, default=0.5, help="fraction, [0, 1)")
-    p.add_argument("--min-coverage", type=float, default=0.8, help="minimum fraction of valid samples")
+    _add_window_options(p, default_days=None)
     p.add_argument("--bin-deg", type=float, required=True, help="bin size, degrees")
     p.add_argument("--region", help="LON0,LAT0,LON1,LAT1 (default: everywhere; negative numbers need --region=...)")
     p.add_argument("--model", default="matern+inertial", help="the model family pooled (default %(default)s)")
     p.add_argument("--share", choices=["shape", "all"], default="shape",
                    help="share the spectral shape with per-window amplitudes (default), or every parameter")
     p.add_argument("--min-windows", type=int, default=2, help="fewest windows for a bin's fit (default 2)")
-    p.add_argument("--max-freq", type=float, default=None, help="fit |f| <= this, cpd (default: as 'fit')")
-    p.add_argument("--observation", choices=["none", "differenced", "differenced+noise"], default=None,
-                   help="observation model (default: as 'fit')")
-    p.add_argument("--position-noise", default="fit", metavar="fit|input|METRES")
-    p.add_argument("--exclude", default=None, metavar="LOW:HIGH,...", help="leave out bands of |f| (cpd)")
-    p.add_argument("--taper", choices=["none", "hann", "dpss"], default="none")
-    p.add_argument("--inertial-frequency", default=None, metavar="free|follow-latitude|...",
-                   help="inertial frequency handling, as 'fit' (default: fit's default)")
-    p.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="processes (default: all cores)")
-    p.add_argument("--dask", metavar="ADDRESS", help="a Dask scheduler address, or 'local' for a LocalCluster")
-    p.add_argument("--resume", action="store_true", help="keep the bins already fitted by an interrupted run")
-    p.add_argument("--no-progress", action="store_true")
+    _add_spec_options(p)
+    _add_run_options(p, "keep the bins already fitted by an interrupted run")
     p.set_defaults(estimator="debiased", stderr="auto", bootstrap=0)
     _add_prep_options(p)
 
@@ -201,11 +207,11 @@ def fit_spec_from_args(args):
 
     models = tuple(m.strip() for m in args.model.split(",") if m.strip())
     noise = args.position_noise
-    if noise not in ("fit", "input"):
+    if noise not in ("auto", "fit", "input"):
         try:
             noise = float(noise)
         except ValueError:
-            raise SystemExit(f"driftspec: --position-noise takes fit, input or metres, got {noise!r}") from None
+            raise SystemExit(f"driftspec: --position-noise takes auto, fit, input or metres, got {noise!r}") from None
     try:
         return FitSpec(models=models, estimator=args.estimator,
                        band="auto" if args.max_freq is None else args.max_freq, velocity=args.velocity,
@@ -241,12 +247,28 @@ def _windowing(args) -> dict:
             **_prep_options(args).to_dict()}
 
 
+def _window_stream(args, reader, reports: list, census):
+    """Windows of the input, read, cleaned, gridded and cut a few hundred tracks at a time (``fit`` and ``pool``);
+    QC reports are appended to ``reports``, window counts go into ``census``."""
+    from driftspec.analysis.tracks.pipeline import iter_velocity_batches
+    from driftspec.analysis.tracks.qc import clean_fixes_in_batches
+    from driftspec.analysis.tracks.windows import iter_windows
+
+    prep = _prep_options(args)
+    for raw in reader:
+        for fixes, report in clean_fixes_in_batches(raw, max_speed=prep.max_speed, source=str(args.input)):
+            reports.append(report)
+            for vel in iter_velocity_batches(fixes, prep):
+                yield from iter_windows(vel, args.window_days, args.overlap, args.min_coverage,
+                                        use_measured=args.velocity == "measured", census=census)
+
+
 def cmd_fit(args):
-    from driftspec.analysis.fitting.batch import run_fits, summarise
+    from driftspec.analysis.fitting.batch import describe_choices, run_fits, summarise
     from driftspec.analysis.io import FixReader
-    from driftspec.analysis.tracks.pipeline import estimate_windows, iter_velocity_batches
-    from driftspec.analysis.tracks.qc import clean_fixes_in_batches, merge_reports
-    from driftspec.analysis.tracks.windows import WindowCensus, iter_windows
+    from driftspec.analysis.tracks.pipeline import estimate_windows
+    from driftspec.analysis.tracks.qc import merge_reports
+    from driftspec.analysis.tracks.windows import WindowCensus
 
     spec = fit_spec_from_args(args)
     windowing = _windowing(args)
@@ -257,22 +279,13 @@ def cmd_fit(args):
     out_dir = args.out.resolve().parent
     if not out_dir.is_dir() or not os.access(out_dir, os.W_OK):
         raise SystemExit(f"driftspec: cannot write {args.out}: {out_dir} is not a writable folder")
-    prep = _prep_options(args)
     reader = FixReader(args.input)  # track-contiguous Parquet: read a million rows at a time
     total = estimate_windows(reader.spans(), args.window_days, args.overlap)
     reports = []
     census = WindowCensus()
-
-    def batches():  # stream: read, clean, grid and cut windows a few hundred tracks at a time
-        for raw in reader:
-            for fixes, report in clean_fixes_in_batches(raw, max_speed=prep.max_speed, source=str(args.input)):
-                reports.append(report)
-                for vel in iter_velocity_batches(fixes, prep):
-                    yield from iter_windows(vel, args.window_days, args.overlap, args.min_coverage,
-                                            use_measured=args.velocity == "measured", census=census)
-
     try:
-        df = run_fits(batches(), args.out, spec, workers=args.workers, dask_address=args.dask, resume=args.resume,
+        df = run_fits(_window_stream(args, reader, reports, census), args.out, spec, workers=args.workers,
+                      dask_address=args.dask, resume=args.resume,
                       progress=not args.no_progress, total=total, chunk_size=args.chunk_size, windowing=windowing)
     except ValueError as exc:
         if args.debug:
@@ -280,6 +293,8 @@ def cmd_fit(args):
         raise SystemExit(f"driftspec: {exc}") from None
     print(merge_reports(reports, str(args.input)).summary(), file=sys.stderr)
     print(summarise(df))
+    if choices := describe_choices(df):
+        print(choices)
     if len(df) == 0:
         print(census.explain(args.min_coverage), file=sys.stderr)
     print(f"wrote {args.out}")
@@ -300,16 +315,12 @@ def cmd_map(args):
 
 
 def cmd_pool(args):
-    from driftspec.analysis.fitting.spec import FitSpec
     from driftspec.analysis.io import FixReader
     from driftspec.analysis.regional.maps import file_digest
     from driftspec.analysis.regional.pooled import pool_map
-    from driftspec.analysis.tracks.pipeline import iter_velocity_batches
-    from driftspec.analysis.tracks.qc import clean_fixes_in_batches, merge_reports
-    from driftspec.analysis.tracks.windows import WindowCensus, iter_windows
+    from driftspec.analysis.tracks.qc import merge_reports
+    from driftspec.analysis.tracks.windows import WindowCensus
 
-    if args.inertial_frequency is None:
-        args.inertial_frequency = FitSpec.__dataclass_fields__["inertial_frequency"].default
     spec = fit_spec_from_args(args)
     windowing = _windowing(args)
     if not args.bin_deg > 0:
@@ -321,22 +332,14 @@ def cmd_pool(args):
     if args.out.suffix.lower() != ".nc":
         raise SystemExit(f"driftspec: --out must be a netCDF file (.nc), got {args.out}")
     region = _floats(args.region, 4, "--region") if args.region else None
-    prep = _prep_options(args)
     reader = FixReader(args.input)
     reports, census = [], WindowCensus()
-
-    def windows():  # stream: read, clean, grid and cut windows a few hundred tracks at a time
-        for raw in reader:
-            for fixes, report in clean_fixes_in_batches(raw, max_speed=prep.max_speed, source=str(args.input)):
-                reports.append(report)
-                for vel in iter_velocity_batches(fixes, prep):
-                    yield from iter_windows(vel, args.window_days, args.overlap, args.min_coverage,
-                                            use_measured=args.velocity == "measured", census=census)
 
     path = Path(args.input)
     source = f"{path.name} (sha256 {file_digest(path)})" if path.is_file() else str(args.input)
     try:
-        ds = pool_map(windows(), spec, bin_deg=args.bin_deg, region=region, out=args.out, share=args.share,
+        ds = pool_map(_window_stream(args, reader, reports, census), spec, bin_deg=args.bin_deg, region=region,
+                      out=args.out, share=args.share,
                       min_windows=args.min_windows, workers=args.workers, dask_address=args.dask,
                       resume=args.resume, progress=not args.no_progress, windowing=windowing, source=source,
                       command=" ".join(["driftspec", *sys.argv[1:]]))

@@ -9,7 +9,7 @@ from nbclient import NotebookClient
 NOTEBOOKS = Path(__file__).resolve().parent.parent / "notebooks"
 
 
-@pytest.mark.parametrize("name", ["quickstart.ipynb", "walkthrough.ipynb"])
+@pytest.mark.parametrize("name", ["quickstart.ipynb", "walkthrough.ipynb", "pooled_map.ipynb"])
 def test_notebook_runs(name, demo_dir, monkeypatch):
     monkeypatch.setenv("DRIFTSPEC_DEMO", str(demo_dir / "fixes.parquet"))
     nb = nbformat.read(NOTEBOOKS / name, as_version=4)

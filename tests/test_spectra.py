@@ -76,3 +76,25 @@ def test_sunspot_cycle_from_statsmodels_data():
     f_peak = mt.freq_cpd[pos][np.argmax(mt.power[pos])]
     period_years = 1.0 / (f_peak * 365.25)
     assert 10.0 <= period_years <= 12.0
+
+
+def test_multitaper_defaults_give_the_documented_tapers_and_interval(rng):
+    # defaults: NW = 4 and K = 2 NW - 3 = 5 tapers; the pointwise 95 % interval comes from chi-squared with 2K
+    # degrees of freedom (Percival & Walden 1993, eq. 370a). On complex white noise of known density, the interval
+    # covers the true spectrum at about 95 % of the frequencies away from zero (each frequency is a draw from that
+    # distribution; neighbours are correlated, so the tolerance is generous)
+    from scipy.stats import chi2
+
+    n, dt = 2048, 3600.0
+    density = 0.02 * dt / 86400.0  # (m/s)^2 per cpd of white noise of variance 0.02 at hourly steps
+    hits = []
+    for _ in range(6):
+        z = np.sqrt(0.01) * (rng.standard_normal(n) + 1j * rng.standard_normal(n))
+        mt = multitaper_spectrum(z, dt)
+        f, s_lo, s_hi = mt.freq_cpd, mt.lower, mt.upper
+        away = np.abs(f) > 0.1
+        hits.append(np.mean((s_lo[away] <= density) & (density <= s_hi[away])))
+        # the interval's width is the chi-squared(10) one: upper/lower = q(0.975)/q(0.025) of chi2(2K)/2K
+        ratio = np.median(s_hi[away] / s_lo[away])
+        assert ratio == pytest.approx(chi2.ppf(0.975, 10) / chi2.ppf(0.025, 10), rel=1e-6)
+    assert 0.90 < np.mean(hits) < 0.99

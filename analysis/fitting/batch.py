@@ -37,7 +37,7 @@ WINDOW_COLUMNS = ["track_id", "window_start", "window_end", "lat", "lon", "n_sam
 COLUMN_UNITS = {
     "lat": "degrees_north", "lon": "degrees_east", "n_samples": "1", "coverage": "1",
     "inertial_frequency_local": "day-1", "max_freq": "day-1", "position_noise": "m", "position_error_scale": "1",
-    "loglik": "1", "aic": "1",
+    "loglik": "1", "aic": "1", "grid_step_s": "s", "fix_interval_s": "s", "mask_distance_s": "s",
     "gof_pvalue": "1",
     "diffusivity": "m2 s-1", "diffusivity_se": "m2 s-1", "matern_timescale_days": "day",
     "inertial_efold_days": "day", "window_start": "UTC", "window_end": "UTC",
@@ -59,6 +59,7 @@ def window_rows(w: Window, spec: FitSpec) -> list[dict]:
     identity, position and variance ellipse; a failure is a row with a status, never an exception."""
     base = {"track_id": w.track_id, "window_start": w.start, "window_end": w.end, "lat": w.lat, "lon": w.lon,
             "n_samples": w.n_samples, "coverage": w.coverage, "inertial_frequency_local": w.inertial_frequency_cpd,
+            "grid_step_s": w.dt_seconds, "fix_interval_s": w.fix_interval_s, "mask_distance_s": w.mask_distance_s,
             **variance_ellipse(w.z)}
     try:
         results = fit_window(w, spec)
@@ -337,5 +338,25 @@ def summarise(df: pd.DataFrame) -> str:
     return f"{len(df)} fits: {ok} ok; other: {other}"
 
 
-__all__ = ["column_units", "combine", "fit_chunk", "run_fits", "run_settings", "stored_settings", "summarise",
+def describe_choices(df: pd.DataFrame) -> str:
+    """What the run chose per window from the data (observation model, mask, band, latitude handling, model),
+    one line each, from a fits table."""
+    if len(df) == 0 or "observation" not in df:
+        return ""
+    rows = df[df["selected"].astype(bool)] if "selected" in df else df
+    lines = []
+    for obs, g in rows.groupby("observation", sort=True):
+        interval = g["fix_interval_s"].median() / 3600 if "fix_interval_s" in g else float("nan")
+        mask = g["mask_distance_s"].median() / 3600 if "mask_distance_s" in g else float("nan")
+        lines.append(f"  {obs}: {len(g)} windows (median fix interval {interval:.1f} h, mask distance {mask:.0f} h, "
+                     f"band to {g['max_freq'].median():.2f} cpd)")
+    if "inertial_frequency_offset" in rows:
+        lines.append(f"  inertial part following the latitude: {int(rows['inertial_frequency_offset'].notna().sum())} "
+                     "windows")
+    lines.append("  selected models: " + ", ".join(f"{k} {v}" for k, v in rows["model"].value_counts().items()))
+    return "chosen from the data:\n" + "\n".join(lines)
+
+
+__all__ = ["column_units", "combine", "describe_choices", "fit_chunk", "run_fits", "run_settings", "stored_settings",
+           "summarise",
            "window_rows"]

@@ -55,9 +55,12 @@ def fit_window(window, spec: FitSpec, start: dict | None = None) -> list[FitResu
                         irregular=window.irregular, fix_times_days=window.fix_times_days,
                         fix_error_m=window.fix_error_m)
     defer = not spec.keep_all and len(spec.candidate_models) > 1
-    results = [_fit_planned(window.z, plan, spec, m, start=start, defer=defer) for m in spec.candidate_models]
+    shared = {}  # what the candidates share: the irregular-fix operator is built once per window
+    results = [_fit_planned(window.z, plan, spec, m, start=start, defer=defer, shared=shared)
+               for m in spec.candidate_models]
     for r in results:
         r.window_start = window.start
+        r.observation = plan.observation
     best = select(results, window.n_samples * window.dt_seconds / SECONDS_PER_DAY)
     if defer and best >= 0:  # the sandwich and the goodness of fit for the selected candidate only
         complete(results[best])
@@ -142,10 +145,13 @@ def fit_series(z, dt, *, model="matern+inertial", estimator="debiased", max_freq
     if latitude is not None and np.ndim(latitude) and np.shape(latitude) != z.shape:
         raise ValueError("latitude must be a scalar or have one value per sample")
     plan = spec.resolve(parse_timedelta_seconds(dt) / SECONDS_PER_DAY, latitude)
-    return _fit_planned(z, plan, spec, spec.candidate_models[0], mask=mask, start=start)
+    result = _fit_planned(z, plan, spec, spec.candidate_models[0], mask=mask, start=start)
+    result.observation = plan.observation
+    return result
 
 
-def _fit_planned(z, plan: WindowPlan, spec: FitSpec, model, mask=None, start=None, defer=False) -> FitResult:
+def _fit_planned(z, plan: WindowPlan, spec: FitSpec, model, mask=None, start=None, defer=False,
+                 shared: dict | None = None) -> FitResult:
     """Prepare one window for one candidate as ``plan`` says and fit it."""
     family = spec.family(model, plan.follow_latitude, plan.observation)
     name = spec.model_name(model)
@@ -179,7 +185,7 @@ def _fit_planned(z, plan: WindowPlan, spec: FitSpec, model, mask=None, start=Non
         if spec.estimator != "debiased":
             return failed("failed", f"the {spec.estimator} estimator does not model irregular fixes; use debiased")
         try:
-            family = _irregularly_observed(family, prep, plan, context, spec.operator)
+            family = _irregularly_observed(family, prep, plan, context, spec.operator, shared)
         except ValueError as exc:
             return failed("failed", f"irregular observation: {exc}")
         fixed = {k: v for k, v in fixed.items() if k in family.names}
@@ -197,12 +203,17 @@ def _fit_planned(z, plan: WindowPlan, spec: FitSpec, model, mask=None, start=Non
         return failed("failed", f"{type(exc).__name__}: {exc}")
 
 
-def _irregularly_observed(family, prep, plan: WindowPlan, context, operator):
-    """The ocean family seen through the window's interpolation of irregular fixes (built once per window)."""
-    noise = "fixed" if plan.fix_error_m is not None else "fitted"
-    obs = IrregularObservation(plan.fix_times_days, plan.dt_days, prep.n, valid=prep.valid, operator=operator,
-                               taper=prep.taper, position_error_m=plan.fix_error_m, noise=noise,
-                               band_index=prep.band_index, inertial_frequency_cpd=context.inertial_frequency_cpd)
+def _irregularly_observed(family, prep, plan: WindowPlan, context, operator, shared: dict | None = None):
+    """The ocean family seen through the window's interpolation of irregular fixes (the operator is built once
+    per window and kept in ``shared`` for the other candidates)."""
+    shared = {} if shared is None else shared
+    if "operator" not in shared:
+        noise = "fixed" if plan.fix_error_m is not None else "fitted"
+        shared["operator"] = IrregularObservation(
+            plan.fix_times_days, plan.dt_days, prep.n, valid=prep.valid, operator=operator, taper=prep.taper,
+            position_error_m=plan.fix_error_m, noise=noise, band_index=prep.band_index,
+            inertial_frequency_cpd=context.inertial_frequency_cpd)
+    obs = shared["operator"]
     typical = float(np.sqrt(np.mean(plan.fix_error_m**2))) if plan.fix_error_m is not None else None
     return IrregularlyObserved(family, obs, fixed_sigma_m=typical)
 

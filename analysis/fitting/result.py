@@ -50,6 +50,9 @@ class FitResult:
         Parameters held fixed (their standard errors are zero).
     selected, selection : bool, str
         Whether this candidate was chosen for its window, and why (:mod:`~driftspec.analysis.fitting.selection`).
+    observation : str
+        The observation model the window was fitted with (``none``, ``differenced``, ``differenced+noise`` or
+        ``irregular``).
     stderr_method : str
         How the standard errors were computed: ``fisher`` (inflated inverse Fisher information),
         ``sandwich`` (simulated score covariance), ``observed`` (exact likelihood's Hessian), or ``""``.
@@ -77,6 +80,7 @@ class FitResult:
     window_start: object = None
     selected: bool = True
     selection: str = ""
+    observation: str = ""
     fixed: dict = field(default_factory=dict)
     covariance: np.ndarray | None = field(default=None, repr=False)
     pending: tuple | None = field(default=None, repr=False)  # what completing a deferred fit needs
@@ -122,7 +126,7 @@ class FitResult:
             "message": self.message, "loglik": self.loglik, "aic": self.aic,
             "gof_pvalue": self.gof_pvalue, "n_valid": self.n_valid, "n_freq": self.n_freq,
             "max_freq": self.max_freq, "stderr_method": self.stderr_method, "selected": self.selected,
-            "selection": self.selection,
+            "selection": self.selection, "observation": self.observation,
         }
         for k, v in self.params.items():
             row[k] = v
