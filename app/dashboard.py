@@ -38,10 +38,10 @@ from driftspec.analysis.spectral.periodogram import multitaper_spectrum, rotary_
 from driftspec.analysis.tracks.pipeline import load_velocities
 from driftspec.analysis.tracks.windows import iter_windows
 
-from .geo import bin_quads, degree_ticks, lat_label, lon_label
+from .geo import bin_quads, degree_ticks, label_points, lat_label, lon_label, widen_to_ratio
 from .jobs import Job
 from .state import ANALYSIS, FIT_PARAMS, URL_PARAMS, ExplorerState, parse_query, widgets_for
-from .trackdata import TrackData
+from .trackdata import MAP_RATIO, TrackData
 
 hv.extension("bokeh", logo=False)
 pn.extension("tabulator", inline=True)
@@ -459,8 +459,9 @@ class View(pn.viewable.Viewer):
         return 1.8 if self.state.presentation else 1.0
 
 
-def geography_layers(data: TrackData, labels: bool):
-    """Land, shoreline and graticule of a data set's map, and the axis options putting degrees on the axes."""
+def geography_layers(data: TrackData, labels: bool, view=None):
+    """Land, shoreline and graticule of a data set's map, and the axis options putting degrees on the axes
+    (cylindrical views) or labels on the graticule lines (polar views). ``view``: the (xlim, ylim) shown."""
     land, lines, glabels = data.geography
     gap = np.full((1, 2), np.nan)
     land_el = hv.Polygons([{"x": r[:, 0], "y": r[:, 1]} for r in land], kdims=["x", "y"]).opts(
@@ -469,17 +470,17 @@ def geography_layers(data: TrackData, labels: bool):
     grid = hv.Path([grid_xy], kdims=["x", "y"]).opts(color=COLOURS["grid"], line_width=0.6, line_dash="dashed",
                                                       alpha=0.8)
     layers = [land_el, grid]
-    (x0, x1), (y0, y1) = data.extent
+    (x0, x1), (y0, y1) = view or data.extent
     xt, yt = degree_ticks(data.proj, (x0, x1), (y0, y1))
     if xt:
         axis = dict(xticks=list(xt.items()), yticks=list(yt.items()), xlabel="longitude", ylabel="latitude")
     else:
         axis = dict(xaxis=None, yaxis=None)
         if labels:
-            keep = [(x, y, t) for x, y, t in glabels if x0 <= x <= x1 and y0 <= y <= y1]
+            keep = label_points(lines, glabels, (x0, x1), (y0, y1))
             if keep:
                 layers.append(hv.Labels(keep, kdims=["x", "y"], vdims="text").opts(
-                    text_color="#3a4450", text_font_size="9pt"))
+                    text_color="#3a4450", text_font_size="9pt", text_align="left", text_baseline="bottom"))
     return layers, axis
 
 
@@ -548,7 +549,7 @@ class TrackMap(View):
         box = hv.DynamicMap(pn.bind(self._region_box, st.param.region))
         (x0, x1), (y0, y1) = data.extent
         return functools.reduce(operator.mul, [geo[0], shaded, *geo[1:], picker, sel, box]).opts(hv.opts.Overlay(
-            frame_height=480, title="All tracks", xlim=(x0, x1), ylim=(y0, y1), data_aspect=1,
+            frame_height=480, frame_width=int(480 * MAP_RATIO), title="All tracks", xlim=(x0, x1), ylim=(y0, y1),
             active_tools=["wheel_zoom"], bgcolor="#eef2f5", **axis))
 
     @param.depends("pointer.x", "pointer.y")
@@ -800,14 +801,16 @@ class ParameterMap(View):
             color=p, cmap="cividis", colorbar=True, line_width=0.2, line_color="white", tools=["hover"],
             hover_tooltips=[("bin centre", "@lat{0.0}°N @lon{0.0}°E"), (f"median {p}", f"@{{{p}}}{{0.000}}"),
                             ("ok fits", "@count")])
-        geo, axis = geography_layers(data, labels=True)
         qx = np.concatenate([q[:, 0] for row in quads for q in row])
         qy = np.concatenate([q[:, 1] for row in quads for q in row])
         pad = 0.05 * max(np.ptp(qx), np.ptp(qy))
+        (dx0, dx1), (dy0, dy1) = data.extent
+        xlim, ylim = widen_to_ratio((min(qx.min() - pad, dx0), max(qx.max() + pad, dx1)),
+                                    (min(qy.min() - pad, dy0), max(qy.max() + pad, dy1)), MAP_RATIO)
+        geo, axis = geography_layers(data, labels=True, view=(xlim, ylim))
         return hv.Overlay([geo[0], mesh, *geo[1:]]).opts(hv.opts.Overlay(
-            frame_height=480, data_aspect=1, fontscale=self.fontscale(), bgcolor="#eef2f5",
-            title=f"median {p} in {b:g}° bins ({int(cnt.sum())} ok fits)",
-            xlim=(qx.min() - pad, qx.max() + pad), ylim=(qy.min() - pad, qy.max() + pad), **axis))
+            frame_height=480, frame_width=int(480 * MAP_RATIO), fontscale=self.fontscale(), bgcolor="#eef2f5",
+            title=f"median {p} in {b:g}° bins ({int(cnt.sum())} ok fits)", xlim=xlim, ylim=ylim, **axis))
 
     def __panel__(self):
         mp = pn.widgets.Select.from_param(self.state.param.map_param, name="Parameter")

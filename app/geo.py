@@ -131,26 +131,26 @@ def degree_ticks(proj: MapProjection, xlim, ylim, reach: float = 1.0) -> tuple[d
     return ({float(x): lon_label(v) for x, v in zip(xs, lons)}, {float(y): lat_label(v) for y, v in zip(ys, lats)})
 
 
-def graticule(proj: MapProjection, lon_range, lat_range, n: int = 6):
-    """Meridians and parallels over the given extent (degrees) as projected (n, 2) paths, and labels
-    ``(x, y, text)`` for each line (placed at the equatorward edge in polar views)."""
-    lo0, lo1 = lon_range
-    la0, la1 = max(lat_range[0], -proj.max_abs_lat), min(lat_range[1], proj.max_abs_lat)
+def graticule(proj: MapProjection, lon_range, lat_range, n: int = 6, reach: float = 1.0):
+    """Meridians and parallels spaced for the given extent (degrees) and reaching ``reach`` extents beyond it,
+    as projected (m, 2) paths, with a label text for each line."""
+    lon_step, lat_step = _step(lon_range[1] - lon_range[0], n), _step(lat_range[1] - lat_range[0], n)
+    dlo, dla = reach * (lon_range[1] - lon_range[0]), reach * (lat_range[1] - lat_range[0])
+    lo0, lo1 = lon_range[0] - dlo, lon_range[1] + dlo
+    la0, la1 = max(lat_range[0] - dla, -proj.max_abs_lat), min(lat_range[1] + dla, proj.max_abs_lat)
     if not proj.cylindrical:
         lo0, lo1 = proj.central_lon - 180, proj.central_lon + 180
-    lon_step, lat_step = _step(lo1 - lo0, n if proj.cylindrical else 12), _step(la1 - la0, n)
     paths, labels = [], []
     dense_lat = np.linspace(la0, la1, 90)
     for lon in np.arange(np.floor(lo0 / lon_step) * lon_step, lo1 + 1e-9, lon_step):
         x, y = proj.forward(np.full_like(dense_lat, lon), dense_lat)
         paths.append(np.column_stack([x, y]))
-        edge = 0 if proj.kind != "south_polar" else -1
-        labels.append((float(x[edge]), float(y[edge]), lon_label(lon)))
+        labels.append(lon_label(lon))
     dense_lon = np.linspace(lo0, lo1, 180)
     for lat in np.arange(np.ceil(la0 / lat_step) * lat_step, la1 + 1e-9, lat_step):
         x, y = proj.forward(dense_lon, np.full_like(dense_lon, lat))
         paths.append(np.column_stack([x, y]))
-        labels.append((float(x[0]), float(y[0]), lat_label(lat)))
+        labels.append(lat_label(lat))
     return paths, labels
 
 
@@ -182,6 +182,29 @@ def land_polygons(proj: MapProjection, lon_range, lat_range, margin_deg: float =
                 xy = np.asarray(g.exterior.coords)
                 x, y = proj.forward(xy[:, 0], xy[:, 1])
                 out.append(np.column_stack([x, y]))
+    return out
+
+
+def widen_to_ratio(xlim, ylim, ratio: float):
+    """Grow the shorter side of a box about its centre so that width / height == ratio."""
+    (x0, x1), (y0, y1) = xlim, ylim
+    w, h = x1 - x0, y1 - y0
+    if w / h < ratio:
+        c, w = 0.5 * (x0 + x1), h * ratio
+        return (c - w / 2, c + w / 2), (y0, y1)
+    c, h = 0.5 * (y0 + y1), w / ratio
+    return (x0, x1), (c - h / 2, c + h / 2)
+
+
+def label_points(paths, texts, xlim, ylim):
+    """Where to write each graticule line's label: its first point inside the view box."""
+    out = []
+    for p, t in zip(paths, texts):
+        inside = np.flatnonzero((p[:, 0] >= xlim[0]) & (p[:, 0] <= xlim[1]) & (p[:, 1] >= ylim[0])
+                                & (p[:, 1] <= ylim[1]))
+        if inside.size:
+            k = inside[0]
+            out.append((float(p[k, 0]), float(p[k, 1]), t))
     return out
 
 

@@ -15,8 +15,11 @@ from scipy.spatial import cKDTree
 
 from driftspec.analysis.runs import run_bounds
 
-from .geo import choose_projection, data_extent, graticule, land_polygons, lonlat_ranges
+from .geo import choose_projection, data_extent, graticule, land_polygons, lonlat_ranges, widen_to_ratio
 from .jobs import Job, call_in_session
+
+#: width / height of the maps' frames
+MAP_RATIO = 1.5
 
 
 class TrackData:
@@ -44,7 +47,7 @@ class TrackData:
         starts, stops = run_bounds(codes)
         self.slices = {self.track_ids[codes[s]]: (s, e) for s, e in zip(starts, stops)}
         self.time_range = (pd.Timestamp(t_ns.min()), pd.Timestamp(t_ns.max())) if len(t_ns) else None
-        self.extent = data_extent(self.proj, self.points["x"], self.points["y"])
+        self.extent = widen_to_ratio(*data_extent(self.proj, self.points["x"], self.points["y"]), MAP_RATIO)
         self._lock = threading.Lock()
         self.first_look: Job | None = None
         self._subscribers: weakref.WeakSet = weakref.WeakSet()
@@ -59,7 +62,7 @@ class TrackData:
         (x0, x1), (y0, y1) = self.extent
         lon_r, lat_r = lonlat_ranges(self.proj, (x0, x1), (y0, y1))
         land = land_polygons(self.proj, lon_r, lat_r)
-        lines, labels = graticule(self.proj, (lon_r[0] - 20, lon_r[1] + 20), (lat_r[0] - 20, lat_r[1] + 20))
+        lines, labels = graticule(self.proj, lon_r, lat_r)
         return land, lines, labels
 
     # ------------------------------------------------------------------ first look
