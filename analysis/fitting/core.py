@@ -250,7 +250,9 @@ def fit_prepared(family: ModelFamily, prep: PreparedWindow, context: FitContext,
         context=context, prepared=prep,
     )
     result.pending = (problem, opt, estimator, stderr, kappa_grad)
-    _set_covariance(result, "fisher" if defer and estimator.name == "debiased" else stderr)
+    deferred = defer and estimator.name == "debiased"
+    _set_covariance(result, "fisher" if deferred else stderr)
+    result.covariance_deferred = deferred
     if not defer:
         complete(result)
     return result
@@ -261,7 +263,7 @@ def complete(result: FitResult) -> FitResult:
     if result.pending is None:
         return result
     problem, opt, estimator, stderr, _ = result.pending
-    if result.stderr_method == "fisher" and stderr != "fisher":
+    if result.covariance_deferred and stderr != "fisher":
         _set_covariance(result, stderr)
     e_band = estimator.expected_band(problem, opt)
     prep = problem.prep

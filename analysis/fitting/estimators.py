@@ -31,14 +31,22 @@ from ..spectral.likelihood import PreparedWindow, expected_in_band, whittle_expe
 from .uncertainty import score_covariance
 
 
+def _log_scaled(family: ModelFamily) -> np.ndarray:
+    return np.array([p.scale == "log" for p in family.parameters], bool)
+
+
 def to_x(theta, family: ModelFamily) -> np.ndarray:
     """Natural units to optimiser coordinates."""
-    return np.array([np.log(t) if p.scale == "log" else t for t, p in zip(theta, family.parameters)], float)
+    theta = np.asarray(theta, float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(_log_scaled(family), np.log(np.where(_log_scaled(family), theta, 1.0)), theta)
 
 
 def from_x(x, family: ModelFamily) -> np.ndarray:
     """Optimiser coordinates to natural units."""
-    return np.array([np.exp(v) if p.scale == "log" else v for v, p in zip(x, family.parameters)], float)
+    x = np.asarray(x, float)
+    log = _log_scaled(family)
+    return np.where(log, np.exp(np.where(log, x, 0.0)), x)
 
 
 def natural_jacobian(theta, family: ModelFamily) -> np.ndarray:
@@ -58,6 +66,7 @@ class Problem:
     x_lo: np.ndarray
     x_hi: np.ndarray
     n_evaluations: int = 0
+    _natural: tuple | None = None  # bounds in natural units, computed once
 
     @classmethod
     def build(cls, family: ModelFamily, prep: PreparedWindow, context: FitContext, theta0, fixed: dict) -> Problem:
@@ -81,11 +90,9 @@ class Problem:
 
     def theta(self, xf) -> np.ndarray:
         """Natural-unit parameters for free coordinates ``xf``, kept inside the declared bounds."""
-        return np.clip(from_x(self.full(xf), self.family), *self._natural_bounds)
-
-    @property
-    def _natural_bounds(self):
-        return from_x(self.x_lo, self.family), from_x(self.x_hi, self.family)
+        if self._natural is None:
+            self._natural = (from_x(self.x_lo, self.family), from_x(self.x_hi, self.family))
+        return np.clip(from_x(self.full(xf), self.family), *self._natural)
 
     @property
     def x0(self) -> np.ndarray:

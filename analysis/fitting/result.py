@@ -84,6 +84,7 @@ class FitResult:
     fixed: dict = field(default_factory=dict)
     covariance: np.ndarray | None = field(default=None, repr=False)
     pending: tuple | None = field(default=None, repr=False)  # what completing a deferred fit needs
+    covariance_deferred: bool = field(default=False, repr=False)  # Fisher errors standing in until completed
     family: ModelFamily | None = field(default=None, repr=False)
     context: FitContext | None = field(default=None, repr=False)
     prepared: PreparedWindow | None = field(default=None, repr=False)

@@ -57,10 +57,7 @@ class Inertial(ModelFamily):
         return var * np.exp((2j * np.pi * f0 - gam) * tau)
 
     def _autocovariance_jacobian(self, theta, lags_days, context=None):
-        var, f0, gam = theta
-        tau = np.asarray(lags_days, float)
-        r = var * np.exp((2j * np.pi * f0 - gam) * tau)
-        return r, np.stack([r, 2j * np.pi * tau * r, -gam * tau * r])
+        return _ou_jacobian(theta, lags_days)
 
     def _spectral_density(self, theta, freq_cpd, context=None):
         var, f0, gam = theta
@@ -120,10 +117,7 @@ class InertialFollowing(ModelFamily):
         return var * np.exp((2j * np.pi * delta - gam) * np.asarray(lags_days, float))
 
     def _autocovariance_jacobian(self, theta, lags_days, context=None):
-        var, delta, gam = theta
-        tau = np.asarray(lags_days, float)
-        r = var * np.exp((2j * np.pi * delta - gam) * tau)
-        return r, np.stack([r, 2j * np.pi * tau * r, -gam * tau * r])
+        return _ou_jacobian(theta, lags_days)
 
     def _spectral_density(self, theta, freq_cpd, context: FitContext):
         var, delta, gam = theta
@@ -157,3 +151,16 @@ def modulation_sequence(latitude_series, dt_days) -> np.ndarray:
     f = inertial_frequency_cpd(lat)
     phase = 2 * np.pi * dt_days * (np.cumsum(f) - f[0])
     return np.exp(1j * phase)
+
+
+def _ou_jacobian(theta, lags_days):
+    """``R(tau) = var exp((2 pi i f - gamma) tau)`` and its derivatives in (log var, f, log gamma)."""
+    var, f0, gam = theta
+    tau = np.asarray(lags_days, float)
+    jac = np.empty((3, tau.size), complex)
+    np.multiply((2j * np.pi * f0 - gam), tau, out=jac[0])
+    np.exp(jac[0], out=jac[0])
+    jac[0] *= var
+    np.multiply(jac[0], 2j * np.pi * tau, out=jac[1])
+    np.multiply(jac[0], -gam * tau, out=jac[2])
+    return jac[0].copy(), jac

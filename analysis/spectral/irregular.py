@@ -80,6 +80,7 @@ import numpy as np
 import scipy.fft
 import scipy.sparse
 from scipy.interpolate import make_interp_spline
+from threadpoolctl import ThreadpoolController
 
 from ..conventions import SECONDS_PER_DAY
 from ..models.base import FitContext, ModelFamily, Parameter
@@ -90,6 +91,15 @@ from .periodogram import masked_taper
 NOISE_MODES = ("auto", "fixed", "fitted", "none")
 #: the fitted white position noise (m per component): the same parameter as the regular observation model's
 POSITION_NOISE: Parameter = PositionNoise.parameters[0]
+
+
+def _one_blas_thread():
+    """A context in which BLAS runs on one thread, so the kernel product sums in the same order everywhere (a
+    serial run and a process pool then give bit-identical fits)."""
+    return _CONTROLLER.limit(limits=1, user_api="blas")
+
+
+_CONTROLLER = ThreadpoolController()
 #: a fitted factor on the given per-fix position errors (their fix-by-fix structure kept, their level fitted)
 ERROR_SCALE = Parameter("position_error_scale", "1", 0.05, 20.0, "factor on the given per-fix position errors")
 _FD_STEP = 1e-5  # central-difference step of the density in the optimiser's coordinates
@@ -459,7 +469,8 @@ class IrregularObservation:
             raise ValueError(f"theta must have {p_all} values ({', '.join(q.name for q in self.parameters(family))})")
         dens, jac = self._density_stack(family, theta, context, jacobian)
         cols = dens[:, None] if jac is None else np.concatenate([dens[:, None], jac[:p_model].T], axis=1)
-        out = self.kernel @ cols  # (band, 1 + p_model)
+        with _one_blas_thread():  # the same sums in every process, and faster than threads on a busy machine
+            out = self.kernel @ cols  # (band, 1 + p_model)
         if self._tail is not None:
             tot = np.zeros(cols.shape[1])
             for last, prev in self._outer:
