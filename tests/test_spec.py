@@ -88,6 +88,12 @@ def test_band_rule():
     # fixes every 4 h behind an hourly grid: at most 0.75 * 3 cpd
     assert FitSpec().max_freq(dt, fix_interval_days=4 / 24) == pytest.approx(2.25)
     assert FitSpec(band=2.0).max_freq(dt, fix_interval_days=4 / 24) == 2.0
+    # fixes 3.4 h apart on average, fitted through the irregular operator: half their Nyquist frequency (1.76 cpd),
+    # or 0.3 cpd beyond an inertial frequency of 1.74 cpd (60 N), never beyond 3/4 of their Nyquist (2.65 cpd)
+    fix = 3.4 / 24
+    assert FitSpec().max_freq(dt, fix, "irregular", -1.0) == pytest.approx(0.5 * 12 / 3.4)
+    assert FitSpec().max_freq(dt, fix, "irregular", -1.74) == pytest.approx(2.04)
+    assert FitSpec().max_freq(dt, fix, "irregular", -2.6) == pytest.approx(0.75 * 12 / 3.4)
 
 
 @pytest.mark.parametrize("kwargs, message", [

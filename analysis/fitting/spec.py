@@ -21,7 +21,10 @@ What is resolved per window (:meth:`FitSpec.resolve`):
   ====================  ===========================  ==================
 
   and, for samples interpolated between fixes further apart than the grid step, at most ``0.75`` of the Nyquist
-  frequency of the window's typical fix interval: frequencies the fixes cannot resolve are not fitted.
+  frequency of the window's mean fix interval: frequencies the fixes cannot resolve are not fitted. Windows fitted
+  through the irregular-fix operator stop at half that Nyquist frequency, or 0.3 cpd beyond the local inertial
+  frequency when that is higher (still at most 0.75 of it): measured on simulated satellite fixes, the top of a
+  wider band pulls the Matérn slope down.
 * **The observation model**: ``"auto"`` is ``differenced+noise`` for differenced velocities and ``none`` for
   measured ones.
 * **The latitude**: the mean latitude, or every sample's latitude for the latitude-following inertial model.
@@ -51,6 +54,11 @@ BAND_FRACTION_OBSERVED = {"central": 0.75, "forward": 1.0, "measured": 1.0}
 BAND_FRACTION_UNMODELLED_DIFFERENCE = 0.25
 #: fraction of the fix interval's Nyquist frequency fitted at most
 FIX_BAND_FRACTION = 0.75
+#: ... and, for windows fitted through the irregular-fix operator, the fraction fitted by default: on simulated
+#: satellite fixes (benchmarks/bench_recovery.py) 3/4 left the Matérn slope 0.13 too flat, 1/2 0.04; the band
+#: still reaches INERTIAL_MARGIN_CPD beyond the local inertial frequency when that is higher (up to 3/4)
+IRREGULAR_BAND_FRACTION = 0.5
+INERTIAL_MARGIN_CPD = 0.3
 
 
 @dataclass(frozen=True)
@@ -209,17 +217,24 @@ class FitSpec:
     def model_name(self, model) -> str:
         return model if isinstance(model, str) else model.name
 
-    def max_freq(self, dt_days: float, fix_interval_days: float | None = None, observation: str | None = None) -> float:
+    def max_freq(self, dt_days: float, fix_interval_days: float | None = None, observation: str | None = None,
+                 inertial_frequency_cpd: float | None = None) -> float:
         """Top of the fitted band (cpd) for a window sampled every ``dt_days`` (the rule of the module docstring)."""
         if self.band != "auto":
             return float(self.band)
+        observation = observation or self.resolved_observation
         nyquist = 0.5 / dt_days
-        if self.velocity != "measured" and (observation or self.resolved_observation) == "none":
+        if self.velocity != "measured" and observation == "none":
             top = BAND_FRACTION_UNMODELLED_DIFFERENCE * nyquist
         else:
             top = BAND_FRACTION_OBSERVED[self.velocity] * nyquist
         if fix_interval_days is not None and fix_interval_days > dt_days:
-            top = min(top, FIX_BAND_FRACTION * 0.5 / fix_interval_days)
+            fix_nyquist = 0.5 / fix_interval_days
+            fix_top = FIX_BAND_FRACTION * fix_nyquist
+            if observation == "irregular":
+                reach = abs(inertial_frequency_cpd) + INERTIAL_MARGIN_CPD if inertial_frequency_cpd is not None else 0
+                fix_top = min(fix_top, max(IRREGULAR_BAND_FRACTION * fix_nyquist, reach))
+            top = min(top, fix_top)
         return float(top)
 
     def resolve(self, dt_days: float, latitude=None, fix_interval_days: float | None = None,
@@ -258,7 +273,8 @@ class FitSpec:
                 per_fix = np.asarray(fix_error_m, float)
             elif self.position_noise not in ("auto", "fit", "input"):
                 per_fix = np.full(np.size(fix_times_days), float(self.position_noise))
-        return WindowPlan(dt_days=float(dt_days), max_freq=self.max_freq(dt_days, fix_interval_days, observation),
+        fc = float(inertial_frequency_cpd(lat_mean)) if lat_mean is not None and np.isfinite(lat_mean) else None
+        return WindowPlan(dt_days=float(dt_days), max_freq=self.max_freq(dt_days, fix_interval_days, observation, fc),
                           observation=observation, operator=self.operator, latitude=lat_mean,
                           latitude_series=lat_series, position_noise=noise, follow_latitude=follow,
                           fix_times_days=fix_times_days if observation == "irregular" else None,
