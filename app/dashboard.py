@@ -570,8 +570,9 @@ class TrackMap(View):
             css_classes=["ds-readout"], margin=(10, 10, 4, 10))
 
     def __panel__(self):
-        items = [pn.pane.HoloViews(self.plot()), self.readout]
-        return pn.Column(*items, sizing_mode="stretch_width")
+        # rendered after the page has loaded (in Panel's thread pool on a server), so opening a page is quick
+        return pn.Column(pn.panel(lambda: pn.pane.HoloViews(self.plot()), defer_load=True), self.readout,
+                         sizing_mode="stretch_width")
 
 
 class Summary(View):
@@ -594,7 +595,7 @@ class Summary(View):
             css_classes=["ds-summary"], sizing_mode="stretch_width")
 
     def __panel__(self):
-        return pn.panel(self.line, sizing_mode="stretch_width")
+        return pn.panel(self.line, sizing_mode="stretch_width", defer_load=False)
 
 
 class VelocityView(View):
@@ -619,7 +620,7 @@ class VelocityView(View):
             title=f"{st.track}: velocity; {len(ws)} windows of {st.window_days:g} days"))
 
     def __panel__(self):
-        return pn.panel(self.plot, sizing_mode="stretch_width")
+        return pn.panel(self.plot, sizing_mode="stretch_width", defer_load=True)
 
 
 class SpectrumView(View):
@@ -676,11 +677,12 @@ class SpectrumView(View):
                 layers.append(hv.VLine(abs(fc)).opts(color=COLOURS["inertial"], line_width=1.5, line_dash="dotdash"))
                 layers.append(hv.Text(abs(fc), float(np.nanmax(mt.upper)), " f", halign="left", valign="top")
                               .opts(color=COLOURS["inertial"], text_font_size=f"{int(10 * fs)}pt"))
-            for name, ft in tidal_frequencies_cpd().items():
-                layers.append(hv.VLine(ft).opts(color=COLOURS["tide"], line_width=0.8, line_dash="dotted"))
-                layers.append(hv.Text(ft, float(np.nanmin(mt.lower[mt.lower > 0])), name, halign="center",
-                                      valign="bottom").opts(color=COLOURS["tide"],
-                                                            text_font_size=f"{int(8 * fs)}pt"))
+            tides = tidal_frequencies_cpd()  # one glyph for the lines, one for their names
+            layers.append(hv.VLines(list(tides.values())).opts(color=COLOURS["tide"], line_width=0.8,
+                                                              line_dash="dotted"))
+            low = float(np.nanmin(mt.lower[mt.lower > 0]))
+            layers.append(hv.Labels([(ft, low, name) for name, ft in tides.items()], [kd, vd], "tide").opts(
+                text_color=COLOURS["tide"], text_font_size=f"{int(8 * fs)}pt", text_baseline="bottom"))
             pos = mt.lower[mt.lower > 0]
             ylim = (float(pos.min()) / 5 if pos.size else 1e-8, float(np.nanmax(mt.upper)) * 3)
             title = "clockwise" if side == "cw" else "counterclockwise"
@@ -693,7 +695,7 @@ class SpectrumView(View):
         return pn.Row(*panels, sizing_mode="stretch_width")
 
     def __panel__(self):
-        return pn.Column(self.plot, sizing_mode="stretch_width")
+        return pn.Column(pn.panel(self.plot, defer_load=True), sizing_mode="stretch_width")
 
 
 class FitTable(View):

@@ -13,9 +13,9 @@ from pathlib import Path
 
 import panel as pn
 
-from driftspec.app.server import demo_path, make_app
+from driftspec.app.server import configure_panel, demo_path, make_app
 
-pn.config.inline = True  # every resource from this server: the page works with no network
+configure_panel()
 
 
 def _page():

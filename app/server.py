@@ -95,6 +95,13 @@ def _query() -> dict:
     return {k: v[0].decode(errors="replace") for k, v in args.items() if v}
 
 
+def configure_panel() -> None:
+    """Server settings: plots are drawn after their page has loaded, in a pool of threads, so that one
+    session's drawing never holds up another session's page (Panel's "Enable Automatic Threading")."""
+    pn.config.nthreads = 4
+    pn.config.inline = True  # every resource from this server: the page works with no network
+
+
 def make_app(input_path: Path, fits_path: Path | None = None, first_look: bool = True):
     """A function building one session's page."""
     from .dashboard import Explorer
@@ -190,7 +197,7 @@ def serve(input_path=None, fits=None, port=5006, address="127.0.0.1", show=False
     print(f"driftspec: dashboard at {url}  (Ctrl+C to stop)", flush=True)
     # SIGTERM ends the server like Ctrl+C, so the fit workers are stopped with it
     signal.signal(signal.SIGTERM, lambda *_: sys.exit(0))
-    pn.config.inline = True  # every resource from this server: the page works with no network
+    configure_panel()
     pn.serve({"driftspec": make_app(path.resolve(), fits_path)}, port=port, address=address,
              websocket_origin=origins, show=show, title="driftspec", threaded=False, start=True,
              print_url=False)
