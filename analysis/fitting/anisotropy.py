@@ -79,6 +79,7 @@ from ..models.observation import observed
 from ..simulation.simulate import circulant_sample, embedding_autocovariance
 from ..spectral.bivariate import (
     BivariateWindow,
+    WhittleTerms,
     band_dfts,
     expected_matrix,
     prepare_bivariate,
@@ -280,11 +281,29 @@ class _Problem:
         angle = float(wrap_axis_deg(np.degrees(0.5 * np.angle(g)))) if rho > 0 else 0.0
         return np.concatenate([base, [rho, angle]])
 
-    def terms(self, x, derivatives=True):
+    def terms(self, x, derivatives=True, proper=False):
+        """The objective's terms at ``x``; ``proper=True`` (gamma held at zero) needs only the base coordinates and
+        takes the univariate form ``sum log E+ E- + I+/E+ + I-/E-`` (the same value, a quarter of the work)."""
         self.n_evaluations += 1
         em = expected_matrix(self.family, self.theta(x), self.win, self.context, jacobian=derivatives)
         w = self.win
-        return whittle_terms(em, w.i_pos, w.i_neg, w.i_cross, derivatives), em
+        if not proper:
+            return whittle_terms(em, w.i_pos, w.i_neg, w.i_cross, derivatives), em
+        p, q = em.pos, em.neg
+        if not (np.all(p > 0) and np.all(q > 0) and np.all(np.isfinite(p)) and np.all(np.isfinite(q))):
+            return WhittleTerms(np.inf, None, None), em
+        rp, rq = w.i_pos / p, w.i_neg / q
+        value = float(np.sum(np.log(p * q)) + np.sum(rp) + np.sum(rq))
+        if not derivatives:
+            return WhittleTerms(value, None, None), em
+        nb = self.nb
+        lp, lq = em.d_pos[:nb] / p, em.d_neg[:nb] / q
+        grad = np.zeros(nb + 2)
+        fisher = np.zeros((nb + 2, nb + 2))
+        grad[:nb] = lp @ (1.0 - rp) + lq @ (1.0 - rq)
+        fisher[:nb, :nb] = lp @ lp.T + lq @ lq.T
+        fisher[nb:, nb:] = np.eye(2)  # not used: gamma is held
+        return WhittleTerms(value, grad, fisher), em
 
     def project(self, x) -> np.ndarray:
         x = x.copy()
@@ -298,7 +317,8 @@ class _Problem:
 def _optimise(prob: _Problem, x0, free, max_iter=80):
     """Damped Fisher scoring over the ``free`` coordinates; returns ``(x, terms, success, message)``."""
     x = prob.project(np.asarray(x0, float))
-    t, _ = prob.terms(x)
+    proper = not free[prob.nb:].any() and not x[prob.nb:].any()
+    t, _ = prob.terms(x, proper=proper)
     if not np.isfinite(t.value):
         return x, t, False, "the starting point gives no valid expected periodogram"
     nb = prob.nb
@@ -336,7 +356,7 @@ def _optimise(prob: _Problem, x0, free, max_iter=80):
             xn = x.copy()
             xn[act] += step
             xn = prob.project(xn)
-            tn, _ = prob.terms(xn)
+            tn, _ = prob.terms(xn, proper=proper)
             if np.isfinite(tn.value) and tn.value <= t.value:
                 gain = t.value - tn.value
                 x, t = xn, tn
@@ -608,7 +628,7 @@ def _fit_window(out: AnisotropicFit, family: Anisotropic, win: BivariateWindow, 
             f_inv = np.linalg.inv(fisher)
             if stderr == "sandwich" or (stderr == "auto" and gappy):
                 draw = _window_simulator(family, theta, win, context)
-                jp, jn = band_dfts(draw(rng, n_sim), win)
+                jp, jn = band_dfts(draw(rng, min(n_sim, 64)), win)
                 scores = simulated_scores(t_hat, np.abs(jp) ** 2, np.abs(jn) ** 2, jp * jn)[:, free]
                 cov, method = f_inv @ np.atleast_2d(np.cov(scores, rowvar=False)) @ f_inv, "sandwich"
             else:
@@ -623,34 +643,55 @@ def _fit_window(out: AnisotropicFit, family: Anisotropic, win: BivariateWindow, 
     out.status, out.message = _status(prob, x_hat, free, ok, msg, t_hat, out)
 
 
+#: windows drawn per circulant draw for the isotropy test's null distribution (see :func:`_null_band_dfts`)
+_WINDOWS_PER_DRAW = 16
+
+
 def _null_band_dfts(family: Anisotropic, theta_iso, win: BivariateWindow, context):
-    """A fast ``rng, size -> (J(+f_k), J(-f_k))`` for series of the isotropic model prepared as the window was:
-    one circulant embedding of the summed (proper) autocovariance, single precision, the window's demeaning
-    folded in as ``J(h x) - mean(x) J(h)``. Latitude-following models go through the general simulator."""
+    """A fast ``rng, size -> (J(+f_k), J(-f_k))`` for series of the isotropic model prepared as the window was.
+
+    One circulant embedding of size ``M = 8 N`` of the summed (proper) autocovariance, in single precision; every
+    segment of ``N`` consecutive samples (wrapping round the circle) of such a draw has exactly the model's
+    covariance, because ``N <= M / 2`` (C. R. Dietrich, G. N. Newsam, SIAM J. Sci. Comput. 18, 1088-1107, 1997),
+    so each draw gives 16 windows, starting every ``N / 2`` samples: a quarter of the normal deviates per window
+    that separate draws would need. The windows of one draw are not independent, which costs the Monte Carlo some
+    effective size but no bias. The window's demeaning is folded in as ``J(h x) - mean(x) J(h)``. Latitude-following
+    models go through the general simulator.
+    """
     prep = win.prep
     if family.modulated:
         draw = _window_simulator(family, theta_iso, win, context)
         return lambda rng, size: band_dfts(draw(rng, size), win)
     th = np.asarray(theta_iso, float)
     base = family.base
-    acov = np.asarray(embedding_autocovariance(
-        lambda lag: base.autocovariance(th[: family.n_base], lag, context), prep.n, prep.dt_days, 1), complex)
-    half = acov.size - 1
-    row = np.concatenate([acov, np.conj(acov[1:half][::-1])])
-    amp = (np.sqrt(np.clip(scipy.fft.fft(row).real, 0, None) * row.size / 2.0)).astype(np.complex64)
+    n, nk = prep.n, win.k_pos.size
+    half_m = _WINDOWS_PER_DRAW * n // 4
+    acov = np.asarray(base.autocovariance(th[: family.n_base], np.arange(half_m + 1) * prep.dt_days, context), complex)
+    row = np.concatenate([acov, np.conj(acov[1:half_m][::-1])])
+    m = row.size
+    amp = (np.sqrt(np.clip(scipy.fft.fft(row).real, 0, None) * m / 2.0)).astype(np.complex64)
     h = prep.taper.astype(np.float32)
-    valid = prep.valid.astype(np.float32) / max(prep.n_valid, 1)
+    valid = (prep.valid / max(prep.n_valid, 1)).astype(np.complex64)
     k = np.concatenate([win.k_pos, win.k_neg])
     j_h = scipy.fft.fft(prep.taper)[k].astype(np.complex64)
     root_dt = np.float32(np.sqrt(prep.dt_days))
-    n, nk = prep.n, win.k_pos.size
+    step = n // 2
+    flat = bool(np.ptp(prep.taper[prep.valid]) == 0)  # no taper: the mean is the DFT at zero over h(0) N_valid
 
     def draw(rng, size):
-        eps = rng.standard_normal((size, 2 * amp.size), dtype=np.float32).view(np.complex64)
+        n_draw = -(-size // _WINDOWS_PER_DRAW)
+        eps = rng.standard_normal((n_draw, 2 * m), dtype=np.float32).view(np.complex64)
         eps *= amp
-        x = scipy.fft.ifft(eps, axis=-1, overwrite_x=True)[:, :n]
-        mean = x @ valid
-        j = scipy.fft.fft(x * h, axis=-1)[:, k]
+        y = scipy.fft.ifft(eps, axis=-1, overwrite_x=True)
+        y = np.concatenate([y, y[:, : n - step]], axis=1)  # the circle, so the last windows wrap round
+        x = np.lib.stride_tricks.sliding_window_view(y, n, axis=-1)[:, : _WINDOWS_PER_DRAW * step: step]
+        xh = (x * h).reshape(-1, n)[:size]
+        jf = scipy.fft.fft(xh, axis=-1, overwrite_x=True)
+        if flat:
+            mean = jf[:, 0] * np.float32(1.0 / (float(h[prep.valid][0]) * prep.n_valid))
+        else:
+            mean = (x.reshape(-1, n)[:size] * valid).sum(axis=1)
+        j = jf[:, k]
         j -= mean[:, None] * j_h[None, :]
         j *= root_dt
         return j[:, :nk], j[:, nk:]
@@ -669,7 +710,9 @@ def _null_lr_sample(family: Anisotropic, theta_iso, win: BivariateWindow, contex
     done = 0
     while done < n_sim:
         jp, jn = draw(rng, min(128, n_sim - done))
-        out.append(2.0 * np.abs((jp * jn) @ wk.astype(jp.dtype)) ** 2 / fisher_half)
+        prod = jp * jn
+        prod *= wk.astype(np.float32)
+        out.append(2.0 * np.abs(prod.sum(axis=1, dtype=np.complex128)) ** 2 / fisher_half)
         done += jp.shape[0]
     return np.concatenate(out).astype(float)
 
