@@ -36,4 +36,5 @@ def _page():
     return make_app(inp, fits)()
 
 
-_page().servable()
+_view = _page()
+_view.servable(title="driftspec" + (" · cannot start" if "ds-error" in getattr(_view, "css_classes", []) else ""))
