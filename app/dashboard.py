@@ -104,6 +104,8 @@ class Explorer(param.Parameterized):
         self._jobs: dict[str, Job | None] = {"current": None, "track": None, "all": None}
         self._job_started: dict[str, float] = {}
         self._cancel = threading.Event()  # set: this explorer starts no background work (scripts, tests)
+        # user events may run in Panel's threads while job reports run on the loop: one at a time
+        self._lock = threading.RLock()
         self._user_fits = False
         self._first_look = first_look
         if fits is not None and len(fits):
@@ -199,7 +201,10 @@ class Explorer(param.Parameterized):
         """A setting changed: show what is known for the new settings at once, fit the rest in the background."""
         if not self._started and not events:
             return
-        names = {e.name for e in events}
+        with self._lock:
+            self._settings_changed({e.name for e in events})
+
+    def _settings_changed(self, names):
         w = self.current()
         if w is None:
             self._set(current_window=None, current_fit=None)
@@ -222,6 +227,10 @@ class Explorer(param.Parameterized):
 
     def _on_job(self, job):
         """A job reported (on this session's loop). Results of a job that is no longer current are dropped."""
+        with self._lock:
+            self._job_reported(job)
+
+    def _job_reported(self, job):
         slot = next((s for s, j in self._jobs.items() if j is job), None)
         if slot is None:
             return  # superseded: stale

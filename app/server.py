@@ -65,8 +65,10 @@ def _fits(path: str):
 
 
 def data_files(data_dir: Path) -> list[str]:
+    root = data_dir.resolve()
     return sorted(str(p.relative_to(data_dir)) for p in data_dir.rglob("*")
-                  if p.suffix.lower() in DATA_SUFFIXES and p.is_file() and "fits" not in p.stem)
+                  if p.suffix.lower() in DATA_SUFFIXES and p.is_file() and "fits" not in p.stem
+                  and p.resolve().is_relative_to(root))  # no links that lead outside the folder
 
 
 def resolve_in(data_dir: Path, name: str) -> Path | None:
