@@ -127,6 +127,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--bootstrap", type=int, default=0, metavar="B",
                    help="also parametric-bootstrap standard errors from B refits of simulated replicates "
                         "(columns *_se_boot)")
+    p.add_argument("--anisotropic", action="store_true",
+                   help="also fit the anisotropic version of the selected model: isotropy test (isotropy_pvalue), "
+                        "anisotropy and its angle, the diffusivity tensor (diffusivity_major/minor/angle_deg); "
+                        "selected where isotropy is rejected at 1 %%")
     _add_run_options(p, "skip windows already in --out")
     p.add_argument("--chunk-size", type=int, default=64, help="windows per unit of work and per written part")
     _add_prep_options(p)
@@ -217,7 +221,8 @@ def fit_spec_from_args(args):
                        band="auto" if args.max_freq is None else args.max_freq, velocity=args.velocity,
                        observation=args.observation or "auto", position_noise=noise,
                        inertial_frequency=args.inertial_frequency, taper=args.taper,
-                       exclude=_exclusions(args.exclude), stderr=args.stderr, bootstrap=args.bootstrap)
+                       exclude=_exclusions(args.exclude), stderr=args.stderr, bootstrap=args.bootstrap,
+                       anisotropic=getattr(args, "anisotropic", False))
     except ValueError as exc:
         raise SystemExit(f"driftspec: {exc}") from None
 

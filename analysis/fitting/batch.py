@@ -23,6 +23,7 @@ import pandas as pd
 from ..io.tables import naive_utc, read_table, write_table
 from ..tracks.ellipse import ELLIPSE_UNITS, variance_ellipse
 from ..tracks.windows import Window
+from .anisotropy import isotropic_tensor_columns
 from .core import fit_window
 from .spec import FitSpec
 
@@ -38,6 +39,9 @@ COLUMN_UNITS = {
     "lat": "degrees_north", "lon": "degrees_east", "n_samples": "1", "coverage": "1",
     "inertial_frequency_local": "day-1", "max_freq": "day-1", "position_noise": "m", "position_error_scale": "1",
     "loglik": "1", "aic": "1", "grid_step_s": "s", "fix_interval_s": "s", "mask_distance_s": "s",
+    "anisotropy": "1", "anisotropy_angle_deg": "degree", "isotropy_pvalue": "1", "diffusivity_major": "m2 s-1",
+    "diffusivity_minor": "m2 s-1", "diffusivity_angle_deg": "degree", "diffusivity_major_se": "m2 s-1",
+    "diffusivity_minor_se": "m2 s-1", "diffusivity_angle_deg_se": "degree",
     "gof_pvalue": "1",
     "diffusivity": "m2 s-1", "diffusivity_se": "m2 s-1", "matern_timescale_days": "day",
     "inertial_efold_days": "day", "window_start": "UTC", "window_end": "UTC",
@@ -71,6 +75,11 @@ def window_rows(w: Window, spec: FitSpec) -> list[dict]:
     rows = []
     for r in results if spec.keep_all else [r for r in results if r.selected]:
         row = r.to_row()
+        if spec.anisotropic:
+            row.update({"selected": r.selected, "selection": r.selection, "observation": r.observation,
+                        "isotropy_pvalue": r.isotropy_pvalue})
+            if "diffusivity_major" not in row:  # an isotropic fit: equal principal values, no direction
+                row.update(isotropic_tensor_columns(r.diffusivity, r.diffusivity_se))
         if spec.bootstrap and r.ok:
             seed = zlib.crc32(f"{w.track_id}|{w.start.value}|{r.model}".encode())  # same in every process
             row.update({f"{k}_se_boot": v for k, v in r.bootstrap_stderr(spec.bootstrap, seed).items()})

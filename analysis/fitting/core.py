@@ -64,7 +64,46 @@ def fit_window(window, spec: FitSpec, start: dict | None = None) -> list[FitResu
     best = select(results, window.n_samples * window.dt_seconds / SECONDS_PER_DAY)
     if defer and best >= 0:  # the sandwich and the goodness of fit for the selected candidate only
         complete(results[best])
+    if spec.anisotropic and best >= 0:
+        results.append(_anisotropic_candidate(window, plan, spec, results))
     return results
+
+
+#: level at which rejecting isotropy selects the anisotropic fit
+ISOTROPY_LEVEL = 0.01
+
+
+def _anisotropic_candidate(window, plan: WindowPlan, spec: FitSpec, results):
+    """The anisotropic version of the selected model, its isotropy test and diffusivity tensor; selected in place of
+    the isotropic fit where isotropy is rejected at :data:`ISOTROPY_LEVEL`."""
+    from .anisotropy import AnisotropicFit, fit_anisotropic
+
+    chosen = next(r for r in results if r.selected)
+    if plan.observation == "irregular" or chosen.family is None or not np.all(np.isfinite(chosen.theta)):
+        why = "irregular fixes" if plan.observation == "irregular" else f"isotropic fit {chosen.status}"
+        aniso = AnisotropicFit(model=f"anisotropic_{chosen.model}", params={}, stderr={}, units={},
+                               status="failed", message=f"not fitted anisotropically: {why}")
+    else:
+        try:
+            aniso = fit_anisotropic(window.z, plan.dt_days, base_fit=chosen, taper=spec.taper,
+                                    exclude=spec.exclude, stderr=spec.stderr)
+        except ValueError as exc:
+            aniso = AnisotropicFit(model=f"anisotropic_{chosen.model}", params={}, stderr={}, units={},
+                                   status="failed", message=str(exc))
+    aniso.window_start, aniso.observation = window.start, plan.observation
+    pval = aniso.isotropy_pvalue
+    if aniso.status == "ok" and np.isfinite(pval) and pval < ISOTROPY_LEVEL:
+        for r in results:
+            r.selected, r.selection = False, f"not selected: {aniso.model} chosen"
+        aniso.selected = True
+        aniso.selection = f"{aniso.model}: isotropy rejected (p = {pval:.2g})"
+    else:
+        aniso.selected = False
+        aniso.selection = (f"not selected: isotropy not rejected (p = {pval:.2g})" if np.isfinite(pval)
+                           else f"not selected: {aniso.status}")
+    for r in results:
+        r.isotropy_pvalue = pval
+    return aniso
 
 
 def fit_series(z, dt, *, model="matern+inertial", estimator="debiased", max_freq=None, latitude=None,

@@ -81,6 +81,7 @@ class FitResult:
     selected: bool = True
     selection: str = ""
     observation: str = ""
+    isotropy_pvalue: float = np.nan  # with an anisotropic candidate: its isotropy test's p-value
     fixed: dict = field(default_factory=dict)
     covariance: np.ndarray | None = field(default=None, repr=False)
     pending: tuple | None = field(default=None, repr=False)  # what completing a deferred fit needs
