@@ -1,7 +1,7 @@
 """The exact Gaussian likelihood: the dense Cholesky factorisation (the module's own fallback, forced) against
 the O(N^2) Levinson/Gohberg-Semencul path (``spectral.exact``), per evaluation and with its analytic gradient, at
 N = 720, 1440, 2880 (matern+inertial, hourly); then whole fits of 1440-sample windows through ``fit_series``
-(the ExactGaussian estimator: L-BFGS-B with the analytic gradient from the debiased estimate, plus the observed
+(the ExactEstimator estimator: L-BFGS-B with the analytic gradient from the debiased estimate, plus the observed
 information) against one debiased fit, with both estimates side by side.
 
     python benchmarks/bench_exact.py [--windows 3] [--sizes 720 1440 2880]

@@ -16,7 +16,7 @@ import pytest
 import xarray as xr
 
 from driftspec.analysis import FitSpec, Window, fit_window, inertial_frequency_cpd, simulate
-from driftspec.analysis.fitting.estimators import DebiasedWhittle, to_x
+from driftspec.analysis.fitting.estimators import DebiasedEstimator, to_x
 from driftspec.analysis.regional.pooled import OFFSET, pool_fit, pool_map, prepare_pooled_window
 
 HOUR = 3600.0
@@ -81,7 +81,7 @@ def test_heterogeneity_rejects_two_slopes_and_keeps_a_shared_truth(shared40):
 def test_schur_elimination_matches_a_dense_inverse():
     # five drifters, one complete window each: the profiled information S (Schur complement over the per-window
     # blocks) inverts to the shared block of the inverse of the whole (shared + every window's amplitudes) Fisher
-    # information, built densely here from each window's own DebiasedWhittle.fisher and inverted by numpy
+    # information, built densely here from each window's own DebiasedEstimator.fisher and inverted by numpy
     ws = [drifters(1, seed=20 + i, days=30)[0] for i in range(5)]
     res = pool_fit(ws, SPEC)
     assert res.status == "ok" and res.stderr_method == "model"
@@ -96,7 +96,7 @@ def test_schur_elimination_matches_a_dense_inverse():
         theta = {**{k: row[k] for k in nuis}, "inertial_frequency": row["inertial_frequency"],
                  **{k: res.params[k] for k in names if k != OFFSET}}
         x = to_x([theta[k] for k in fam.names], fam)
-        f = DebiasedWhittle().fisher(pw.problem, x)
+        f = DebiasedEstimator().fisher(pw.problem, x)
         idx = [names.index(OFFSET) if k == "inertial_frequency" else
                (names.index(k) if k in names else len(names) + len(nuis) * w + nuis.index(k)) for k in fam.names]
         dense[np.ix_(idx, idx)] += f

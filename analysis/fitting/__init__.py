@@ -8,11 +8,11 @@ simulation), ``batch`` (serial, process pool or Dask; resumable).
 """
 
 from .core import fit_prepared, fit_series, fit_window
-from .estimators import ESTIMATORS, DebiasedWhittle, Estimator, ExactGaussian, StandardWhittle, get_estimator
+from .estimators import ESTIMATORS, DebiasedEstimator, Estimator, ExactEstimator, WhittleEstimator, get_estimator
 from .result import STATUSES, FitResult, ks_exponential_pvalue
 from .spec import FitSpec, WindowPlan
 from .uncertainty import score_covariance
 
-__all__ = ["ESTIMATORS", "STATUSES", "DebiasedWhittle", "Estimator", "ExactGaussian", "FitResult", "FitSpec",
-           "StandardWhittle", "WindowPlan", "fit_prepared", "fit_series", "fit_window", "get_estimator",
+__all__ = ["ESTIMATORS", "STATUSES", "DebiasedEstimator", "Estimator", "ExactEstimator", "FitResult", "FitSpec",
+           "WhittleEstimator", "WindowPlan", "fit_prepared", "fit_series", "fit_window", "get_estimator",
            "ks_exponential_pvalue", "score_covariance"]

@@ -5,15 +5,15 @@ and a covariance, so adding an estimator is one class here and one line in :data
 All work in optimiser coordinates ``x``: ``log`` of a positive parameter with ``scale="log"`` and the value
 itself otherwise, inside the family's bounds for the window (:class:`Problem`).
 
-* :class:`DebiasedWhittle`: ``sum_band log E[I_k] + I_k / E[I_k]`` with the expected periodogram ``E`` of the
+* :class:`DebiasedEstimator`: ``sum_band log E[I_k] + I_k / E[I_k]`` with the expected periodogram ``E`` of the
   window (mask, taper, observation model), its exact gradient from one batched FFT, Levenberg-Marquardt-damped
   Fisher scoring (the expected Hessian ``sum (dlog E)(dlog E)^T`` comes free with the gradient). Covariance: the
   inverse Fisher information inflated by ``N sum h^4`` for complete untapered windows, the sandwich
   ``F^-1 V F^-1`` with a simulated score covariance where gaps or a taper correlate the ordinates.
   "The debiased Whittle likelihood", Biometrika 106(2), 251-266 (2019), doi:10.1093/biomet/asy071.
-* :class:`StandardWhittle`: the same form with the continuous density ``S(f_k)`` in place of ``E[I_k]``; biased
+* :class:`WhittleEstimator`: the same form with the continuous density ``S(f_k)`` in place of ``E[I_k]``; biased
   by aliasing and leakage, kept as the textbook reference. P. Whittle (1953), Arkiv för Matematik 2, 423-434.
-* :class:`ExactGaussian`: the Gaussian likelihood of the valid samples (see
+* :class:`ExactEstimator`: the Gaussian likelihood of the valid samples (see
   :mod:`driftspec.analysis.spectral.exact`), started from the debiased estimate; covariance from the observed
   information.
 """
@@ -151,7 +151,7 @@ class Estimator:
         return expected_in_band(problem.family, problem.theta(opt.x), problem.prep, problem.context)[0]
 
 
-class DebiasedWhittle(Estimator):
+class DebiasedEstimator(Estimator):
     """The debiased Whittle likelihood (see the module docstring)."""
 
     name = "debiased"
@@ -196,7 +196,7 @@ class DebiasedWhittle(Estimator):
         return f_inv * problem.prep.variance_inflation, "fisher"
 
 
-class StandardWhittle(Estimator):
+class WhittleEstimator(Estimator):
     """The standard Whittle likelihood: the continuous spectral density at the Fourier frequencies."""
 
     name = "whittle"
@@ -224,7 +224,7 @@ class StandardWhittle(Estimator):
         return self._density(problem, opt.x)
 
 
-class ExactGaussian(Estimator):
+class ExactEstimator(Estimator):
     """The exact Gaussian likelihood of the valid samples (:mod:`driftspec.analysis.spectral.exact`: O(N^2) by
     Levinson recursion for complete windows, a dense factorisation with gaps), with its analytic gradient,
     started from the debiased Whittle estimate; covariance from the observed information (central differences
@@ -242,7 +242,7 @@ class ExactGaussian(Estimator):
         return exact_negloglik(problem.family, problem.theta(xf), problem.prep, problem.context)
 
     def start(self, problem: Problem) -> np.ndarray:
-        pilot = DebiasedWhittle().optimise(problem, problem.x0)  # near-exact and cheap
+        pilot = DebiasedEstimator().optimise(problem, problem.x0)  # near-exact and cheap
         return pilot.x if np.all(np.isfinite(pilot.x)) else problem.x0
 
     def optimise(self, problem: Problem, x0) -> Optimum:
@@ -266,7 +266,7 @@ class ExactGaussian(Estimator):
 
 
 #: estimator name -> class
-ESTIMATORS = {cls.name: cls for cls in (DebiasedWhittle, StandardWhittle, ExactGaussian)}
+ESTIMATORS = {cls.name: cls for cls in (DebiasedEstimator, WhittleEstimator, ExactEstimator)}
 
 
 def get_estimator(name: str) -> Estimator:

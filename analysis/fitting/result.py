@@ -142,11 +142,11 @@ class FitResult:
         """The debiased-Whittle sandwich ``F^-1 V F^-1`` at the fitted values (natural units, free parameters),
         with ``V`` the score covariance over ``n_sim`` periodograms simulated with the window's mask and taper
         (:func:`~driftspec.analysis.fitting.uncertainty.score_covariance`)."""
-        from .estimators import DebiasedWhittle, Problem, natural_jacobian
+        from .estimators import DebiasedEstimator, Problem, natural_jacobian
 
         self._require_fit()
         problem = Problem.build(self.family, self.prepared, self.context, self.theta, self.fixed)
-        fisher = DebiasedWhittle().fisher(problem, problem.x0)
+        fisher = DebiasedEstimator().fisher(problem, problem.x0)
         f_inv = np.linalg.inv(fisher)
         v = score_covariance(self.family, self.theta, self.prepared, self.context, problem.free, n_sim, seed)
         jac = natural_jacobian(self.theta, self.family)[problem.free]
@@ -158,7 +158,7 @@ class FitResult:
         deviation. A dict keyed by parameter name and ``diffusivity``; NaN when fewer than a quarter of the
         replicates (and fewer than 10) fit."""
         from .core import fit_prepared
-        from .estimators import DebiasedWhittle
+        from .estimators import DebiasedEstimator
 
         names = [*self.family.names, "diffusivity"] if self.family is not None else [*self.params, "diffusivity"]
         if self.family is None or not np.all(np.isfinite(self.theta)):
@@ -171,7 +171,7 @@ class FitResult:
             z = draw(rng, 1)[0]
             p = prepare_window(z, prep.dt_days, max_freq=self.max_freq, modulated=fam.modulated,
                                latitude_series=ctx.latitude_series)
-            r = fit_prepared(fam, p, ctx, DebiasedWhittle(), fixed=self.fixed, model_name=self.model)
+            r = fit_prepared(fam, p, ctx, DebiasedEstimator(), fixed=self.fixed, model_name=self.model)
             if r.status == "ok":
                 est.append([*r.theta, r.diffusivity])
         est = np.array(est)
