@@ -39,6 +39,21 @@ def _edges(lo, hi, step):
     return np.arange(lo, hi + step / 2, step)
 
 
+def cf_grid(lat_e, lon_e) -> xr.Dataset:
+    """An empty CF latitude-longitude grid from bin edges (degrees): cell centres with ``bounds`` attributes and
+    ``lat_bnds``/``lon_bnds`` (CF conventions 1.11, section 7.1), for every gridded product."""
+    lat_e, lon_e = np.asarray(lat_e, float), np.asarray(lon_e, float)
+    ds = xr.Dataset(coords={
+        "lat": ("lat", 0.5 * (lat_e[:-1] + lat_e[1:]),
+                {"standard_name": "latitude", "units": "degrees_north", "bounds": "lat_bnds", "axis": "Y"}),
+        "lon": ("lon", 0.5 * (lon_e[:-1] + lon_e[1:]),
+                {"standard_name": "longitude", "units": "degrees_east", "bounds": "lon_bnds", "axis": "X"}),
+    })
+    ds["lat_bnds"] = (("lat", "nv"), np.stack([lat_e[:-1], lat_e[1:]], axis=1))
+    ds["lon_bnds"] = (("lon", "nv"), np.stack([lon_e[:-1], lon_e[1:]], axis=1))
+    return ds
+
+
 def grid_fits(fits: pd.DataFrame, params=None, bin_deg: float = 2.0, stat: str = "median",
               units: dict | None = None, lat_range=(-90.0, 90.0), lon_range=(-180.0, 180.0)) -> xr.Dataset:
     """Grid fitted columns into ``bin_deg`` x ``bin_deg`` bins.
@@ -83,19 +98,8 @@ def grid_fits(fits: pd.DataFrame, params=None, bin_deg: float = 2.0, stat: str =
     ix = np.clip(np.searchsorted(lon_e, lon, side="right") - 1, 0, len(lon_e) - 2)
     ny, nx = len(lat_e) - 1, len(lon_e) - 1
     cell = np.where(inside, iy * nx + ix, -1)
-    lat_c = 0.5 * (lat_e[:-1] + lat_e[1:])
-    lon_c = 0.5 * (lon_e[:-1] + lon_e[1:])
     count = np.bincount(cell[inside], minlength=ny * nx).reshape(ny, nx)
-    ds = xr.Dataset(
-        coords={
-            "lat": ("lat", lat_c, {"standard_name": "latitude", "units": "degrees_north", "bounds": "lat_bnds",
-                                   "axis": "Y"}),
-            "lon": ("lon", lon_c, {"standard_name": "longitude", "units": "degrees_east", "bounds": "lon_bnds",
-                                   "axis": "X"}),
-        },
-    )
-    ds["lat_bnds"] = (("lat", "nv"), np.stack([lat_e[:-1], lat_e[1:]], axis=1))
-    ds["lon_bnds"] = (("lon", "nv"), np.stack([lon_e[:-1], lon_e[1:]], axis=1))
+    ds = cf_grid(lat_e, lon_e)
     ds["count"] = (("lat", "lon"), count.astype(np.int32),
                    {"standard_name": "number_of_observations", "long_name": "number of ok window fits",
                     "units": "1", "cell_methods": "area: sum"})

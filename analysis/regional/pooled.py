@@ -96,6 +96,7 @@ from ..fitting.estimators import Problem
 from ..fitting.spec import FitSpec
 from ..models import FitContext
 from ..spectral.likelihood import expected_in_band, prepare_window
+from .maps import cf_grid
 
 #: amplitudes: per window by default (``share="shape"``)
 NUISANCE = ("matern_variance", "inertial_variance", "position_noise")
@@ -987,15 +988,7 @@ def pool_map(windows: Iterable, spec: FitSpec | None = None, *, bin_deg: float =
 
 def _map_dataset(rows: dict, lat_e, lon_e, bin_deg, spec, model, share) -> xr.Dataset:
     ny, nx = lat_e.size - 1, lon_e.size - 1
-    lat_c, lon_c = 0.5 * (lat_e[:-1] + lat_e[1:]), 0.5 * (lon_e[:-1] + lon_e[1:])
-    ds = xr.Dataset(coords={
-        "lat": ("lat", lat_c, {"standard_name": "latitude", "units": "degrees_north", "bounds": "lat_bnds",
-                               "axis": "Y"}),
-        "lon": ("lon", lon_c, {"standard_name": "longitude", "units": "degrees_east", "bounds": "lon_bnds",
-                               "axis": "X"}),
-    })
-    ds["lat_bnds"] = (("lat", "nv"), np.stack([lat_e[:-1], lat_e[1:]], axis=1))
-    ds["lon_bnds"] = (("lon", "nv"), np.stack([lon_e[:-1], lon_e[1:]], axis=1))
+    ds = cf_grid(lat_e, lon_e)
 
     def grid(col, fill=np.nan):
         a = np.full((ny, nx), fill, float)
