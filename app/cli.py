@@ -153,6 +153,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--share", choices=["shape", "all"], default="shape",
                    help="share the spectral shape with per-window amplitudes (default), or every parameter")
     p.add_argument("--min-windows", type=int, default=2, help="fewest windows for a bin's fit (default 2)")
+    p.add_argument("--anisotropic", action="store_true",
+                   help="also fit every window and its anisotropic version, and map per bin the median anisotropy, "
+                        "the axial mean angle, the share rejecting isotropy at 1 %% and the mean diffusivity tensor "
+                        "(from the windows' own fits, not pooled)")
     _add_spec_options(p)
     _add_run_options(p, "keep the bins already fitted by an interrupted run")
     p.set_defaults(estimator="debiased", stderr="auto", bootstrap=0)
@@ -315,7 +319,8 @@ def cmd_map(args):
         from driftspec.app.figures import quicklook_map
 
         quicklook_map(ds, args.png)
-    print(f"wrote {args.out} ({', '.join(v for v in ds.data_vars if not v.endswith(('_count', '_spread')))})")
+    shown = (v for v in ds.data_vars if not v.endswith(("_count", "_spread", "_concentration")))
+    print(f"wrote {args.out} ({', '.join(shown)})")
     return 0
 
 

@@ -182,6 +182,14 @@ def test_command_line(tmp_path, demo_dir):
     assert {"matern_alpha", "matern_alpha_se", "n_windows", "n_tracks", "heterogeneity_pvalue"} <= set(ds.data_vars)
     assert "sha256" in ds.attrs["source"] and "driftspec pool" in ds.attrs["history"]
     assert int(ds["n_windows"].sum()) > 0
+    # --anisotropic: the per-bin anisotropy summaries of the windows' own fits, beside the pooled estimates
+    r = run("pool", demo_dir / "fixes.parquet", "--window-days", 60, "--bin-deg", 10, "--out", out, "--workers", 1,
+            "--no-progress", "--region=-180,10,0,30", "--anisotropic")
+    assert r.returncode == 0, r.stderr
+    ds = xr.open_dataset(out)
+    assert {"anisotropy", "anisotropy_angle_deg", "isotropy_rejected_fraction", "diffusivity_major",
+            "diffusivity_minor", "diffusivity_angle_deg"} <= set(ds.data_vars)
+    assert int(ds["diffusivity_tensor_count"].sum()) > 0 and ds["anisotropy_angle_deg"].attrs["units"] == "degree"
     for bad in (["--bin-deg", 0], ["--bin-deg", 5, "--region", "1,2"], ["--bin-deg", 5, "--overlap", 1.5]):
         r = run("pool", demo_dir / "fixes.parquet", "--window-days", 30, "--out", out, *bad)
         assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1, r.stderr
@@ -193,3 +201,36 @@ def test_heterogeneity_size_over_replicates():
     # replicates: 1-11 %)
     p = [pool_fit(drifters(12, seed=1000 + r), SPEC).heterogeneity_pvalue for r in range(100)]
     assert 0.01 <= np.mean(np.array(p) < 0.05) <= 0.11
+
+
+def test_pool_map_anisotropy_summaries_match_map_of_the_window_fits(tmp_path):
+    # a 3:1 flow along an axis 30 degrees from east (two independent real Matern series, scaled and rotated, as in
+    # tests/test_fitting.py): the pooled map's anisotropy summaries come from the windows' own anisotropic fits, so
+    # they equal what grid_fits makes of the same windows fitted one by one (window_rows, the fits table's rows),
+    # and the simulated axis is recovered
+    from driftspec.analysis.fitting.batch import window_rows
+    from driftspec.analysis.regional import grid_fits
+
+    spec = FitSpec(models=("matern",), velocity="measured", observation="none", anisotropic=True)
+    ws = []
+    for t in range(3):
+        along = simulate("matern", [0.03, 1.2, 1.0], n=1440, dt=HOUR, seed=40 + 2 * t, real=True)
+        across = simulate("matern", [0.01, 1.2, 1.0], n=1440, dt=HOUR, seed=41 + 2 * t, real=True)
+        z = np.exp(1j * np.deg2rad(30.0)) * (along + 1j * across)
+        for k, s in enumerate((0, 360, 720)):
+            ws.append(Window(f"A{t}", 0, k, T0 + pd.Timedelta(hours=s), T0 + pd.Timedelta(hours=s + 719), HOUR,
+                             z[s:s + 720].copy(), np.full(720, 30.0), np.full(720, -30.0)))
+    ds = pool_map(ws, spec, bin_deg=20.0, region=(-40.0, 20.0, 0.0, 40.0), out=tmp_path / "a.nc", progress=False)
+    back = xr.open_dataset(tmp_path / "a.nc")
+    cell = back.sel(lat=30.0, lon=-30.0)
+    fits = pd.DataFrame([r for w in ws for r in window_rows(w, spec)])
+    ref = grid_fits(fits, bin_deg=20.0, lat_range=(20.0, 40.0), lon_range=(-40.0, 0.0)).sel(lat=30.0, lon=-30.0)
+    for k in ("anisotropy", "anisotropy_angle_deg", "isotropy_rejected_fraction", "diffusivity_major",
+              "diffusivity_minor", "diffusivity_angle_deg", "diffusivity_tensor_count"):
+        assert float(cell[k]) == pytest.approx(float(ref[k]), rel=1e-6, nan_ok=True), k
+        assert "not pooled" in back[k].attrs["long_name"]
+    assert back["diffusivity_angle_deg"].attrs["units"] == "degree"
+    assert float(cell["isotropy_rejected_fraction"]) >= 0.5
+    assert abs(float(cell["diffusivity_angle_deg"]) - 30.0) < 15.0
+    assert 1.5 < float(cell["diffusivity_major"]) / float(cell["diffusivity_minor"]) < 5.0
+    assert int(ds["n_windows"].sum()) == len(ws)

@@ -70,6 +70,16 @@ computed on those simulated drifters (a parametric bootstrap; the chi-squared ta
 ordinates near the inertial peak make the scores skewed). With a single drifter the windows are the groups. ``T``,
 its degrees of freedom and the p-value are reported beside the estimate.
 
+Anisotropy
+----------
+The pooled likelihood is that of the isotropic (rotary) model. With ``spec.anisotropic`` (``driftspec pool
+--anisotropic``) each bin's map row also carries the anisotropy summaries of ``driftspec map``
+(:func:`~.maps.anisotropy_summary`: median anisotropy, axial mean of the anisotropy angle, share of windows whose
+isotropy test rejects at 1 %, principal values and axis of the mean diffusivity tensor), computed from every
+window's *own* fit under the same specification (:func:`~driftspec.analysis.fitting.batch.window_rows`: the
+selected model and its anisotropic version), not from a pooled anisotropic likelihood; the variables' long names
+say so. This costs about one single-window fit per window and its anisotropic fit on top of the pooled fit.
+
 The debiased Whittle likelihood: "The debiased Whittle likelihood", Biometrika 106(2), 251-266 (2019),
 doi:10.1093/biomet/asy071.
 """
@@ -96,7 +106,7 @@ from ..fitting.estimators import Problem
 from ..fitting.spec import FitSpec
 from ..models import FitContext
 from ..spectral.likelihood import expected_in_band, prepare_window
-from .maps import cf_grid
+from .maps import add_anisotropy_variables, anisotropy_summary, cf_grid
 
 #: amplitudes: per window by default (``share="shape"``)
 NUISANCE = ("matern_variance", "inertial_variance", "position_noise")
@@ -815,8 +825,21 @@ def bin_windows(windows: Iterable, bin_deg: float, region=None) -> tuple[dict, n
     return bins, lat_e, lon_e
 
 
+def window_anisotropy(windows, spec: FitSpec) -> dict:
+    """:func:`~.maps.anisotropy_summary` of the windows' own fits under ``spec`` (with ``spec.anisotropic``: the
+    selected model per window, its isotropy test and diffusivity tensor), as ``driftspec map`` summarises them."""
+    from ..fitting.batch import window_rows
+    from .maps import is_selected
+
+    rows = pd.DataFrame([r for w in windows for r in window_rows(w, spec)])
+    if rows.empty or "status" not in rows:
+        return anisotropy_summary(rows)
+    return anisotropy_summary(rows[(rows["status"] == "ok") & is_selected(rows)])
+
+
 def fit_bin(key, windows, spec: FitSpec, model=None, share: str = "shape", min_windows: int = 2) -> dict:
-    """The map row of one bin: :meth:`PooledResult.to_row` plus the bin's key (a failure is a row with a status)."""
+    """The map row of one bin: :meth:`PooledResult.to_row` plus the bin's key (a failure is a row with a status);
+    with ``spec.anisotropic`` also the anisotropy summaries of the windows' own fits (``anisotropy``)."""
     try:
         res = pool_fit(windows, spec, model=model, share=share, min_windows=min_windows)
         row = res.to_row()
@@ -824,6 +847,12 @@ def fit_bin(key, windows, spec: FitSpec, model=None, share: str = "shape", min_w
     except Exception as exc:  # noqa: BLE001 - a failed bin is a row, not a crash
         row = {"status": "failed", "message": f"{type(exc).__name__}: {exc}", "n_windows": len(windows),
                "n_tracks": len({w.track_id for w in windows}), "units": {}}
+    if spec.anisotropic:
+        try:
+            row["anisotropy"] = window_anisotropy(windows, spec)
+        except Exception as exc:  # noqa: BLE001 - the pooled fit stands; the summary says why it is missing
+            row["anisotropy"] = {}
+            row["message"] = (row.get("message") or "") + f" anisotropy summary failed: {type(exc).__name__}: {exc}"
     row["iy"], row["ix"] = key
     return row
 
@@ -1028,6 +1057,10 @@ def _map_dataset(rows: dict, lat_e, lon_e, bin_deg, spec, model, share) -> xr.Da
                               {"long_name": "degrees of freedom of the heterogeneity statistic", "units": "1"})
     ds["heterogeneity_pvalue"] = (("lat", "lon"), grid("heterogeneity_pvalue"),
                                   {"long_name": "heterogeneity p-value (chi-squared)", "units": "1"})
+    summaries = {k: r["anisotropy"] for k, r in rows.items() if isinstance(r.get("anisotropy"), dict)}
+    if spec.anisotropic or summaries:
+        add_anisotropy_variables(ds, summaries, over="the windows in the cell, from each window's own "
+                                                   "(not pooled) anisotropic fit")
     status = np.full((ny, nx), -1, np.int8)
     for (iy, ix), r in rows.items():
         status[iy, ix] = STATUS_FLAGS.index(r["status"]) if r.get("status") in STATUS_FLAGS else len(STATUS_FLAGS) - 1
