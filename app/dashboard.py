@@ -32,13 +32,25 @@ from holoviews.operation.datashader import dynspread, rasterize
 
 from driftspec.analysis.conventions import tidal_frequencies_cpd
 from driftspec.analysis.fitting import FitSpec, fit_window
+from driftspec.analysis.fitting.anisotropy import AnisotropicFit
 from driftspec.analysis.models import get_family
 from driftspec.analysis.regional import default_params, grid_fits
+from driftspec.analysis.regional.pooled import pool_fit
 from driftspec.analysis.spectral.periodogram import multitaper_spectrum, rotary_periodogram
 from driftspec.analysis.tracks.pipeline import load_velocities
 from driftspec.analysis.tracks.windows import iter_windows
 
-from .geo import bin_quads, degree_ticks, label_points, lat_label, lon_label, widen_to_ratio
+from .geo import (
+    bin_cells,
+    bin_quads,
+    degree_ticks,
+    ellipse_ring,
+    label_points,
+    lat_label,
+    lon_label,
+    map_bin_edges,
+    widen_to_ratio,
+)
 from .jobs import Job
 from .state import ANALYSIS, FIT_PARAMS, URL_PARAMS, ExplorerState, parse_query, widgets_for
 from .trackdata import MAP_RATIO, TrackData
@@ -58,9 +70,24 @@ MIN_COVERAGE = 0.5
 
 
 def spec_of(st: ExplorerState) -> FitSpec:
-    """The fit specification of a state's settings."""
+    """The fit specification of a state's settings (anisotropic fits need the debiased estimator: with another
+    estimator the anisotropic setting waits, and the fit table says so)."""
     return FitSpec(models=(st.model,), estimator=st.estimator, band="auto" if st.auto_band else st.max_freq,
-                   observation=st.observation, taper=st.taper, inertial_frequency=st.inertial)
+                   observation=st.observation, taper=st.taper, inertial_frequency=st.inertial,
+                   anisotropic=st.anisotropic and st.estimator == "debiased")
+
+
+#: fewest windows of a bin for its pooled fit (as ``pool_map``)
+POOL_MIN_WINDOWS = 2
+
+
+class TaskJob(Job):
+    """A :class:`~driftspec.app.jobs.Job` whose tasks run ``func(item, spec)`` in the shared workers: ``func`` a
+    picklable function of :mod:`driftspec.analysis` (``fit_window``, ``pool_fit``), ``spec`` a FitSpec."""
+
+    def __init__(self, items, spec: FitSpec, func, **params):
+        super().__init__(items, spec, "rows", **params)
+        self._func = func
 
 
 class Explorer(param.Parameterized):
@@ -89,6 +116,14 @@ class Explorer(param.Parameterized):
     message = param.String(default="", constant=True, doc="One-line notice (e.g. rejected URL values)")
     refit_ms = param.Number(default=np.nan, constant=True, doc="Time from a change to its fit on screen, ms")
     dispersion = param.Parameter(default=None, doc="Observed dispersion in the region (DispersionResult)")
+    current_anisotropic = param.Parameter(
+        default=None, constant=True, doc="AnisotropicFit of the current window (with the anisotropic setting on)")
+    region_fit = param.Parameter(
+        default=None, constant=True, doc="PooledResult: one fit pooled over the box-selected region's windows under "
+                                         "the current settings (None while it runs or with no region)")
+    pooled_map = param.Parameter(
+        default=None, constant=True, doc="The pooled fit of each bin of the parameter map: a dict with the key it "
+                                         "was computed for, the bin edges, cells (iy, ix) and their PooledResults")
 
     def __init__(self, velocities, fits: pd.DataFrame | None = None, state: ExplorerState | None = None,
                  title: str = "driftspec", first_look: bool = False, **params):
@@ -101,7 +136,8 @@ class Explorer(param.Parameterized):
         self.doc = pn.state.curdoc if pn.state.curdoc is not None and pn.state.curdoc.session_context else None
         self._window_cache: dict = {}
         self._fit_cache: dict = {}
-        self._jobs: dict[str, Job | None] = {"current": None, "track": None, "all": None}
+        self._jobs: dict[str, Job | None] = {"current": None, "track": None, "all": None, "region": None, "map": None}
+        self._aniso_cache: dict = {}
         self._job_started: dict[str, float] = {}
         self._cancel = threading.Event()  # set: this explorer starts no background work (scripts, tests)
         # user events may run in Panel's threads while job reports run on the loop: one at a time
@@ -115,6 +151,7 @@ class Explorer(param.Parameterized):
         if not self.state.track or self.state.track not in self.track_ids:
             self.state.track = self.track_ids[0] if len(self.track_ids) else ""
         self.state.param.watch(self._on_settings, ["track", "window", *FIT_PARAMS])
+        self.state.param.watch(self._on_pooling, ["region", "map_values", "bin_deg"])
         self._started = False
 
     def _set(self, **values):
@@ -166,10 +203,131 @@ class Explorer(param.Parameterized):
             return None, None
         key = self.fit_key(w)
         if key not in self._fit_cache:
-            self._fit_cache[key] = fit_window(w, self.fit_spec())[0]
+            self._store_fit(key, fit_window(w, self.fit_spec()))
         res = self._fit_cache[key]
-        self._set(current_window=w, current_fit=res)
+        self._set(current_window=w, current_fit=res, current_anisotropic=self._aniso_cache.get(key))
         return w, res
+
+    def _store_fit(self, key, results):
+        """Cache a window's fit: the model's FitResult, and its anisotropic fit when there is one."""
+        results = results if isinstance(results, list) else [results]
+        self._fit_cache[key] = results[0]
+        self._aniso_cache[key] = next((r for r in results if isinstance(r, AnisotropicFit)), None)
+
+    # ------------------------------------------------------------------ pooled fits
+    def pooled_spec(self) -> FitSpec:
+        """The specification of the pooled fits: the current one, with the debiased Whittle likelihood (the one a
+        pooled fit uses) and without the anisotropic candidate."""
+        return self.fit_spec().replace(estimator="debiased", anisotropic=False)
+
+    def region_windows(self) -> list:
+        """Windows (current length and overlap) whose mean position is inside the box-selected region."""
+        r = self.state.region
+        if not r:
+            return []
+        lon0, lat0, lon1, lat1 = r
+        out = []
+        for tid in self.tracks_in_region():
+            for w in self.windows(tid):
+                lon = ((float(w.lon) - lon0 + 180) % 360) - 180 + lon0
+                if min(lat0, lat1) <= float(w.lat) <= max(lat0, lat1) and min(lon0, lon1) <= lon <= max(lon0, lon1):
+                    out.append(w)
+        return out
+
+    def region_key(self):
+        st = self.state
+        return ("region", tuple(st.region), st.window_days, st.overlap, self.pooled_spec().to_json())
+
+    def map_bins(self):
+        """The parameter map's bins and the windows of each: ``(lon_edges, lat_edges, {(iy, ix): [Window]})``, the
+        windows (current length and overlap) of every track binned by their mean position."""
+        ws = [w for tid in self.track_ids for w in self.windows(tid)]
+        if not ws:
+            return None, None, {}
+        lon = np.array([w.lon for w in ws], float)
+        lat = np.array([w.lat for w in ws], float)
+        lon_e, lat_e = map_bin_edges(lon, lat, self.data.central_lon, self.state.bin_deg)
+        iy, ix = bin_cells(lon, lat, lon_e, lat_e)
+        bins: dict = {}
+        for w, i, j in zip(ws, iy, ix):
+            if i >= 0:
+                bins.setdefault((int(i), int(j)), []).append(w)
+        return lon_e, lat_e, bins
+
+    def map_key(self):
+        st = self.state
+        return ("map", st.bin_deg, st.window_days, st.overlap, self.pooled_spec().to_json())
+
+    def fit_region(self):
+        """Pool the region's windows here and now (blocking; for scripts and tests: the page pools in the
+        background)."""
+        ws = self.region_windows()
+        res = pool_fit(ws, self.pooled_spec()) if ws else None
+        self._region_fit_key = self.region_key()
+        self._set(region_fit=res)
+        return res
+
+    def fit_pooled_map(self):
+        """The pooled fit of every bin here and now (blocking; for scripts and tests)."""
+        lon_e, lat_e, bins = self.map_bins()
+        cells = sorted(k for k, v in bins.items() if len(v) >= POOL_MIN_WINDOWS)
+        spec = self.pooled_spec()
+        results = [pool_fit(bins[c], spec, min_windows=POOL_MIN_WINDOWS) for c in cells]
+        self._set(pooled_map=self._pooled_map_of(self.map_key(), lon_e, lat_e, cells, results))
+        return self.pooled_map
+
+    @staticmethod
+    def _pooled_map_of(key, lon_e, lat_e, cells, results):
+        return {"key": key, "lon_edges": lon_e, "lat_edges": lat_e, "cells": list(cells), "results": list(results)}
+
+    def _on_pooling(self, *events):
+        if not self._started:
+            return
+        with self._lock:
+            self._start_pooling()
+            self._update_status()
+
+    def _start_pooling(self):
+        """Start the pooled fits the current settings ask for (the region's, the map's) unless known or running."""
+        st = self.state
+        if not st.region:
+            if self._jobs["region"] is not None:
+                self._jobs["region"].cancel()
+                self._jobs["region"] = None
+            self._set(region_fit=None)
+        else:
+            key = self.region_key()
+            job = self._jobs["region"]
+            known = self.region_fit is not None and getattr(self, "_region_fit_key", None) == key
+            if not known and (job is None or job.key != key):
+                self._set(region_fit=None)
+                ws = self.region_windows()
+                self._launch_tasks("region", [ws] if ws else [], pool_fit, key, "region")
+        if st.map_values == "pooled fit":
+            key = self.map_key()
+            job = self._jobs["map"]
+            pm = self.pooled_map
+            if (pm is None or pm["key"] != key) and (job is None or job.key != key):
+                lon_e, lat_e, bins = self.map_bins()
+                cells = sorted(k for k, v in bins.items() if len(v) >= POOL_MIN_WINDOWS)
+                self._map_layout = (lon_e, lat_e, cells)
+                job = self._launch_tasks("map", [bins[c] for c in cells],
+                                         functools.partial(pool_fit, min_windows=POOL_MIN_WINDOWS), key, "pooled map")
+                if job is None:  # nothing to pool: an empty map that says why
+                    self._set(pooled_map=self._pooled_map_of(key, lon_e, lat_e, [], []))
+
+    def _launch_tasks(self, slot, items, func, key, label, spec=None):
+        old = self._jobs.get(slot)
+        if old is not None:
+            old.cancel()
+        if self._cancel.is_set() or not items:
+            self._jobs[slot] = None
+            return None
+        job = TaskJob(items, spec or self.pooled_spec(), func, doc=self.doc, on_update=self._on_job, label=label,
+                      key=key)
+        self._jobs[slot] = job
+        self._job_started[slot] = time.perf_counter()
+        return job.start()
 
     # ------------------------------------------------------------------ jobs
     def start(self):
@@ -211,10 +369,13 @@ class Explorer(param.Parameterized):
         else:
             key = self.fit_key(w)
             cached = self._fit_cache.get(key)
-            self._set(current_window=w, current_fit=cached)
+            self._set(current_window=w, current_fit=cached, current_anisotropic=self._aniso_cache.get(key))
             job = self._jobs["current"]
             if cached is None and (job is None or job.key != key or job.status in ("cancelled", "failed")):
-                self._launch("current", [w], "one", key, "current window")
+                if self.fit_spec().anisotropic:  # every candidate, the anisotropic one included
+                    self._launch_tasks("current", [w], fit_window, key, "current window", self.fit_spec())
+                else:
+                    self._launch("current", [w], "one", key, "current window")
             elif cached is not None and job is not None:
                 job.cancel()
         if names != {"window"}:
@@ -223,6 +384,8 @@ class Explorer(param.Parameterized):
             if job is None or job.key != key:
                 self._set(track_fits=None)
                 self._launch("track", self.windows(), "rows", key, "whole track")
+        if not names or names - {"track", "window"}:
+            self._start_pooling()
         self._update_status()
 
     def _on_job(self, job):
@@ -236,10 +399,16 @@ class Explorer(param.Parameterized):
             return  # superseded: stale
         if job.status == "done" and job.result is not None:
             if slot == "current":
-                res = job.result[0]
-                self._fit_cache[job.key] = res
+                self._store_fit(job.key, job.result[0])
                 if self.current() is not None and self.fit_key(self.current()) == job.key:
-                    self._set(current_fit=res, refit_ms=1e3 * (time.perf_counter() - self._job_started[slot]))
+                    self._set(current_fit=self._fit_cache[job.key], current_anisotropic=self._aniso_cache[job.key],
+                              refit_ms=1e3 * (time.perf_counter() - self._job_started[slot]))
+            elif slot == "region" and job.key == self.region_key():
+                self._region_fit_key = job.key
+                self._set(region_fit=job.result[0])
+            elif slot == "map" and job.key == self.map_key():
+                lon_e, lat_e, cells = self._map_layout
+                self._set(pooled_map=self._pooled_map_of(job.key, lon_e, lat_e, cells, job.result))
             elif slot == "track" and job.key == self.track_key():
                 self._set(track_fits=pd.DataFrame([r for rows in job.result for r in rows]))
             elif slot == "all":
@@ -272,13 +441,20 @@ class Explorer(param.Parameterized):
             if j is not None:
                 parts.append(f"{label}{' (exact: minutes)' if self.state.estimator == 'exact' else ''}: "
                              f"{j.n_done}/{j.n_total}" + _rate(j))
+        j = self._jobs.get("region")
+        if j is not None:
+            parts.append(f"pooling the region's {len(j._windows[0])} windows")
+        j = self._jobs.get("map")
+        if j is not None:
+            parts.append(f"pooled map: {j.n_done}/{j.n_total} bins")
         fl = self.data.first_look
         if fl is not None and fl.status in ("queued", "running") and not self._user_fits:
             parts.append(f"first look, every window: {fl.n_done}/{fl.n_total}" + _rate(fl))
         if not parts and self.track_fits is not None and len(self.track_fits):
             tf = self.track_fits
             parts.append(f"track fitted: {int((tf['status'] == 'ok').sum())}/{len(tf)} ok")
-        lead = next((j for j in (self._jobs["all"], fl if not self._user_fits else None, self._jobs["track"])
+        lead = next((j for j in (self._jobs["all"], fl if not self._user_fits else None, self._jobs["map"],
+                                 self._jobs["track"])
                      if j is not None and j.n_total), None)
         pct = int(100 * lead.n_done / lead.n_total) if lead is not None and lead.status != "done" else 100
         self._set(status_text=" · ".join(parts), progress=pct)
@@ -403,7 +579,7 @@ class Explorer(param.Parameterized):
         cancel = pn.widgets.Button(name="Cancel", button_type="warning", width=90)
         cancel.on_click(self.cancel)
         explore = pn.Column(TrackMap(ex=self), Summary(ex=self), VelocityView(ex=self),
-                            pn.Row(SpectrumView(ex=self), pn.Column(FitTable(ex=self), width=470),
+                            pn.Row(SpectrumView(ex=self), pn.Column(FitTable(ex=self), RegionFit(ex=self), width=470),
                                    sizing_mode="stretch_width"),
                             sizing_mode="stretch_width", name="Explore")
         tabs = pn.Tabs(explore, ("Track summary", TrackSummary(ex=self)), ("Parameter map", ParameterMap(ex=self)),
@@ -447,6 +623,64 @@ def _rate(job) -> str:
     if job.n_done and np.isfinite(job.rate):
         return f" · {job.rate:.1f} windows/s · {job.eta_s:.0f} s left"
     return ""
+
+
+# ====================================================================== what the views draw (arrays)
+def model_velocity_covariance(aniso: AnisotropicFit, model: str, inertial: str) -> np.ndarray:
+    """The 2 x 2 covariance of the ocean velocity ``(u, v)`` (m^2/s^2) under an anisotropic fit: the fitted
+    parameters of the model (observation noise left out) in its anisotropic version, at lag zero."""
+    from driftspec.analysis.models.anisotropic import anisotropic
+
+    ocean = anisotropic(get_family(model, inertial))
+    theta = np.array([aniso.params[n] for n in ocean.names], float)
+    return ocean.uv_autocovariance(theta, [0.0], aniso.context)[0]
+
+
+def variance_ellipse_axes(cov) -> tuple[float, float, float]:
+    """Standard deviations along and across the major axis (m/s) and the axis's angle (degrees counterclockwise
+    from east) of a velocity covariance."""
+    from driftspec.analysis.fitting.anisotropy import principal_axes
+
+    major, minor, angle = principal_axes(cov)
+    return float(np.sqrt(max(major, 0.0))), float(np.sqrt(max(minor, 0.0))), float(angle)
+
+
+def complementary_curves(aniso: AnisotropicFit):
+    """The complementary (relation) spectrum of an anisotropic fit's window over its band: frequencies ``f > 0``
+    (cpd), the observed ``|J(f) J(-f)|`` and the fitted model's expected ``|E[J(f) J(-f)]|`` ((m/s)^2/cpd)."""
+    from driftspec.analysis.spectral.bivariate import expected_matrix
+
+    win = aniso.window
+    em = expected_matrix(aniso.family, aniso.theta, win, aniso.context, jacobian=False)
+    o = np.argsort(win.freq_cpd)
+    return win.freq_cpd[o], np.abs(win.i_cross[o]), np.abs(em.cross[o])
+
+
+def bin_variance_ellipses(vel: pd.DataFrame, lon_edges, lat_edges) -> pd.DataFrame:
+    """Velocity variance ellipse of each bin from its samples: the covariance of ``(u, v)`` about the bin's mean
+    velocity (``cov_uu``, ``cov_vv``, ``cov_uv``, m^2/s^2, normalised by the count ``n``) and its principal axes
+    (:func:`driftspec.analysis.tracks.ellipse.ellipse_from_covariance`); one row per bin with 3 or more samples."""
+    from driftspec.analysis.tracks.ellipse import ellipse_from_covariance
+
+    u, v = vel["u"].to_numpy(float), vel["v"].to_numpy(float)
+    ok = np.isfinite(u) & np.isfinite(v)
+    if "valid_velocity" in vel:
+        ok &= vel["valid_velocity"].to_numpy(bool)
+    iy, ix = bin_cells(vel["lon"].to_numpy(float)[ok], vel["lat"].to_numpy(float)[ok], lon_edges, lat_edges)
+    inside = iy >= 0
+    frame = pd.DataFrame({"iy": iy[inside], "ix": ix[inside], "u": u[ok][inside], "v": v[ok][inside]})
+    if not len(frame):
+        return pd.DataFrame(columns=["iy", "ix", "n", "cov_uu", "cov_vv", "cov_uv"])
+    frame["uu"], frame["vv"], frame["uv"] = frame["u"] ** 2, frame["v"] ** 2, frame["u"] * frame["v"]
+    g = frame.groupby(["iy", "ix"])
+    m = g.mean()
+    out = pd.DataFrame({"n": g.size(), "cov_uu": m["uu"] - m["u"] ** 2, "cov_vv": m["vv"] - m["v"] ** 2,
+                        "cov_uv": m["uv"] - m["u"] * m["v"]}).reset_index()
+    out = out[out["n"] >= 3].reset_index(drop=True)
+    e = ellipse_from_covariance(out["cov_uu"], out["cov_vv"], out["cov_uv"])
+    for k, val in e.items():
+        out[k] = np.asarray(val, float)
+    return out
 
 
 # ====================================================================== views
@@ -531,6 +765,29 @@ class TrackMap(View):
         x, y = self.ex.data.proj.forward(np.array([lon0, lon1]), np.array([lat0, lat1]))
         return hv.Bounds((x[0], y[0], x[1], y[1])).opts(color="#2b5fd9", line_width=2)
 
+    def _anisotropy_ellipse(self, aniso, window):
+        """The fitted model's velocity variance ellipse at the window's mean position (an anisotropic fit)."""
+        empty = hv.Path([], kdims=["x", "y"], vdims=["sd_major", "sd_minor", "angle", "rho", "pvalue"])
+        st = self.state
+        if (aniso is None or window is None or aniso.family is None or not st.anisotropic
+                or not np.all(np.isfinite(list(aniso.params.values())))):
+            return empty
+        sd_major, sd_minor, angle = variance_ellipse_axes(model_velocity_covariance(aniso, st.model, st.inertial))
+        (x0, x1), _ = self.ex.data.extent
+        scale = 0.06 * (x1 - x0) / max(sd_major, 1e-12)  # the major axis spans an eighth of the map
+        ring = ellipse_ring(self.ex.data.proj, float(window.lon), float(window.lat), scale * sd_major,
+                            scale * sd_minor, angle)
+        rho, p = aniso.params["anisotropy"], aniso.isotropy_pvalue
+        label = f"model variance ellipse: ρ {rho:.2f}, {angle:.0f}° from east, isotropy p {p:.2g}"
+        return hv.Path([{"x": ring[:, 0], "y": ring[:, 1], "sd_major": sd_major, "sd_minor": sd_minor,
+                         "angle": angle, "rho": rho, "pvalue": p}], kdims=["x", "y"],
+                       vdims=["sd_major", "sd_minor", "angle", "rho", "pvalue"], label=label).opts(
+            color=COLOURS["inertial"], line_width=3, line_dash="solid" if getattr(aniso, "selected", False)
+            else "dashed", tools=["hover"],
+            hover_tooltips=[("model std. dev. along the axis", "@sd_major{0.000} m/s"),
+                            ("across", "@sd_minor{0.000} m/s"), ("axis", "@angle{0.0}° from east"),
+                            ("anisotropy ρ", "@rho{0.000}"), ("isotropy p-value", "@pvalue{0.0000}")])
+
     def plot(self):
         data, st = self.ex.data, self.state
         dr = self.date_range.param.value if self.date_range is not None else None
@@ -556,10 +813,13 @@ class TrackMap(View):
         geo, axis = geography_layers(data, labels=True)
         sel = hv.DynamicMap(pn.bind(self._selected, st.param.track))
         box = hv.DynamicMap(pn.bind(self._region_box, st.param.region))
+        ell = hv.DynamicMap(pn.bind(self._anisotropy_ellipse, self.ex.param.current_anisotropic,
+                                    self.ex.param.current_window))
         (x0, x1), (y0, y1) = data.extent
-        return functools.reduce(operator.mul, [geo[0], shaded, *geo[1:], picker, sel, box]).opts(hv.opts.Overlay(
-            frame_height=480, frame_width=int(480 * MAP_RATIO), title="All tracks", xlim=(x0, x1), ylim=(y0, y1),
-            active_tools=["wheel_zoom"], bgcolor="#eef2f5", **axis))
+        return functools.reduce(operator.mul, [geo[0], shaded, *geo[1:], picker, sel, box, ell]).opts(
+            hv.opts.Overlay(frame_height=480, frame_width=int(480 * MAP_RATIO), title="All tracks", xlim=(x0, x1),
+                            ylim=(y0, y1), active_tools=["wheel_zoom"], bgcolor="#eef2f5",
+                            legend_position="bottom_left", **axis))
 
     @param.depends("pointer.x", "pointer.y")
     def readout(self):
@@ -635,7 +895,27 @@ class VelocityView(View):
 class SpectrumView(View):
     """Rotary spectra of the current window (clockwise and counterclockwise), with the fitted model."""
 
-    @param.depends("ex.current_window", "ex.current_fit", "state.presentation")
+    def _complementary(self, fs):
+        """The complementary (relation) spectrum of an anisotropic fit: observed and fitted ``|J(f) J(-f)|``."""
+        a = self.ex.current_anisotropic
+        if (not self.state.anisotropic or a is None or a.window is None or a.family is None
+                or not np.all(np.isfinite(list(a.params.values())))):
+            return None
+        f, obs, model = complementary_curves(a)
+        kd = hv.Dimension("freq", label="frequency |f| (cpd)")
+        vd = hv.Dimension("power", label="(m/s)²/cpd")
+        ok = obs > 0
+        layers = [hv.Curve((f[ok], obs[ok]), kd, vd, label="|J(f) J(−f)| observed").opts(color="#7d7d7d",
+                                                                                         line_width=0.8),
+                  hv.Curve((f, model), kd, vd, label="fitted model (expected)").opts(
+                      color=COLOURS["inertial"], line_width=2.2 * fs, line_dash="dashed")]
+        ov = hv.Overlay(layers).opts(hv.opts.Overlay(
+            logx=True, logy=True, responsive=True, height=int(330 * min(fs, 1.3)), fontscale=fs,
+            title=f"complementary (ρ {a.params['anisotropy']:.2f}, p {a.isotropy_pvalue:.2g})",
+            legend_position="bottom_left", legend_opts={"background_fill_alpha": 0.55}))
+        return pn.pane.HoloViews(ov, sizing_mode="stretch_width", min_width=260)
+
+    @param.depends("ex.current_window", "ex.current_fit", "ex.current_anisotropic", "state.presentation")
     def plot(self):
         w, res = self.ex.current_window, self.ex.current_fit
         fs = self.fontscale()
@@ -701,6 +981,9 @@ class SpectrumView(View):
                                 legend_opts={"background_fill_alpha": 0.55},
                                 show_legend=side == "ccw", invert_xaxis=side == "cw"))
             panels.append(pn.pane.HoloViews(ov, sizing_mode="stretch_width", min_width=300))
+        comp = self._complementary(fs)
+        if comp is not None:
+            panels.append(comp)
         return pn.Row(*panels, sizing_mode="stretch_width")
 
     def __panel__(self):
@@ -736,6 +1019,79 @@ class FitTable(View):
             f"{res.n_freq} frequencies fitted · local f = {w.inertial_frequency_cpd:.3f} cpd · "
             f"{res.stderr_method or 'no'} standard errors · refit {ex.refit_ms:.0f} ms",
             css_classes=["ds-fitinfo"])
+        return pn.Column(info, table, *self._anisotropic(), sizing_mode="stretch_width")
+
+    def _anisotropic(self):
+        """The anisotropic fit's rows: anisotropy and angle, the isotropy test, the diffusivity tensor."""
+        st, a = self.state, self.ex.current_anisotropic
+        if st.anisotropic and st.estimator != "debiased":
+            return [pn.pane.Markdown("Anisotropic fits use the debiased estimator: choose it to fit one.",
+                                     css_classes=["ds-aniso-info"])]
+        if not st.anisotropic or a is None:
+            return []
+        if a.family is None or not a.params or not np.all(np.isfinite(list(a.params.values()))):
+            return [pn.pane.Markdown(f"**anisotropic fit** `{a.status}` {a.message}", css_classes=["ds-aniso-info"])]
+        k = a.tensor
+        rows = [{"quantity": n, "value": a.params[n], "std. error": a.stderr.get(n, np.nan), "unit": a.units.get(n, "")}
+                for n in ("anisotropy", "anisotropy_angle_deg")]
+        rows += [{"quantity": "isotropy p-value", "value": a.isotropy_pvalue, "std. error": np.nan, "unit": "1"},
+                 {"quantity": "diffusivity K_uu", "value": k[0, 0], "std. error": np.nan, "unit": "m2 s-1"},
+                 {"quantity": "diffusivity K_vv", "value": k[1, 1], "std. error": np.nan, "unit": "m2 s-1"},
+                 {"quantity": "diffusivity K_uv", "value": k[0, 1], "std. error": np.nan, "unit": "m2 s-1"},
+                 {"quantity": "diffusivity_major", "value": a.diffusivity_major, "std. error": a.diffusivity_major_se,
+                  "unit": "m2 s-1"},
+                 {"quantity": "diffusivity_minor", "value": a.diffusivity_minor, "std. error": a.diffusivity_minor_se,
+                  "unit": "m2 s-1"},
+                 {"quantity": "diffusivity_angle_deg", "value": a.diffusivity_angle_deg,
+                  "std. error": a.diffusivity_angle_deg_se, "unit": "degree"}]
+        table = pn.widgets.Tabulator(pd.DataFrame(rows), show_index=False, disabled=True, layout="fit_data_fill",
+                                     formatters={"value": {"type": "plaintext"}, "std. error": {"type": "plaintext"}},
+                                     sizing_mode="stretch_width", name="anisotropic-fit-table")
+        chosen = getattr(a, "selected", False)
+        info = pn.pane.Markdown(
+            f"**anisotropic fit** `{a.status}` · isotropy p = {a.isotropy_pvalue:.3g} "
+            f"({'rejected at 1 %: the anisotropic model is selected' if chosen else 'not rejected at 1 %'}) · "
+            f"ρ = {a.params['anisotropy']:.3f} along {a.params['anisotropy_angle_deg']:.1f}° · AIC {a.aic:.1f} "
+            f"(isotropic {a.aic_isotropic:.1f})", css_classes=["ds-aniso-info"])
+        return [info, table]
+
+    def __panel__(self):
+        return pn.Column(self.table, sizing_mode="stretch_width")
+
+
+class RegionFit(View):
+    """One fit pooled over the box-selected region's windows: shared estimates with standard errors, counts and
+    the heterogeneity test (:func:`driftspec.analysis.regional.pooled.pool_fit`)."""
+
+    @param.depends("ex.region_fit", "state.region")
+    def table(self):
+        ex, st = self.ex, self.state
+        if not st.region:
+            return pn.pane.Markdown("Box-select a region on the map for one fit pooled over its windows.",
+                                    css_classes=["ds-region-fit"])
+        r = ex.region_fit
+        box = (f"{st.region[1]:.4f}..{st.region[3]:.4f}°N, {st.region[0]:.4f}..{st.region[2]:.4f}°E")
+        if r is None:
+            n = len(ex.region_windows())
+            text = (f"Pooling the {n} windows of the region {box} …" if n else
+                    f"No window of {st.window_days:g} days has its mean position in the region {box}.")
+            return pn.pane.Markdown(text, css_classes=["ds-region-fit"])
+        head = (f"**Pooled fit of the region** {box} · `{r.status}` {r.message}  \n"
+                f"{r.n_windows} windows of {r.n_tracks} tracks ({r.n_skipped} not fittable) · model {r.model}, "
+                f"shared shape, amplitudes per window · {r.stderr_method or 'no'} standard errors  \n"
+                f"heterogeneity between {r.heterogeneity_groups or 'groups'}: statistic "
+                f"{r.heterogeneity_statistic:.3f}, df {r.heterogeneity_df:g}, p = {r.heterogeneity_pvalue:.3g}")
+        if st.estimator != "debiased":
+            head += "  \n(pooled fits use the debiased Whittle likelihood whatever the estimator setting)"
+        info = pn.pane.Markdown(head, css_classes=["ds-region-fit"])
+        if not r.params:
+            return info
+        rows = [{"parameter": k, "value": v, "std. error": r.stderr.get(k, np.nan), "unit": r.units.get(k, "")}
+                for k, v in r.params.items()]
+        table = pn.widgets.Tabulator(pd.DataFrame(rows), show_index=False, disabled=True, layout="fit_data_fill",
+                                     formatters={"value": {"type": "plaintext"}, "std. error": {"type": "plaintext"}},
+                                     sizing_mode="stretch_width", name="region-fit-table",
+                                     css_classes=["ds-region-table"])
         return pn.Column(info, table, sizing_mode="stretch_width")
 
     def __panel__(self):
@@ -750,6 +1106,8 @@ class TrackSummary(View):
         df = self.ex.track_fits
         if df is None:
             return pn.pane.Markdown("Fitting the whole track in the background …", css_classes=["ds-track-summary"])
+        if len(df) and "model" in df and (df["model"] == self.state.model).any():
+            df = df[df["model"] == self.state.model]  # the model's rows (not those of its anisotropic version)
         ok = df[df["status"] == "ok"] if len(df) else df
         if not len(ok):
             return pn.pane.Markdown("No ok fits on this track.", css_classes=["ds-track-summary"])
@@ -776,27 +1134,24 @@ class TrackSummary(View):
 
 
 class ParameterMap(View):
-    """Median of a fitted parameter in lon/lat bins over land and graticule; hover gives bin, value, count."""
+    """A fitted parameter in lon/lat bins over land and graticule: per bin the median of the windows' fits, or one
+    fit pooled over the bin's windows (with its standard error and heterogeneity test in the hover); velocity
+    variance ellipses of each bin's samples on top."""
 
     def __init__(self, **params):
         super().__init__(**params)
         self.fit_all = pn.widgets.Button(name="Fit every window", button_type="success")
         self.fit_all.on_click(self.ex.fit_all)
 
-    @param.depends("ex.all_fits", "state.map_param", "state.bin_deg", "state.presentation")
-    def plot(self):
-        ex, st = self.ex, self.state
+    def _median_layer(self, p, b):
+        ex, data = self.ex, self.ex.data
         fits = ex.all_fits
-        if fits is None or not len(fits) or st.map_param not in fits:
+        if fits is None or not len(fits) or p not in fits:
             return pn.pane.Markdown("Fitting every window for the first look … (progress above)",
                                     css_classes=["ds-param-map"])
-        p, b, data = st.map_param, st.bin_deg, ex.data
         lon = fits["lon"].to_numpy(float)
-        lat = fits["lat"].to_numpy(float)
-        rel = ((lon - data.central_lon + 180) % 360) - 180
-        lo0 = np.floor(np.nanmin(rel) / b) * b + data.central_lon
-        lo1 = np.ceil(np.nanmax(rel) / b) * b + data.central_lon + b
-        la0, la1 = max(np.floor(np.nanmin(lat) / b) * b, -90), min(np.ceil(np.nanmax(lat) / b) * b + b, 90)
+        lon_e, lat_e = map_bin_edges(lon, fits["lat"].to_numpy(float), data.central_lon, b)
+        lo0, lo1, la0, la1 = lon_e[0], lon_e[-1], lat_e[0], lat_e[-1]
         shifted = fits.assign(lon=((lon - lo0) % 360) + lo0)
         ds = grid_fits(shifted, [p], b, "median", lat_range=(la0, la1), lon_range=(lo0, lo1))
         lon_e = np.r_[ds["lon_bnds"].values[:, 0], ds["lon_bnds"].values[-1, 1]]
@@ -812,6 +1167,88 @@ class ParameterMap(View):
             color=p, cmap="cividis", colorbar=True, line_width=0.2, line_color="white", tools=["hover"],
             hover_tooltips=[("bin centre", "@lat{0.0}°N @lon{0.0}°E"), (f"median {p}", f"@{{{p}}}{{0.000}}"),
                             ("ok fits", "@count")])
+        return mesh, lon_e, lat_e, quads, f"median {p} in {b:g}° bins ({int(cnt.sum())} ok fits)"
+
+    def _pooled_layer(self, p, b):
+        ex, st, data = self.ex, self.state, self.ex.data
+        pm = ex.pooled_map
+        if pm is None or pm["key"] != ex.map_key():
+            return pn.pane.Markdown("Pooling the windows of every bin under the current settings … (progress above)",
+                                    css_classes=["ds-param-map"])
+        if not pm["cells"]:
+            return pn.pane.Markdown(
+                f"No {b:g}° bin holds {POOL_MIN_WINDOWS} or more windows of {st.window_days:g} days: nothing to pool. "
+                "Larger bins or shorter windows put more windows in a bin.", css_classes=["ds-param-map"])
+        shared = next((list(r.params) for r in pm["results"] if r.params), [])
+        if p not in shared:
+            return pn.pane.Markdown(
+                f"The pooled fit shares {', '.join(shared) or 'no parameter (no bin could be fitted)'}; "
+                f"`{p}` is fitted per window. Choose a shared parameter to map.", css_classes=["ds-param-map"])
+        lon_e, lat_e = pm["lon_edges"], pm["lat_edges"]
+        quads = bin_quads(data.proj, lon_e, lat_e)
+        polys = []
+        for (i, j), r in zip(pm["cells"], pm["results"]):
+            fitted = r.status in ("ok", "at_bound")
+            polys.append({"x": quads[i][j][:, 0], "y": quads[i][j][:, 1],
+                          p: float(r.params.get(p, np.nan)) if fitted else np.nan,
+                          "se": float(r.stderr.get(p, np.nan)) if fitted else np.nan,
+                          "n_windows": int(r.n_windows), "n_tracks": int(r.n_tracks),
+                          "het_stat": float(r.heterogeneity_statistic), "het_df": float(r.heterogeneity_df),
+                          "het_p": float(r.heterogeneity_pvalue), "status": r.status,
+                          "lon": float(0.5 * (lon_e[j] + lon_e[j + 1]) + 180) % 360 - 180,
+                          "lat": float(0.5 * (lat_e[i] + lat_e[i + 1]))})
+        vdims = [hv.Dimension(p, label=f"pooled {p}"), "se", "n_windows", "n_tracks", "het_stat", "het_df", "het_p",
+                 "status", "lon", "lat"]
+        mesh = hv.Polygons(polys, kdims=["x", "y"], vdims=vdims).opts(
+            color=p, cmap="cividis", colorbar=True, line_width=0.2, line_color="white", tools=["hover"],
+            clipping_colors={"NaN": "#c8c8c8"},
+            hover_tooltips=[("bin centre", "@lat{0.0}°N @lon{0.0}°E"), (f"pooled {p}", f"@{{{p}}}{{0.0000}}"),
+                            ("std. error", "@se{0.0000}"), ("windows / tracks", "@n_windows / @n_tracks"),
+                            ("heterogeneity", "statistic @het_stat{0.00}, df @het_df, p = @het_p{0.000}"),
+                            ("status", "@status")])
+        n_ok = sum(r.status == "ok" for r in pm["results"])
+        return mesh, lon_e, lat_e, quads, (f"pooled {p} in {b:g}° bins ({n_ok} of {len(pm['cells'])} bins pooled, "
+                                           f"{st.window_days:g}-day windows)")
+
+    def _ellipses(self, lon_e, lat_e, quads):
+        """Velocity variance ellipses of the bins' samples, the largest spanning most of a bin."""
+        data = self.ex.data
+        e = bin_variance_ellipses(data.vel, lon_e, lat_e)
+        if not len(e) or not np.isfinite(e["var_major"]).any():
+            return None
+        sd_major, sd_minor = np.sqrt(e["var_major"].to_numpy()), np.sqrt(e["var_minor"].to_numpy())
+        cell = min(min(np.ptp(q[:, 0]), np.ptp(q[:, 1])) for row in quads for q in row)
+        scale = 0.45 * cell / np.nanmax(sd_major)  # projected m per (m/s)
+        paths = []
+        for k, r in e.iterrows():
+            i, j = int(r["iy"]), int(r["ix"])
+            lon = 0.5 * (lon_e[j] + lon_e[j + 1])
+            lat = 0.5 * (lat_e[i] + lat_e[i + 1])
+            ring = ellipse_ring(data.proj, lon, lat, scale * sd_major[k], scale * sd_minor[k],
+                                float(r["ellipse_angle_deg"]))
+            paths.append({"x": ring[:, 0], "y": ring[:, 1], "sd_major": sd_major[k], "sd_minor": sd_minor[k],
+                          "angle": float(r["ellipse_angle_deg"]), "n": int(r["n"])})
+        return hv.Path(paths, kdims=["x", "y"], vdims=["sd_major", "sd_minor", "angle", "n"],
+                       label="velocity variance ellipses").opts(
+            color=COLOURS["track"], line_width=1.4, tools=["hover"],
+            hover_tooltips=[("std. dev. along the major axis", "@sd_major{0.000} m/s"),
+                            ("across", "@sd_minor{0.000} m/s"), ("major axis", "@angle{0.0}° from east"),
+                            ("samples", "@n")])
+
+    @param.depends("ex.all_fits", "ex.pooled_map", "state.map_param", "state.bin_deg", "state.map_values",
+                   "state.ellipses", "state.presentation")
+    def plot(self):
+        st, data = self.state, self.ex.data
+        p, b = st.map_param, st.bin_deg
+        layer = self._pooled_layer(p, b) if st.map_values == "pooled fit" else self._median_layer(p, b)
+        if not isinstance(layer, tuple):
+            return layer
+        mesh, lon_e, lat_e, quads, title = layer
+        layers = [mesh]
+        if st.ellipses:
+            ell = self._ellipses(lon_e, lat_e, quads)
+            if ell is not None:
+                layers.append(ell)
         qx = np.concatenate([q[:, 0] for row in quads for q in row])
         qy = np.concatenate([q[:, 1] for row in quads for q in row])
         pad = 0.05 * max(np.ptp(qx), np.ptp(qy))
@@ -819,14 +1256,16 @@ class ParameterMap(View):
         xlim, ylim = widen_to_ratio((min(qx.min() - pad, dx0), max(qx.max() + pad, dx1)),
                                     (min(qy.min() - pad, dy0), max(qy.max() + pad, dy1)), MAP_RATIO)
         geo, axis = geography_layers(data, labels=True, view=(xlim, ylim))
-        return hv.Overlay([geo[0], mesh, *geo[1:]]).opts(hv.opts.Overlay(
+        return hv.Overlay([geo[0], *layers, *geo[1:]]).opts(hv.opts.Overlay(
             frame_height=480, frame_width=int(480 * MAP_RATIO), fontscale=self.fontscale(), bgcolor="#eef2f5",
-            title=f"median {p} in {b:g}° bins ({int(cnt.sum())} ok fits)", xlim=xlim, ylim=ylim, **axis))
+            title=title, xlim=xlim, ylim=ylim, legend_position="bottom_left", **axis))
 
     def __panel__(self):
         mp = pn.widgets.Select.from_param(self.state.param.map_param, name="Parameter")
         binsz = pn.widgets.FloatSlider.from_param(self.state.param.bin_deg, name="Bin size (degrees)")
-        return pn.Column(pn.Row(mp, binsz, self.fit_all), pn.panel(self.plot),
+        values = pn.widgets.RadioButtonGroup.from_param(self.state.param.map_values, name="Values per bin")
+        ell = pn.widgets.Checkbox.from_param(self.state.param.ellipses, name="Variance ellipses")
+        return pn.Column(pn.Row(mp, binsz, pn.Column(values, ell), self.fit_all), pn.panel(self.plot),
                          sizing_mode="stretch_width")
 
 

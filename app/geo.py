@@ -244,3 +244,51 @@ def bin_quads(proj: MapProjection, lon_edges, lat_edges, n_side: int = 6):
             row.append(np.column_stack([x, y]))
         quads.append(row)
     return quads
+
+
+def map_bin_edges(lon, lat, central_lon: float, bin_deg: float):
+    """Edges (degrees) of ``bin_deg`` bins covering the positions: longitudes counted from ``central_lon`` so that
+    the bins of data around the date line are not split; returns ``(lon_edges, lat_edges)``."""
+    lon, lat, b = np.asarray(lon, float), np.asarray(lat, float), float(bin_deg)
+    rel = ((lon - central_lon + 180) % 360) - 180
+    lo0 = np.floor(np.nanmin(rel) / b) * b + central_lon
+    lo1 = np.ceil(np.nanmax(rel) / b) * b + central_lon + b
+    la0, la1 = max(np.floor(np.nanmin(lat) / b) * b, -90.0), min(np.ceil(np.nanmax(lat) / b) * b + b, 90.0)
+    return np.arange(lo0, lo1 + b / 2, b), np.arange(la0, la1 + b / 2, b)
+
+
+def bin_cells(lon, lat, lon_edges, lat_edges):
+    """Row and column ``(iy, ix)`` of each position's bin (-1 for both outside the grid); a bin holds its lower
+    edges, not its upper ones."""
+    lon, lat = np.asarray(lon, float), np.asarray(lat, float)
+    lon = (lon - lon_edges[0]) % 360.0 + lon_edges[0]
+    iy = np.searchsorted(lat_edges, lat, side="right") - 1
+    ix = np.searchsorted(lon_edges, lon, side="right") - 1
+    inside = (iy >= 0) & (iy < len(lat_edges) - 1) & (ix >= 0) & (ix < len(lon_edges) - 1) & np.isfinite(lat)
+    return np.where(inside, iy, -1), np.where(inside, ix, -1)
+
+
+def local_frame(proj: MapProjection, lon: float, lat: float, step_deg: float = 1e-3):
+    """Projected unit vectors pointing east and north at a position, and the map's scale there (projected metres
+    per metre on the ground), from finite differences of :meth:`MapProjection.forward`."""
+    x, y = proj.forward(np.array([lon, lon + step_deg, lon]), np.array([lat, lat, lat + step_deg]))
+    east = np.array([x[1] - x[0], y[1] - y[0]])
+    north = np.array([x[2] - x[0], y[2] - y[0]])
+    ground = np.deg2rad(step_deg) * EARTH_RADIUS_M
+    scale = np.linalg.norm(north) / ground
+    return east / np.linalg.norm(east), north / np.linalg.norm(north), scale
+
+
+def ellipse_ring(proj: MapProjection, lon: float, lat: float, semi_major: float, semi_minor: float,
+                 angle_deg: float, n: int = 73) -> np.ndarray:
+    """An ellipse drawn on the map at a position: semi-axes in projected metres, the major axis ``angle_deg``
+    counterclockwise from the local east (so it points the same way on the ground in a polar view); an
+    ``(n, 2)`` closed ring."""
+    east, north, _ = local_frame(proj, lon, lat)
+    x0, y0 = proj.forward(np.array([lon]), np.array([lat]))
+    t = np.linspace(0.0, 2 * np.pi, n)
+    a = np.deg2rad(angle_deg)
+    along = np.cos(a) * east + np.sin(a) * north
+    across = -np.sin(a) * east + np.cos(a) * north
+    pts = (semi_major * np.cos(t))[:, None] * along + (semi_minor * np.sin(t))[:, None] * across
+    return pts + np.array([x0[0], y0[0]])

@@ -15,6 +15,9 @@ import param
 
 from driftspec.analysis.models import FAMILIES
 
+#: what the parameter map shows per bin
+MAP_VALUES = ("median of windows", "pooled fit")
+
 
 class ExplorerState(param.Parameterized):
     """What the user has chosen. Changing any analysis setting refits the current window."""
@@ -33,10 +36,16 @@ class ExplorerState(param.Parameterized):
     taper = param.Selector(default="none", objects=["none", "hann", "dpss"])
     inertial = param.Selector(default="free", objects=["free", "follow-latitude"],
                               doc="Inertial frequency: fitted constant, or following the latitude")
+    anisotropic = param.Boolean(default=False, doc="Also fit the anisotropic version of the model, test isotropy "
+                                                   "and give the diffusivity tensor (debiased estimator only)")
     color_by = param.Selector(default="speed", objects=["speed", "time"], doc="Colour of the track map")
     region = param.List(default=[], item_type=float, doc="Box [lon0, lat0, lon1, lat1]; empty = everywhere")
     map_param = param.Selector(default="matern_alpha", objects=["matern_alpha"], doc="Parameter to map")
     bin_deg = param.Number(default=2.0, bounds=(0.5, 10.0), step=0.5, doc="Bin size of the parameter map")
+    map_values = param.Selector(default=MAP_VALUES[0], objects=list(MAP_VALUES),
+                                doc="Per bin: the median of the windows' fits, or one fit pooled over the bin's "
+                                    "windows (composite likelihood, current settings)")
+    ellipses = param.Boolean(default=True, doc="Velocity variance ellipses of each bin on the parameter map")
     presentation = param.Boolean(default=False, doc="Large fonts and thick lines for screen sharing")
     theme = param.Selector(default="light", objects=["light", "dark"], doc="Page theme")
 
@@ -64,11 +73,14 @@ SETTINGS = (
     Setting("max_freq", "Max fitted frequency (cpd)", "FloatSlider", fit=True),
     Setting("taper", "Taper", "RadioButtonGroup", fit=True),
     Setting("inertial", "Inertial frequency", "Select", fit=True),
+    Setting("anisotropic", "Anisotropic fit (test isotropy)", "Checkbox", fit=True),
     Setting("color_by", "Colour tracks by", "Select", group="map"),
     Setting("presentation", "Presentation mode", "Toggle", group="map"),
     Setting("theme", "Theme", "RadioButtonGroup", group="map"),
     Setting("map_param", "Parameter", "Select", group="parameter map"),
     Setting("bin_deg", "Bin size (degrees)", "FloatSlider", group="parameter map"),
+    Setting("map_values", "Values per bin", "RadioButtonGroup", group="parameter map"),
+    Setting("ellipses", "Variance ellipses", "Checkbox", group="parameter map"),
 )
 ANALYSIS = tuple(s.name for s in SETTINGS if s.group == "analysis")
 #: parameters a window's fit depends on (besides the window itself)
