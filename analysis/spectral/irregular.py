@@ -299,6 +299,10 @@ class IrregularObservation:
         if demean:
             dense[valid] -= dense[valid].mean(axis=0)
         a = scipy.fft.fft(self.taper[:, None] * dense, axis=0)[self.band_index]  # (band, fixes), 1/day
+        # for the kernel: the tapered weights (sparse), their mean over the valid samples and the taper's transform
+        self._tapered_weights = (scipy.sparse.diags(self.taper) @ self.weights).tocsr()
+        self._mean_weights = self.weights[valid].mean(axis=0).A1 if demean else None
+        self._taper_band = scipy.fft.fft(self.taper)[self.band_index]
         a2 = np.abs(a) ** 2
         self._diag = a2.sum(axis=1)  # sum_j |a_j(k)|^2, day^-2
         #: ``E_noise[I_k]`` per unit variance (m^2) of white position noise on each component
@@ -360,35 +364,36 @@ class IrregularObservation:
 
     # ------------------------------------------------------------------------------------------------
     def _kernel_columns(self, f, weight, chunk, basis=None):
-        """``dt * weight_q * K_k(f_q)`` (band x points), or integrated against ``basis`` (band x nodes)."""
+        """``dt * weight_q * K_k(f_q)`` (band x points), or integrated against ``basis`` (band x nodes).
+
+        Per chunk of frequencies: ``q = (h W) e`` (the tapered weights, sparse, times ``exp(2 pi i f s_j)``), its
+        FFT along the samples at the band's bins, minus the demeaning term ``H_k (m . e)`` (``H`` the taper's
+        transform, ``m`` the weights' mean over the valid samples), all in double precision.
+        """
         nb = self.band_index.size
         out = np.zeros((nb, f.size if basis is None else basis.shape[1]))
-        h = self.taper[None, :].astype(np.complex64)
-        valid = self.valid
         s = self._s
-        for c0 in range(0, f.size, chunk):
-            fc = f[c0:c0 + chunk]
-            twopif = 2 * np.pi * fc
-            zero = fc == 0
-            # sum_j W_nj (exp(2 pi i f s_j) - 1) / (2 pi i f): the rows of W sum to zero, so the -1 drops out
-            # and the 1/(2 pi f)^2 goes into the weight; at f = 0 the limit sum_j W_nj s_j
-            e = np.exp(1j * np.outer(s, twopif))
-            if zero.any():
-                e[:, zero] = s[:, None]
-            q = np.asarray(self.weights @ e)  # (n, chunk)
-            if self.demean:
-                q -= q[valid].mean(axis=0)
-            q = q.T.astype(np.complex64, order="C")  # single precision from here: K to ~1e-7
-            q *= h  # zero at missing samples
-            spec = scipy.fft.fft(q, axis=-1, overwrite_x=True)[:, self.band_index]
-            k = (spec.real.astype(float) ** 2 + spec.imag.astype(float) ** 2).T  # (band, chunk)
-            with np.errstate(divide="ignore"):
-                scale = np.where(zero, 1.0, 1.0 / np.where(zero, 1.0, twopif) ** 2)
-            k *= self.dt_days * weight[c0:c0 + chunk] * scale
-            if basis is None:
-                out[:, c0:c0 + chunk] = k
-            else:
-                out += k @ basis[c0:c0 + chunk]
+        with _one_blas_thread():  # BLAS threads fight the worker processes for the cores
+            for c0 in range(0, f.size, chunk):
+                fc = f[c0:c0 + chunk]
+                twopif = 2 * np.pi * fc
+                zero = fc == 0
+                # sum_j W_nj (exp(2 pi i f s_j) - 1) / (2 pi i f): the rows of W sum to zero, so the -1 drops out
+                # and the 1/(2 pi f)^2 goes into the weight; at f = 0 the limit sum_j W_nj s_j
+                e = np.exp(1j * np.outer(s, twopif))
+                if zero.any():
+                    e[:, zero] = s[:, None]
+                spec = scipy.fft.fft(self._tapered_weights @ e, axis=0, overwrite_x=True)[self.band_index]
+                if self._mean_weights is not None:
+                    spec -= np.outer(self._taper_band, self._mean_weights @ e)
+                k = spec.real ** 2 + spec.imag ** 2  # (band, chunk)
+                with np.errstate(divide="ignore"):
+                    scale = np.where(zero, 1.0, 1.0 / np.where(zero, 1.0, twopif) ** 2)
+                k *= self.dt_days * weight[c0:c0 + chunk] * scale
+                if basis is None:
+                    out[:, c0:c0 + chunk] = k
+                else:
+                    out += k @ basis[c0:c0 + chunk]
         return out
 
     # ------------------------------------------------------------------------------------------------
