@@ -6,7 +6,7 @@ Simulation: 60-day hourly drifters at random latitudes 20-40 N with their own am
 (Matérn slope 1.2, damping 1/day; inertial damping 0.15/day, offset +0.02 cpd from the local inertial frequency),
 measured velocities (observation "none"), 30-day windows overlapping by half (3 per drifter).
 
-    python benchmarks/bench_pooled.py [--replicates 200] [--drifters 20]
+    python benchmarks/bench_pooled.py [--replicates 200] [--drifters 20]      (--replicates 0: the cost only)
 """
 
 import argparse
@@ -16,7 +16,7 @@ import pandas as pd
 from _common import median_time
 
 from driftspec.analysis import FitSpec, Window, fit_window, inertial_frequency_cpd, simulate
-from driftspec.analysis.regional.pooled import OFFSET, pool_fit
+from driftspec.analysis.regional.pooled import OFFSET, n_simulations, pool_fit
 
 HOUR = 3600.0
 T0 = pd.Timestamp("2030-01-01")
@@ -45,6 +45,8 @@ def main():
     ap.add_argument("--replicates", type=int, default=200)
     ap.add_argument("--drifters", type=int, default=20)
     args = ap.parse_args()
+    if args.replicates < 0 or args.drifters < 2:
+        ap.error("--replicates must be >= 0 and --drifters >= 2")
 
     windows = drifters(34, seed=1)[:100]
     t_pool = median_time(lambda: pool_fit(windows, SPEC), repeat=3)
@@ -54,9 +56,13 @@ def main():
     print(f"  pooled fit (incl. cluster sandwich and heterogeneity check) {t_pool:7.2f} s   "
           f"{len(windows)} single-window fits {t_single:7.2f} s   ratio pooled/single {t_pool / t_single:.2f}")
     print(f"  pooled: {res.n_iterations} scoring iterations, {res.n_evaluations / len(windows):.1f} likelihood "
-          f"evaluations per window")
+          f"evaluations per window, {n_simulations(len(windows))} simulated drifters per drifter "
+          f"(heterogeneity: statistic {res.heterogeneity_statistic:.1f} on {res.heterogeneity_df:.1f} effective df, "
+          f"p = {res.heterogeneity_pvalue:.2f})")
 
     n = args.replicates
+    if n == 0:
+        return
     z = {k: [] for k in TRUTH}
     pvals = []
     for r in range(n):

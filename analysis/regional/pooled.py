@@ -59,16 +59,23 @@ Do the drifters share the shared parameters? Under the alternative each drifter 
 ``theta + delta_c``; the score test of ``delta = 0`` uses the drifters' efficient scores ``u_c`` at the pooled
 estimate. To first order ``u = Q v`` with ``v`` the scores at the truth (independent between drifters, covariance
 ``J_c`` from the model-based formula above, overlaps included) and ``Q = I - D M (M^T D M)^-1 M^T`` the
-projection that estimating ``theta`` applies (``D`` = block-diagonal of the drifters' information, ``M`` stacked
-identities), so ``T = u^T (Q J Q^T)^+ u`` is chi-squared with ``(C - 1) p`` degrees of freedom under the null
-(C. R. Rao, "Large sample tests of statistical hypotheses concerning several parameters with applications to
-problems of estimation", Proc. Cambridge Philos. Soc. 44, 50-57, 1948, doi:10.1017/S0305004100023987; with
-per-window estimates it is the score form of Cochran's homogeneity statistic ``sum_c (theta_c - theta)^T I_c
-(theta_c - theta)``). ``J_c`` comes from drifters simulated from the fit (:data:`N_SIM` of them, each over its
-whole span so that overlapping windows share samples), and the p-value is that of ``T`` among the same statistic
-computed on those simulated drifters (a parametric bootstrap; the chi-squared tail is too light where few
-ordinates near the inertial peak make the scores skewed). With a single drifter the windows are the groups. ``T``,
-its degrees of freedom and the p-value are reported beside the estimate.
+projection that estimating ``theta`` applies (``D`` = block-diagonal of the drifters' information ``I_c``, ``M``
+stacked identities). The statistic is ``T = sum_c u_c^T I_c^-1 u_c``, the score form of Cochran's homogeneity
+statistic ``sum_c (theta_c - theta)^T I_c (theta_c - theta)`` (W. G. Cochran, "The combination of estimates from
+different experiments", Biometrics 10(1), 101-129, 1954, doi:10.2307/3001666); were the likelihood correctly
+specified (``J_c = I_c``) it would be Rao's score statistic ``u^T (Q J Q^T)^+ u`` (C. R. Rao, Proc. Cambridge
+Philos. Soc. 44, 50-57, 1948, doi:10.1017/S0305004100023987), chi-squared with ``(C - 1) p`` degrees of freedom.
+The Whittle likelihood is not (leakage, overlaps), so ``T`` is referred to the scaled chi-squared ``a chi2_nu``
+with its null mean and variance (F. E. Satterthwaite, "An approximate distribution of estimates of variance
+components", Biometrics Bulletin 2(6), 110-114, 1946, doi:10.2307/3002019): ``T = v^T B v`` with ``B = Q^T
+D^-1 Q``, so ``E T = sum_c tr(B_cc J_c)`` and ``Var T = sum_c Var(v_c^T B_cc v_c) + 2 sum_{c != d} tr(B_cd J_d
+B_dc J_c)``. ``J_c`` and the within-drifter variances (which carry the heavy tail of scores from the few
+ordinates near the inertial peak) come from drifters simulated from the fit (each over its whole span, so that
+overlapping windows share samples); as these enter only through sums over drifters, the Monte Carlo error averages
+out, and :func:`n_simulations` gives about :data:`N_SIM_WINDOWS` simulated windows in all (between
+:data:`N_SIM_MIN` and :data:`N_SIM` drifters each) instead of a fixed number of bootstrap replicates of ``T``. With
+a single drifter the windows are the groups (one block). ``T / a``, the effective degrees of freedom ``nu`` and
+the p-value are reported beside the estimate.
 
 Anisotropy
 ----------
@@ -114,8 +121,16 @@ SHARE_MODES = ("shape", "all")
 OFFSET = "inertial_frequency_offset"
 #: fewest drifters for the cluster-robust (empirical) score covariance; below, the model-based one
 MIN_CLUSTERS = 10
-#: drifters simulated from the fit for the model-based score covariance
+#: drifters simulated from the fit for the model-based score covariance: at most N_SIM, at least N_SIM_MIN, and
+#: about N_SIM_WINDOWS simulated windows in all (the heterogeneity test's null moments average over drifters)
 N_SIM = 128
+N_SIM_MIN = 16
+N_SIM_WINDOWS = 1600
+
+
+def n_simulations(n_windows: int) -> int:
+    """Simulated drifters for a pooled fit of ``n_windows`` windows (see :data:`N_SIM_WINDOWS`)."""
+    return int(np.clip(-(-N_SIM_WINDOWS // max(int(n_windows), 1)), N_SIM_MIN, N_SIM))
 
 
 def _canonical(name: str) -> str:
@@ -207,7 +222,9 @@ class PooledResult:
     n_windows, n_tracks, n_skipped : int
         Windows fitted, drifters (clusters) among them, windows that could not be prepared.
     heterogeneity_statistic, heterogeneity_df, heterogeneity_pvalue : float
-        Score test that the groups share the shared parameters (chi-squared); NaN with one group.
+        Test that the groups share the shared parameters: Cochran's statistic over its scale ``a``, the effective
+        degrees of freedom ``nu`` and the p-value of the scaled chi-squared ``a chi2_nu`` (module docstring); NaN
+        with one group.
     heterogeneity_groups : str
         ``"tracks"`` (drifters) or ``"windows"`` (a single drifter's windows).
     status, message : str
@@ -321,6 +338,28 @@ class _Pool:
         x[self.perm[w]] = xg
         return x
 
+    def thetas(self, s, a) -> np.ndarray:
+        """Every window's parameters in natural units, its family's order, kept inside its bounds (W, K): what
+        :meth:`Problem.theta` gives for :meth:`full_x`, for all windows at once."""
+        if not hasattr(self, "_nat"):
+            fams = [it.problem for it in self.items]
+            self._rows = np.arange(self.n_windows)[:, None]
+            self._log = np.array([[q.scale == "log" for q in p.family.parameters] for p in fams])
+            lo = np.array([p.x_lo for p in fams])
+            hi = np.array([p.x_hi for p in fams])
+            self._nat = (np.where(self._log, np.exp(np.where(self._log, lo, 0.0)), lo),
+                         np.where(self._log, np.exp(np.where(self._log, hi, 0.0)), hi))
+            self._nuis = np.asarray(self.nuis, int)
+            self._order = np.array(self.shared + self.nuis, int)
+            self._sel = self.perm[:, self._order]
+        xg = self.x_fixed.copy()
+        xg[:, self.shared] = s + self.shift
+        if self.nuis:
+            xg[:, self._nuis] = np.where(self.fixed_a, xg[:, self._nuis], a)
+        x = np.empty_like(xg)
+        x[self._rows, self.perm] = xg
+        return np.clip(np.where(self._log, np.exp(np.where(self._log, x, 0.0)), x), *self._nat)
+
     def evaluate(self, s, a, keep_dlog=False):
         """One sweep: the composite objective and its block-arrowhead pieces (``values`` per window as well)."""
         W, ns, na = self.n_windows, len(self.shared), len(self.nuis)
@@ -329,20 +368,17 @@ class _Pool:
         values = np.zeros(W)
         dlogs = [] if keep_dlog else None
         es = [] if keep_dlog else None
-        order = np.array(self.shared + self.nuis, int)
+        thetas = self.thetas(s, a)
+        self.n_evaluations += W
         for w, it in enumerate(self.items):
-            sel = self.perm[w][order]
             p = it.problem
-            x = self.full_x(w, s, a[w])
-            self.n_evaluations += 1
             p.n_evaluations += 1
-            theta = p.theta(x[p.free])
-            e, de = expected_in_band(p.family, theta, p.prep, p.context)
-            if not (np.all(e > 0) and np.isfinite(e).all() and np.isfinite(de).all()):
+            e, de = expected_in_band(p.family, thetas[w], p.prep, p.context)
+            if not (e.min() > 0 and np.isfinite(e.sum() + de.sum())):
                 return np.inf, None
             ratio = p.prep.periodogram[p.prep.band_index] / e
-            values[w] = float(np.sum(np.log(e)) + np.sum(ratio))
-            dlog = de[sel] / e
+            values[w] = float(np.log(e).sum() + ratio.sum())
+            dlog = de[self._sel[w]] / e
             if na:
                 dlog[ns:][self.fixed_a[w]] = 0.0
             g = dlog @ (1.0 - ratio)
@@ -386,9 +422,10 @@ def _solve(st, act_s, act_a, mu):
         ds = np.linalg.solve(schur, -gs + np.einsum("wsa,wa->s", B, xg))
         da = -xg - np.einsum("wat,t->wa", xb, ds)
     else:
+        schur = a_d
         ds = np.linalg.solve(a_d, -gs)
         da = np.zeros_like(ga)
-    return ds, da, (gs, A, B, C, ga)
+    return ds, da, (gs, A, B, C, ga), schur
 
 
 def _quadratic(ds, da, masked):
@@ -402,17 +439,22 @@ def _quadratic(ds, da, masked):
 def _scoring(pool: _Pool, max_iter: int = 100):
     """Levenberg-Marquardt-damped Fisher scoring on the block-arrowhead system (the single-window rules of
     :func:`driftspec.analysis.fitting.estimators._fisher_scoring`: gain-ratio damping, a longest step per
-    coordinate, stop on a small Newton decrement), with tolerances scaled by the number of windows."""
+    coordinate, stop on a small Newton decrement).
+
+    The Newton decrement ``g^T F^-1 g`` is a squared distance in standard errors (of the Fisher information). The
+    fit stops when the shared parameters' part of it (``ds^T S ds``, ``S`` the profiled information) is below
+    ``1e-5 W`` (at most 1e-3: within 0.03 standard errors) and the whole of it below ``1e-4 W`` (each window's
+    amplitudes within about 0.01 standard errors on average); one window: the single-window rule (1e-5)."""
     W = pool.n_windows
     s, a = pool.s0.copy(), pool.a0.copy()
-    val, st = pool.evaluate(s, a)
+    val, st = pool.evaluate(s, a, keep_dlog=True)
     if not np.isfinite(val):
         return s, a, val, None, False, "the start is not a valid parameter set", 0
     s_cap = np.array([3.0 if pool.scales[k] == "log" else 0.5 * (h - lo)
                       for k, lo, h in zip(pool.shared, pool.s_lo, pool.s_hi)])
     a_cap = np.array([[3.0 if pool.scales[k] == "log" else 0.5 * (h - lo) for k, lo, h in zip(pool.nuis, lw, hw)]
                       for lw, hw in zip(pool.a_lo, pool.a_hi)]).reshape(a.shape)
-    tol = 1e-5 * W
+    tol_shared, tol = min(1e-5 * W, 1e-3), 1e-4 * W if W > 1 else 1e-5
     mu, nu, flat = 1e-3, 2.0, 0
     success, message = False, "maximum iterations reached"
     n_iter = 0
@@ -424,17 +466,18 @@ def _scoring(pool: _Pool, max_iter: int = 100):
             success, message = True, "all parameters at bounds"
             break
         try:
-            ds0, da0, masked = _solve(st, act_s, act_a, 0.0)
+            ds0, da0, masked, schur = _solve(st, act_s, act_a, 0.0)
             decrement = -_quadratic(ds0, da0, masked)[0]
+            converged = decrement < tol and float(ds0 @ schur @ ds0) < tol_shared
         except np.linalg.LinAlgError:
-            decrement = np.inf
-        if decrement < tol:
+            decrement, converged = np.inf, False
+        if converged:
             success, message = True, "converged (Newton decrement)"
             break
         improved = False
         while mu < 1e8:
             try:
-                ds, da, masked = _solve(st, act_s, act_a, mu)
+                ds, da, masked, _ = _solve(st, act_s, act_a, mu)
             except np.linalg.LinAlgError:
                 mu *= 10
                 continue
@@ -444,7 +487,7 @@ def _scoring(pool: _Pool, max_iter: int = 100):
                 ds, da = ds / longest, da / longest
             s_new = np.clip(s + ds, pool.s_lo, pool.s_hi)
             a_new = np.clip(a + da, pool.a_lo, pool.a_hi)
-            val_new, st_new = pool.evaluate(s_new, a_new)
+            val_new, st_new = pool.evaluate(s_new, a_new, keep_dlog=True)
             if val_new < val:
                 improved = True
                 small = val - val_new < 1e-10 * max(1.0, abs(val))
@@ -462,7 +505,7 @@ def _scoring(pool: _Pool, max_iter: int = 100):
             success = decrement < 10 * tol
             message = "no further decrease" if success else "line search failed"
             break
-        if (small and decrement < tol) or flat >= 3:
+        if (small and converged) or flat >= 3:
             success, message = True, "converged (objective change)"
             break
     return s, a, val, st, success, message, n_iter
@@ -555,50 +598,88 @@ def _simulated_scores(pool: _Pool, s, a, st, dt, n_sim: int | None = None) -> di
         for i, (w, o, it) in enumerate(zip(ws, offsets, items)):
             p = it.problem
             theta_w = p.theta(pool.full_x(w, s, a[w])[p.free])
-            z = np.zeros((n_sim, p.prep.n), complex)
+            z = np.zeros((n_sim, p.prep.n), np.complex64)
             for comp, sl, x, v_ref in comps:
                 if v_ref > 0:
                     v_w = float(np.real(comp.autocovariance(theta_w[sl], np.zeros(1), p.context))[0])
-                    z += np.sqrt(max(v_w, 0.0) / v_ref) * x[:, o:o + p.prep.n]
+                    z += np.float32(np.sqrt(max(v_w, 0.0) / v_ref)) * x[:, o:o + p.prep.n]
             valid = p.prep.valid
-            z = np.where(valid, z, 0.0)
-            z = np.where(valid, z - z.sum(axis=1, keepdims=True) / max(p.prep.n_valid, 1), 0.0)
-            pg = dt_days * np.abs(scipy.fft.fft(p.prep.taper * z, axis=-1)[:, p.prep.band_index]) ** 2
-            scores[:, i] = (1.0 - pg / st["e"][w]) @ dt[w].T
+            z *= valid
+            z -= z.sum(axis=1, keepdims=True) / np.float32(max(p.prep.n_valid, 1))
+            z *= (p.prep.taper * valid).astype(np.float32)
+            pg = np.abs(scipy.fft.fft(z, axis=-1, overwrite_x=True)[:, p.prep.band_index]) ** 2
+            scores[:, i] = (1.0 - (dt_days * pg) / st["e"][w]) @ dt[w].T
         out[track] = (ws, scores)
     return out
 
 
-def heterogeneity_test(u_groups, info_groups, j_groups, null_scores=None):
-    """Score test that groups share parameters (module docstring): ``(T, df, p)``.
+def heterogeneity_test(u_groups, info_groups, null_scores, blocks=None):
+    """Score test that groups share parameters (module docstring): ``(statistic, df, p)``.
 
-    ``u_groups`` (G, p) efficient scores per group at the pooled estimate, ``info_groups`` (G, p, p) their
-    information (sensitivity), ``j_groups`` (Gp, Gp) the covariance of the scores at the truth. With
-    ``null_scores`` (n_sim, G, p), scores of series simulated from the fit, the p-value is the share of simulated
-    statistics at least as large (a parametric bootstrap of the same statistic, which keeps the test's size where the
-    few periodogram ordinates near the inertial peak make the scores skewed); otherwise chi-squared.
+    Parameters
+    ----------
+    u_groups : ndarray, shape (G, p)
+        Efficient scores per group at the pooled estimate.
+    info_groups : ndarray, shape (G, p, p)
+        Their information (sensitivity).
+    null_scores : ndarray, shape (n_sim, G, p)
+        Scores of the groups at the truth in series simulated from the fit.
+    blocks : array_like of int, shape (G,), optional
+        Independent units the groups belong to (drifters; default: every group its own). Scores of different
+        blocks are independent; groups of one block (windows of one drifter) may be correlated.
+
+    Returns
+    -------
+    statistic, df, p : float
+        ``T / a`` with ``T = sum_g u_g^T I_g^+ u_g`` (Cochran's homogeneity statistic in score form), and the
+        scaled chi-squared ``a chi2_df`` with the null mean and variance of ``T`` (Satterthwaite): ``a = Var / (2
+        E)``, ``df = 2 E^2 / Var``; ``p = P(chi2_df > T / a)``.
+
+    Notes
+    -----
+    To first order ``u = Q v`` (module docstring), so ``T = v^T B v`` with ``B = Q^T W Q``, ``W`` the block-diagonal
+    of the pseudo-inverse informations. With ``V_b`` the covariance of block ``b``'s scores, ``E T = sum_b tr(B_bb
+    V_b)`` and ``Var T = sum_b Var(v_b^T B_bb v_b) + 2 sum_{b != c} tr(B_bc V_c B_cb V_b)`` (blocks independent).
+    ``V_b`` and the within-block variances (which carry the skewness of scores from few periodogram ordinates) are
+    estimated from ``null_scores``; the other terms are exact, and the sums over blocks average the Monte Carlo
+    error, so a few simulated drifters per block suffice where there are many blocks.
     """
+    u_groups = np.asarray(u_groups, float)
     n_g, p = u_groups.shape
     if n_g < 2 or p == 0:
         return np.nan, np.nan, np.nan
-    D = np.zeros((n_g * p, n_g * p))
+    blocks = np.arange(n_g) if blocks is None else pd.factorize(np.asarray(blocks))[0]
+    w_inv = np.linalg.pinv(info_groups, rcond=1e-10, hermitian=True)
+    h_inv = np.linalg.pinv(info_groups.sum(axis=0), rcond=1e-10, hermitian=True)
+    # B = Q^T W Q with Q = I - D M H^-1 M^T: blocks B_gh = delta_gh W_g + F_g + F_h^T + K
+    f = -np.einsum("gab,gbc,cd->gad", w_inv, info_groups, h_inv)
+    k = h_inv @ np.einsum("gab,gbc,gcd->ad", info_groups, w_inv, info_groups) @ h_inv
+    big = (f[:, None] + np.swapaxes(f, 1, 2)[None, :] + k).transpose(0, 2, 1, 3).reshape(n_g * p, n_g * p)
     for g in range(n_g):
-        D[g * p:(g + 1) * p, g * p:(g + 1) * p] = info_groups[g]
-    M = np.tile(np.eye(p), (n_g, 1))
-    Q = np.eye(n_g * p) - D @ M @ np.linalg.solve(M.T @ D @ M, M.T)
-    V = Q @ j_groups @ Q.T
-    V = 0.5 * (V + V.T)
-    lam, vec = np.linalg.eigh(V)
-    keep = lam > 1e-10 * lam.max()
-    proj = vec[:, keep].T / np.sqrt(lam[keep])[:, None]
-    stat = float(np.sum((proj @ u_groups.ravel()) ** 2))
-    df = int(keep.sum())
-    if null_scores is None:
-        return stat, float(df), float(scipy.stats.chi2.sf(stat, df))
-    v = null_scores.reshape(null_scores.shape[0], -1)
+        big[g * p:(g + 1) * p, g * p:(g + 1) * p] += w_inv[g]
+    big = 0.5 * (big + big.T)
+    stat = float(np.einsum("ga,gab,gb->", u_groups, w_inv, u_groups))
+    v = np.asarray(null_scores, float).reshape(null_scores.shape[0], n_g * p)
     v = v - v.mean(axis=0)
-    t_sim = np.sum((v @ Q.T @ proj.T) ** 2, axis=1)
-    return stat, float(df), float((1 + np.sum(t_sim >= stat)) / (1 + t_sim.size))
+    n_sim = v.shape[0]
+    idx = np.repeat(blocks, p)
+    vb = np.zeros((n_g * p, n_g * p))  # block-diagonal estimate of the scores' covariance
+    mean, var_within, same = 0.0, 0.0, 0.0
+    for b in range(blocks.max() + 1):
+        sel = np.flatnonzero(idx == b)
+        v_b = np.atleast_2d(np.cov(v[:, sel], rowvar=False))
+        vb[np.ix_(sel, sel)] = v_b
+        b_bb = big[np.ix_(sel, sel)]
+        q = np.einsum("ia,ab,ib->i", v[:, sel], b_bb, v[:, sel])
+        mean += float(np.trace(b_bb @ v_b))
+        var_within += float(np.var(q, ddof=1)) if n_sim > 1 else 0.0
+        same += float(np.sum((b_bb @ v_b) * (b_bb @ v_b).T))
+    bv = big @ vb
+    var = var_within + 2.0 * (float(np.sum(bv * bv.T)) - same)
+    if not (mean > 0 and var > 0):
+        return stat, np.nan, np.nan
+    scale, df = var / (2.0 * mean), 2.0 * mean ** 2 / var
+    return stat / scale, float(df), float(scipy.stats.chi2.sf(stat / scale, df))
 
 
 # ---------------------------------------------------------------------------------------------- the fit
@@ -669,13 +750,12 @@ def pool_fit(windows: Iterable, spec: FitSpec | None = None, *, model=None, shar
         empty.message = message
         return empty
     with np.errstate(all="ignore"):
-        return _finish(pool, s, a, val, success, message, n_iter, name, share, skipped)
+        return _finish(pool, s, a, val, st, success, message, n_iter, name, share, skipped)
 
 
-def _finish(pool: _Pool, s, a, val, success, message, n_iter, name, share, skipped) -> PooledResult:
+def _finish(pool: _Pool, s, a, val, st, success, message, n_iter, name, share, skipped) -> PooledResult:
     items = pool.items
     W, ns = pool.n_windows, len(pool.shared)
-    _, st = pool.evaluate(s, a, keep_dlog=True)
     span = pool.s_hi - pool.s_lo
     at_s = (s - pool.s_lo < 1e-5 * span) | (pool.s_hi - s < 1e-5 * span)
     a_span = pool.a_hi - pool.a_lo
@@ -691,7 +771,7 @@ def _finish(pool: _Pool, s, a, val, success, message, n_iter, name, share, skipp
     stderr_method = ""
     track_names = pd.Index(track_names)
     # model-based covariance of the scores: drifters simulated from the fit (overlaps, gaps, leakage included)
-    sims = _simulated_scores(pool, s, a, st, dt) if p else {}
+    sims = _simulated_scores(pool, s, a, st, dt, n_simulations(W)) if p else {}
     j_tracks = np.zeros((n_tracks, p, p))
     for track, (_, sc) in sims.items():
         j_tracks[track_names.get_loc(track)] = np.atleast_2d(np.cov(sc.sum(axis=1), rowvar=False))
@@ -717,18 +797,14 @@ def _finish(pool: _Pool, s, a, val, success, message, n_iter, name, share, skipp
             np.add.at(u_g, codes, u)
             i_g = np.zeros((n_tracks, p, p))
             np.add.at(i_g, codes, s_w)
-            j_g = np.zeros((n_tracks * p, n_tracks * p))
             null = np.zeros((next(iter(sims.values()))[1].shape[0], n_tracks, p))
-            for c in range(n_tracks):
-                j_g[c * p:(c + 1) * p, c * p:(c + 1) * p] = j_tracks[c]
             for track, (_, sc) in sims.items():
                 null[:, track_names.get_loc(track)] = sc.sum(axis=1)
-            het, groups = heterogeneity_test(u_g, i_g, j_g, null), "tracks"
+            het, groups = heterogeneity_test(u_g, i_g, null), "tracks"
         elif W >= 2 and p:
             (ws, sc), = sims.values()
             order = np.argsort(ws)
-            j_w = np.atleast_2d(np.cov(sc[:, order].reshape(sc.shape[0], -1), rowvar=False))
-            het = heterogeneity_test(u, s_w, j_w, sc[:, order])
+            het = heterogeneity_test(u, s_w, sc[:, order], blocks=np.zeros(W, int))
             groups = "windows"
     except np.linalg.LinAlgError:
         pass
@@ -1051,12 +1127,14 @@ def _map_dataset(rows: dict, lat_e, lon_e, bin_deg, spec, model, share) -> xr.Da
                                                             "summed within drifters)", "units": units[p],
                                                "standard_name_modifier": "standard_error"})
     ds["heterogeneity_statistic"] = (("lat", "lon"), grid("heterogeneity_statistic"),
-                                     {"long_name": "score statistic: do the cell's drifters share the parameters",
+                                     {"long_name": "homogeneity statistic (Cochran, score form, scaled): do the cell's "
+                                                  "drifters share the parameters",
                                       "units": "1"})
     ds["heterogeneity_df"] = (("lat", "lon"), grid("heterogeneity_df"),
-                              {"long_name": "degrees of freedom of the heterogeneity statistic", "units": "1"})
+                              {"long_name": "effective degrees of freedom of the heterogeneity statistic "
+                                           "(Satterthwaite)", "units": "1"})
     ds["heterogeneity_pvalue"] = (("lat", "lon"), grid("heterogeneity_pvalue"),
-                                  {"long_name": "heterogeneity p-value (chi-squared)", "units": "1"})
+                                  {"long_name": "heterogeneity p-value (scaled chi-squared)", "units": "1"})
     summaries = {k: r["anisotropy"] for k, r in rows.items() if isinstance(r.get("anisotropy"), dict)}
     if spec.anisotropic or summaries:
         add_anisotropy_variables(ds, summaries, over="the windows in the cell, from each window's own "
@@ -1078,5 +1156,5 @@ def _map_dataset(rows: dict, lat_e, lon_e, bin_deg, spec, model, share) -> xr.Da
 
 
 __all__ = ["MIN_CLUSTERS", "NUISANCE", "OFFSET", "PooledResult", "PooledWindow", "SHARE_MODES", "STATUS_FLAGS",
-           "bin_windows", "check_region", "fit_bin", "heterogeneity_test", "pool_fit", "pool_map",
+           "bin_windows", "check_region", "fit_bin", "heterogeneity_test", "n_simulations", "pool_fit", "pool_map",
            "prepare_pooled_window"]
