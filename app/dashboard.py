@@ -324,7 +324,7 @@ class Explorer(param.Parameterized):
             self._jobs[slot] = None
             return None
         job = TaskJob(items, spec or self.pooled_spec(), func, doc=self.doc, on_update=self._on_job, label=label,
-                      key=key)
+                      key=key, background=slot == "map")
         self._jobs[slot] = job
         self._job_started[slot] = time.perf_counter()
         return job.start()
@@ -350,7 +350,7 @@ class Explorer(param.Parameterized):
             self._jobs[slot] = None
             return None
         job = Job(windows, key[-1], kind, doc=self.doc, on_update=self._on_job, label=label, key=key,
-                  own_process=self.state.estimator == "exact")
+                  own_process=self.state.estimator == "exact", background=slot == "all")
         self._jobs[slot] = job
         self._job_started[slot] = time.perf_counter()
         return job.start()
@@ -452,6 +452,8 @@ class Explorer(param.Parameterized):
             parts.append(f"first look, every window: {fl.n_done}/{fl.n_total}" + _rate(fl))
         if not parts and self.track_fits is not None and len(self.track_fits):
             tf = self.track_fits
+            if "model" in tf and (tf["model"] == self.state.model).any():
+                tf = tf[tf["model"] == self.state.model]  # not the rows of the anisotropic version
             parts.append(f"track fitted: {int((tf['status'] == 'ok').sum())}/{len(tf)} ok")
         lead = next((j for j in (self._jobs["all"], fl if not self._user_fits else None, self._jobs["map"],
                                  self._jobs["track"])
@@ -766,27 +768,34 @@ class TrackMap(View):
         return hv.Bounds((x[0], y[0], x[1], y[1])).opts(color="#2b5fd9", line_width=2)
 
     def _anisotropy_ellipse(self, aniso, window):
-        """The fitted model's velocity variance ellipse at the window's mean position (an anisotropic fit)."""
-        empty = hv.Path([], kdims=["x", "y"], vdims=["sd_major", "sd_minor", "angle", "rho", "pvalue"])
+        """The fitted model's velocity variance ellipse at the window's mean position (an anisotropic fit), with
+        its numbers written beside it and in its hover."""
+        vdims = ["sd_major", "sd_minor", "angle", "rho", "pvalue"]
         st = self.state
         if (aniso is None or window is None or aniso.family is None or not st.anisotropic
                 or not np.all(np.isfinite(list(aniso.params.values())))):
-            return empty
+            return (hv.Path([], kdims=["x", "y"], vdims=vdims, label="model variance ellipse")
+                    * hv.Labels([], kdims=["x", "y"], vdims="text"))
         sd_major, sd_minor, angle = variance_ellipse_axes(model_velocity_covariance(aniso, st.model, st.inertial))
         (x0, x1), _ = self.ex.data.extent
         scale = 0.06 * (x1 - x0) / max(sd_major, 1e-12)  # the major axis spans an eighth of the map
         ring = ellipse_ring(self.ex.data.proj, float(window.lon), float(window.lat), scale * sd_major,
                             scale * sd_minor, angle)
         rho, p = aniso.params["anisotropy"], aniso.isotropy_pvalue
-        label = f"model variance ellipse: ρ {rho:.2f}, {angle:.0f}° from east, isotropy p {p:.2g}"
-        return hv.Path([{"x": ring[:, 0], "y": ring[:, 1], "sd_major": sd_major, "sd_minor": sd_minor,
-                         "angle": angle, "rho": rho, "pvalue": p}], kdims=["x", "y"],
-                       vdims=["sd_major", "sd_minor", "angle", "rho", "pvalue"], label=label).opts(
+        path = hv.Path([{"x": ring[:, 0], "y": ring[:, 1], "sd_major": sd_major, "sd_minor": sd_minor,
+                         "angle": angle, "rho": rho, "pvalue": p}], kdims=["x", "y"], vdims=vdims,
+                       label="model variance ellipse").opts(
             color=COLOURS["inertial"], line_width=3, line_dash="solid" if getattr(aniso, "selected", False)
             else "dashed", tools=["hover"],
             hover_tooltips=[("model std. dev. along the axis", "@sd_major{0.000} m/s"),
                             ("across", "@sd_minor{0.000} m/s"), ("axis", "@angle{0.0}° from east"),
                             ("anisotropy ρ", "@rho{0.000}"), ("isotropy p-value", "@pvalue{0.0000}")])
+        text = (f"ρ {rho:.2f} · {sd_major:.3f}/{sd_minor:.3f} m/s along {angle:.0f}° · isotropy p {p:.2g}"
+                + ("" if getattr(aniso, "selected", False) else " (not rejected)"))
+        label = hv.Labels([(float(ring[:, 0].max()), float(ring[:, 1].max()), text)], kdims=["x", "y"],
+                          vdims="text").opts(text_color=COLOURS["inertial"], text_font_size="10pt",
+                                             text_align="left", text_baseline="bottom")
+        return path * label
 
     def plot(self):
         data, st = self.ex.data, self.state
@@ -910,7 +919,7 @@ class SpectrumView(View):
                   hv.Curve((f, model), kd, vd, label="fitted model (expected)").opts(
                       color=COLOURS["inertial"], line_width=2.2 * fs, line_dash="dashed")]
         ov = hv.Overlay(layers).opts(hv.opts.Overlay(
-            logx=True, logy=True, responsive=True, height=int(330 * min(fs, 1.3)), fontscale=fs,
+            logx=True, logy=True, responsive=True, height=int(280 * min(fs, 1.3)), fontscale=fs,
             title=f"complementary (ρ {a.params['anisotropy']:.2f}, p {a.isotropy_pvalue:.2g})",
             legend_position="bottom_left", legend_opts={"background_fill_alpha": 0.55}))
         return pn.pane.HoloViews(ov, sizing_mode="stretch_width", min_width=260)
@@ -981,10 +990,9 @@ class SpectrumView(View):
                                 legend_opts={"background_fill_alpha": 0.55},
                                 show_legend=side == "ccw", invert_xaxis=side == "cw"))
             panels.append(pn.pane.HoloViews(ov, sizing_mode="stretch_width", min_width=300))
+        row = pn.Row(*panels, sizing_mode="stretch_width")
         comp = self._complementary(fs)
-        if comp is not None:
-            panels.append(comp)
-        return pn.Row(*panels, sizing_mode="stretch_width")
+        return row if comp is None else pn.Column(row, comp, sizing_mode="stretch_width")
 
     def __panel__(self):
         return pn.Column(pn.panel(self.plot, defer_load=True), sizing_mode="stretch_width")
@@ -1207,8 +1215,9 @@ class ParameterMap(View):
                             ("heterogeneity", "statistic @het_stat{0.00}, df @het_df, p = @het_p{0.000}"),
                             ("status", "@status")])
         n_ok = sum(r.status == "ok" for r in pm["results"])
-        return mesh, lon_e, lat_e, quads, (f"pooled {p} in {b:g}° bins ({n_ok} of {len(pm['cells'])} bins pooled, "
-                                           f"{st.window_days:g}-day windows)")
+        n_fit = sum(r.status in ("ok", "at_bound") for r in pm["results"])
+        return mesh, lon_e, lat_e, quads, (f"pooled {p} in {b:g}° bins: {n_fit} of {len(pm['cells'])} bins fitted "
+                                           f"({n_ok} ok), {st.window_days:g}-day windows")
 
     def _ellipses(self, lon_e, lat_e, quads):
         """Velocity variance ellipses of the bins' samples, the largest spanning most of a bin."""

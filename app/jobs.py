@@ -10,6 +10,12 @@ Why processes: a window fit is mostly Python and numpy in small pieces, so threa
 down the server's loop for everyone. Fits go to a small shared pool of spawned worker processes, a few windows in
 flight per job so that a short job of one session never waits behind a long job of another. The exact estimator's
 windows run in a process of their own per job, which is terminated when the job is cancelled or superseded.
+
+Two kinds of work share two cores: what a user is waiting for (the current window, the selected track) and long
+background work (the first look at every window, *Fit every window*, the pooled map, an exact fit). Background jobs
+(``background=True``) run in a second pool whose processes, like an exact fit's own process, lower their
+scheduling priority (``os.nice``), so the operating system gives the cores to the interactive workers and the
+server first, and an opening page is never queued behind a long job: idle cores still go to the long job.
 """
 
 from __future__ import annotations
@@ -23,7 +29,10 @@ from collections.abc import Callable
 import param
 
 _POOL = None
+_BACKGROUND_POOL = None
 _POOL_LOCK = threading.Lock()
+#: ``os.nice`` increment of the processes that run background jobs and exact fits
+BACKGROUND_NICENESS = 10
 #: windows in flight per job in the shared pool (the rest wait in the job, where cancelling is free)
 IN_FLIGHT = 2
 
@@ -32,6 +41,15 @@ def _warm():
     from driftspec.analysis.models.matern import _tables
 
     _tables()
+
+
+def _warm_background():
+    """Initializer of background workers: a lower scheduling priority, then the tables."""
+    try:
+        os.nice(BACKGROUND_NICENESS)
+    except OSError:  # not permitted here: run at normal priority
+        pass
+    _warm()
 
 
 def _fit_one(window, spec_json):
@@ -66,9 +84,20 @@ def shared_pool():
         return _POOL
 
 
+def background_pool():
+    """The lower-priority worker processes for long jobs, shared by every session (started on first use)."""
+    global _BACKGROUND_POOL
+    with _POOL_LOCK:
+        if _BACKGROUND_POOL is None:
+            _BACKGROUND_POOL = multiprocessing.get_context("spawn").Pool(worker_count(),
+                                                                          initializer=_warm_background)
+        return _BACKGROUND_POOL
+
+
 def start_pool() -> None:
     """Start the shared workers now (the server calls this before the first page asks for a fit)."""
     shared_pool()
+    background_pool()
 
 
 def call_in_session(doc, fn: Callable[[], None]) -> None:
@@ -92,6 +121,10 @@ class Job(param.Parameterized):
     key : object
         The settings the job computes for (a tuple holding ``FitSpec.to_json()``, the track and the window
         lengths); the owner compares it with the current key and drops a result that is no longer current.
+    own_process : bool
+        Run in a process of its own, terminated on cancel (the exact estimator), at background priority.
+    background : bool
+        Run in the lower-priority pool (long jobs nobody is waiting on window by window).
     """
 
     label = param.String(default="", constant=True)
@@ -105,7 +138,8 @@ class Job(param.Parameterized):
     message = param.String(default="", constant=True)
     result = param.Parameter(default=None, constant=True, doc="List of per-window outputs, in window order")
 
-    def __init__(self, windows, spec_json: str, kind: str, doc=None, on_update=None, own_process=False, **params):
+    def __init__(self, windows, spec_json: str, kind: str, doc=None, on_update=None, own_process=False,
+                 background=False, **params):
         super().__init__(**params)
         self._windows = list(windows)
         self._spec_json = spec_json
@@ -113,6 +147,7 @@ class Job(param.Parameterized):
         self._doc = doc
         self._on_update = on_update
         self._own_process = own_process
+        self._background = background
         self._cancelled = threading.Event()
         self._private_pool = None
         self._thread = threading.Thread(target=self._run, daemon=True, name=f"job-{self.label}")
@@ -154,10 +189,10 @@ class Job(param.Parameterized):
         self._publish(status="running")
         try:
             if self._own_process:
-                self._private_pool = multiprocessing.get_context("spawn").Pool(1, initializer=_warm)
+                self._private_pool = multiprocessing.get_context("spawn").Pool(1, initializer=_warm_background)
                 pool = self._private_pool
             else:
-                pool = shared_pool()
+                pool = background_pool() if self._background else shared_pool()
             pending = {}
             queue = list(range(len(self._windows)))
             done = 0

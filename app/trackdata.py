@@ -72,7 +72,7 @@ class TrackData:
         with self._lock:
             if self.first_look is None:
                 windows = [w for tid in self.track_ids for w in windows_of(tid)]
-                job = Job(windows, spec.to_json(), "rows", doc=None, on_update=self._notify,
+                job = Job(windows, spec.to_json(), "rows", doc=None, on_update=self._notify, background=True,
                           label="first look", key=("first look", spec.to_json()))
                 self.first_look = job.start()
             return self.first_look
