@@ -409,7 +409,7 @@ def _fit(prob: _Problem, x0, free):
 # --- the public entry -------------------------------------------------------------------------------------------
 def fit_anisotropic(z, dt_days: float, *, model="matern", base_fit=None, latitude=None, taper="none", max_freq=None,
                     mask=None, exclude=None, observation: str = "none", velocity_operator: str = "central",
-                    fixed: dict | None = None, stderr: str = "auto", calibration: str = "simulated", n_sim: int = 200,
+                    fixed: dict | None = None, stderr: str = "auto", calibration: str = "simulated", n_sim: int = 100,
                     seed=None) -> AnisotropicFit:
     """Fit the anisotropic version of a model family to one window, test isotropy, and give the diffusivity tensor.
 
