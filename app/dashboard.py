@@ -5,10 +5,13 @@ Reading guide
 -------------
 * :class:`~driftspec.app.state.ExplorerState` holds every choice the user makes; ``state.SETTINGS`` is the one
   list of settings from which the sidebar widgets, the URL and the fit key derive.
-* :class:`Explorer` holds the job state: the current window's fit (``current_fit``), the track's fits
-  (``track_fits``), the fits of every window (``all_fits``), status and progress. One watcher
-  (``_on_settings``) reacts to a changed setting: it computes the new fit key, shows a cached fit or starts a
-  background job (:mod:`driftspec.app.jobs`), and drops whatever an older job returns.
+* :class:`Explorer` holds the job state: the current window's fit (``current_fit``, and ``current_anisotropic``
+  with the anisotropic setting), the track's fits (``track_fits``), the fits of every window (``all_fits``), the
+  pooled fits of the box-selected region (``region_fit``) and of each bin of the parameter map (``pooled_map``),
+  status and progress. One watcher (``_on_settings``) reacts to a changed setting: it computes the new fit key,
+  shows a cached fit or starts a background job (:mod:`driftspec.app.jobs`; :class:`TaskJob` runs a library
+  function such as ``pool_fit`` there), and drops whatever an older job returns; ``_on_pooling`` does the same
+  for the region and the parameter map's bins.
 * One :class:`panel.viewable.Viewer` per panel (track map, velocity, spectrum, fit table, track summary,
   parameter map, dispersion), each depending by name on the parameters it draws.
 * Map geometry (projection, degree ticks, graticule, land, bins) lives in :mod:`driftspec.app.geo`; the shared,
@@ -443,7 +446,7 @@ class Explorer(param.Parameterized):
                              f"{j.n_done}/{j.n_total}" + _rate(j))
         j = self._jobs.get("region")
         if j is not None:
-            parts.append(f"pooling the region's {len(j._windows[0])} windows")
+            parts.append(f"pooling the region's windows: {j.status}")
         j = self._jobs.get("map")
         if j is not None:
             parts.append(f"pooled map: {j.n_done}/{j.n_total} bins")
@@ -1394,7 +1397,9 @@ def explore(source, fits=None, title="driftspec", **state) -> Explorer:
 
     In a notebook, the returned object displays the whole dashboard inline; its ``state`` attribute
     (selected track, window, model, ...) can be read and set from code, and ``current_fit`` (the current
-    window's FitResult) and ``track_fits`` (the track's fits table) follow it.
+    window's FitResult) and ``track_fits`` (the track's fits table) follow it; ``region_fit`` is the pooled fit of
+    the box-selected region (``state.region``) and ``pooled_map`` the pooled fit of each parameter-map bin (with
+    ``state.map_values = "pooled fit"``); ``fit_region()`` and ``fit_pooled_map()`` compute them here and now.
 
     Examples
     --------
