@@ -79,10 +79,9 @@ def _anisotropic_candidate(window, plan: WindowPlan, spec: FitSpec, results):
     from .anisotropy import AnisotropicFit, fit_anisotropic
 
     chosen = next(r for r in results if r.selected)
-    if plan.observation == "irregular" or chosen.family is None or not np.all(np.isfinite(chosen.theta)):
-        why = "irregular fixes" if plan.observation == "irregular" else f"isotropic fit {chosen.status}"
+    if chosen.family is None or not np.all(np.isfinite(chosen.theta)):
         aniso = AnisotropicFit(model=f"anisotropic_{chosen.model}", params={}, stderr={}, units={},
-                               status="failed", message=f"not fitted anisotropically: {why}")
+                               status="failed", message=f"not fitted anisotropically: isotropic fit {chosen.status}")
     else:
         try:
             aniso = fit_anisotropic(window.z, plan.dt_days, base_fit=chosen, taper=spec.taper,
@@ -342,8 +341,11 @@ def _set_covariance(result: FitResult, stderr: str) -> None:
 def _diffusivity_and_gradient(problem: Problem, xf):
     """``kappa = S(0) / 4`` in m^2/s and its gradient in the free coordinates (one-sided differences that step
     into the bounds, so every evaluation is a valid parameter set)."""
-    def kappa(x):
-        return problem.family.zero_frequency_density(problem.theta(x), problem.context) * SECONDS_PER_DAY / 4.0
+    family, context = problem.family, problem.context
+    family.check_theta(problem.theta(xf))
+
+    def kappa(x):  # the steps stay inside the bounds: no check per step
+        return float(family._zero_frequency_density(problem.theta(x), context)) * SECONDS_PER_DAY / 4.0
 
     k0 = kappa(xf)
     lo, hi = problem.x_lo[problem.free], problem.x_hi[problem.free]

@@ -188,7 +188,11 @@ class ModelFamily:
 
 
 class SumFamily(ModelFamily):
-    """The sum of independent components: autocovariances and spectra add."""
+    """The sum of independent components: autocovariances and spectra add.
+
+    The public methods check the whole ``theta`` once (against the parts' bounds, concatenated); the parts are then
+    called through their private methods, with no second check.
+    """
 
     def __init__(self, *parts: ModelFamily, name: str | None = None):
         self.parts = parts
@@ -206,25 +210,25 @@ class SumFamily(ModelFamily):
 
     def _autocovariance(self, theta, lags_days, context):
         theta = np.asarray(theta, float)
-        return sum(p.autocovariance(theta[s], lags_days, context) for p, s in self.components())
+        return sum(p._autocovariance(theta[s], lags_days, context) for p, s in self.components())
 
     def _autocovariance_jacobian(self, theta, lags_days, context):
         theta = np.asarray(theta, float)
         r = np.zeros(len(lags_days), dtype=complex)
         jac = np.zeros((len(theta), len(lags_days)), dtype=complex)
         for p, s in self.components():
-            rp, jp = p.autocovariance_jacobian(theta[s], lags_days, context)
+            rp, jp = p._autocovariance_jacobian(theta[s], lags_days, context)
             r += rp
             jac[s] = jp
         return r, jac
 
     def _spectral_density(self, theta, freq_cpd, context):
         theta = np.asarray(theta, float)
-        return sum(p.spectral_density(theta[s], freq_cpd, context) for p, s in self.components())
+        return sum(p._spectral_density(theta[s], freq_cpd, context) for p, s in self.components())
 
     def _zero_frequency_density(self, theta, context):
         theta = np.asarray(theta, float)
-        return sum(p.zero_frequency_density(theta[s], context) for p, s in self.components())
+        return sum(p._zero_frequency_density(theta[s], context) for p, s in self.components())
 
     def bounds(self, context):
         return [b for p in self.parts for b in p.bounds(context)]
