@@ -141,6 +141,8 @@ class Explorer(param.Parameterized):
         self._fit_cache: dict = {}
         self._jobs: dict[str, Job | None] = {"current": None, "track": None, "all": None, "region": None, "map": None}
         self._aniso_cache: dict = {}
+        self._region_fit_key = None  # the settings the shown region_fit was computed for
+        self._map_layout = None  # bin edges and cells of the running pooled-map job
         self._job_started: dict[str, float] = {}
         self._cancel = threading.Event()  # set: this explorer starts no background work (scripts, tests)
         # user events may run in Panel's threads while job reports run on the loop: one at a time
@@ -243,7 +245,8 @@ class Explorer(param.Parameterized):
 
     def map_bins(self):
         """The parameter map's bins and the windows of each: ``(lon_edges, lat_edges, {(iy, ix): [Window]})``, the
-        windows (current length and overlap) of every track binned by their mean position."""
+        windows (current length and overlap) of every track binned by their mean position; only bins with
+        :data:`POOL_MIN_WINDOWS` or more windows (the others have no pooled fit)."""
         ws = [w for tid in self.track_ids for w in self.windows(tid)]
         if not ws:
             return None, None, {}
@@ -255,7 +258,7 @@ class Explorer(param.Parameterized):
         for w, i, j in zip(ws, iy, ix):
             if i >= 0:
                 bins.setdefault((int(i), int(j)), []).append(w)
-        return lon_e, lat_e, bins
+        return lon_e, lat_e, {k: bins[k] for k in sorted(bins) if len(bins[k]) >= POOL_MIN_WINDOWS}
 
     def map_key(self):
         st = self.state
@@ -273,10 +276,9 @@ class Explorer(param.Parameterized):
     def fit_pooled_map(self):
         """The pooled fit of every bin here and now (blocking; for scripts and tests)."""
         lon_e, lat_e, bins = self.map_bins()
-        cells = sorted(k for k, v in bins.items() if len(v) >= POOL_MIN_WINDOWS)
         spec = self.pooled_spec()
-        results = [pool_fit(bins[c], spec, min_windows=POOL_MIN_WINDOWS) for c in cells]
-        self._set(pooled_map=self._pooled_map_of(self.map_key(), lon_e, lat_e, cells, results))
+        results = [pool_fit(ws, spec, min_windows=POOL_MIN_WINDOWS) for ws in bins.values()]
+        self._set(pooled_map=self._pooled_map_of(self.map_key(), lon_e, lat_e, list(bins), results))
         return self.pooled_map
 
     @staticmethod
@@ -301,7 +303,7 @@ class Explorer(param.Parameterized):
         else:
             key = self.region_key()
             job = self._jobs["region"]
-            known = self.region_fit is not None and getattr(self, "_region_fit_key", None) == key
+            known = self.region_fit is not None and self._region_fit_key == key
             if not known and (job is None or job.key != key):
                 self._set(region_fit=None)
                 ws = self.region_windows()
@@ -312,11 +314,10 @@ class Explorer(param.Parameterized):
             pm = self.pooled_map
             if (pm is None or pm["key"] != key) and (job is None or job.key != key):
                 lon_e, lat_e, bins = self.map_bins()
-                cells = sorted(k for k, v in bins.items() if len(v) >= POOL_MIN_WINDOWS)
-                self._map_layout = (lon_e, lat_e, cells)
-                job = self._launch_tasks("map", [bins[c] for c in cells],
+                self._map_layout = (lon_e, lat_e, list(bins))
+                job = self._launch_tasks("map", list(bins.values()),
                                          functools.partial(pool_fit, min_windows=POOL_MIN_WINDOWS), key, "pooled map")
-                if job is None:  # nothing to pool: an empty map that says why
+                if not bins:  # nothing to pool: an empty map that says why
                     self._set(pooled_map=self._pooled_map_of(key, lon_e, lat_e, [], []))
 
     def _launch_tasks(self, slot, items, func, key, label, spec=None):
@@ -410,8 +411,7 @@ class Explorer(param.Parameterized):
                 self._region_fit_key = job.key
                 self._set(region_fit=job.result[0])
             elif slot == "map" and job.key == self.map_key():
-                lon_e, lat_e, cells = self._map_layout
-                self._set(pooled_map=self._pooled_map_of(job.key, lon_e, lat_e, cells, job.result))
+                self._set(pooled_map=self._pooled_map_of(job.key, *self._map_layout, job.result))
             elif slot == "track" and job.key == self.track_key():
                 self._set(track_fits=pd.DataFrame([r for rows in job.result for r in rows]))
             elif slot == "all":
