@@ -37,6 +37,17 @@ hourly Matérn windows fitted to 6 cpd, ``lambda`` is about 2.2 and a two-moment
 about 0.9), which the simulated distribution carries (see :func:`isotropy_pvalue` and
 ``benchmarks/bench_anisotropy.py`` for the measured sizes).
 
+Windows of irregular fixes
+--------------------------
+The base fit's family seen through the window's interpolation of its fixes
+(:class:`~driftspec.analysis.spectral.irregular.IrregularlyObserved`, ``base_fit=`` from ``fit_window``) is made
+anisotropic in its ocean family's Matérn part; the expected matrix comes from the fixes' operator
+(:mod:`driftspec.analysis.spectral.bivariate`). The null draws of the isotropy test and the sandwich simulate the
+ocean velocity finely, read the positions at the fix times, add the fixes' errors, interpolate, difference, mask
+and taper as the window was (:func:`~driftspec.analysis.fitting.uncertainty.irregular_velocities`), the Matérn
+part made improper as ``a w + b conj(w)``; the sandwich is always used for them (the interpolation correlates the
+ordinates).
+
 Diffusivity tensor
 ------------------
 ``K = S(0) / 2`` with ``S(0)`` the fitted 2 x 2 zero-frequency spectral matrix of ``(u, v)`` (two-sided, converted
@@ -74,7 +85,7 @@ import scipy.optimize
 
 from ..conventions import SECONDS_PER_DAY, inertial_frequency_cpd
 from ..models import FitContext, ModelFamily, SumFamily, get_family
-from ..models.anisotropic import Anisotropic, anisotropic, wrap_axis_deg
+from ..models.anisotropic import ANISOTROPY_PARAMETERS, Anisotropic, anisotropic, wrap_axis_deg
 from ..models.observation import observed
 from ..simulation.simulate import circulant_sample, embedding_autocovariance
 from ..spectral.bivariate import (
@@ -86,8 +97,9 @@ from ..spectral.bivariate import (
     simulated_scores,
     whittle_terms,
 )
+from ..spectral.irregular import IrregularlyObserved
 from .estimators import from_x, natural_jacobian, to_x
-from .uncertainty import simulator
+from .uncertainty import irregular_velocities, simulator
 
 #: the columns an anisotropic fit adds to a fits table (besides its parameters and their ``_se``)
 TENSOR_COLUMNS = ("diffusivity_major", "diffusivity_minor", "diffusivity_angle_deg")
@@ -238,8 +250,11 @@ def simulate_anisotropic(family: Anisotropic, theta, n: int, dt_days: float, *, 
 
 
 def _window_simulator(family: Anisotropic, theta, win: BivariateWindow, context):
-    """``rng, size -> (size, n)`` series of the (an)isotropic model with the window's missing samples NaN."""
+    """``rng, size -> (size, n)`` series of the (an)isotropic model with the window's missing samples NaN (zero for
+    a window of irregular fixes, :func:`_irregular_simulator`)."""
     theta = np.asarray(theta, float)
+    if isinstance(family.base, IrregularlyObserved):
+        return _irregular_simulator(family, theta, win, context)
     comps = family.components()
     part, psl = comps[family.part_index]
     draw_part = simulator(part, theta[psl], win.prep, context, max_factor=1)
@@ -256,6 +271,40 @@ def _window_simulator(family: Anisotropic, theta, win: BivariateWindow, context)
         return z if draw_rest is None else z + draw_rest(rng, size)
 
     return draw
+
+
+def _irregular_simulator(family: Anisotropic, theta, win: BivariateWindow, context):
+    """``rng, size -> (size, n)`` windows of the (an)isotropic model observed through the window's irregular fixes:
+    positions at the fix times, the fixes' errors, interpolation, differencing and mask as the fit's operator has
+    them (:func:`~driftspec.analysis.fitting.uncertainty.irregular_velocities`), the Matérn part made improper as
+    ``a w + b conj(w)``; zero where invalid. Tapering and demeaning are :func:`band_dfts`'s."""
+    theta = np.asarray(theta, float)
+    base = family.base
+    th_base = theta[: family.n_base]
+    improper = None
+    if theta[-2] > 0:
+        a, b = family.widely_linear_coefficients(theta)
+        improper = (family.part_index, a, b)
+
+    def draw(rng, size):
+        return irregular_velocities(base, th_base, win.prep, context, rng, size, improper=improper)
+
+    return draw
+
+
+def _anisotropic_family(base: ModelFamily) -> Anisotropic:
+    """The anisotropic version of ``base``. For a family seen through irregular fixes the Matérn component is that
+    of its ocean family (whose parameters lead the irregular family's) and the proper part is the irregular
+    family, noise included."""
+    if not isinstance(base, IrregularlyObserved):
+        return anisotropic(base)
+    family = Anisotropic(base.base)
+    family.base = base
+    family.name = f"anisotropic_{base.name}"
+    family.parameters = tuple(base.parameters) + ANISOTROPY_PARAMETERS
+    family.n_base = len(base.parameters)
+    family.modulated = base.modulated
+    return family
 
 
 # --- optimisation -----------------------------------------------------------------------------------------------
@@ -435,7 +484,8 @@ def fit_anisotropic(z, dt_days: float, *, model="matern", base_fit=None, latitud
     exclude : sequence of (low, high), optional
         Frequency-magnitude bands (cpd) left out.
     observation : {"none", "differenced", "differenced+noise"}
-        Observation model (see :mod:`driftspec.analysis.models.observation`); irregular fixes are not supported.
+        Observation model (see :mod:`driftspec.analysis.models.observation`); a window of irregular fixes
+        comes with its isotropic fit (``base_fit``, observation ``irregular``).
     velocity_operator : {"central", "forward"}
     fixed : dict, optional
         Base parameters held at values (natural units).
@@ -498,9 +548,12 @@ def fit_anisotropic(z, dt_days: float, *, model="matern", base_fit=None, latitud
         context = None
     if isinstance(base, Anisotropic):
         base = base.base
-    if getattr(base, "operator", None) is not None and not hasattr(base.operator, "half_width"):
-        raise ValueError("anisotropic fits of irregular fixes are not supported")
-    family = anisotropic(base)
+    irregular = isinstance(base, IrregularlyObserved)
+    if irregular and base_fit is None:
+        raise ValueError("a window of irregular fixes is fitted anisotropically from its isotropic fit (base_fit=)")
+    if irregular and mask is None and getattr(base_fit, "prepared", None) is not None:
+        mask = base_fit.prepared.valid  # the valid samples the fixes' operator was built on
+    family = _anisotropic_family(base)
     for k in fixed:
         if k not in base.names:
             raise ValueError(f"fixed parameter {k!r} is not a parameter of {base.name}")
@@ -533,6 +586,8 @@ def fit_anisotropic(z, dt_days: float, *, model="matern", base_fit=None, latitud
     try:
         win = prepare_bivariate(z, dt_days, mask=mask, taper=taper, max_freq=max_freq, exclude=exclude,
                                 modulated=family.modulated, latitude_series=lat_series)
+        if irregular and not np.array_equal(win.prep.band_index, base.operator.band_index):
+            raise ValueError("the fitted band differs from the one the irregular-fix operator was built for")
     except ValueError as exc:
         out.message = str(exc)
         return out
@@ -581,9 +636,9 @@ def _fit_window(out: AnisotropicFit, family: Anisotropic, win: BivariateWindow, 
     zz = prep.z[prep.valid]
     g0 = complex(np.sum(zz**2) / max(np.sum(np.abs(zz) ** 2), 1e-300))
     th_iso = prob.theta(x_iso)
-    comps = base.components()
-    part, psl = comps[family.part_index]
-    share = base.autocovariance(th_iso[:nb], [0.0], context)[0].real / max(
+    part, psl = family.part, family.part_slice
+    ocean = base.base if isinstance(base, IrregularlyObserved) else base  # the velocity's own variance
+    share = ocean.autocovariance(th_iso[: len(ocean.parameters)], [0.0], context)[0].real / max(
         part.autocovariance(th_iso[psl], [0.0], context)[0].real, 1e-300)
     g0 *= min(share, 10.0)
     if abs(g0) > 0.9:
@@ -620,7 +675,7 @@ def _fit_window(out: AnisotropicFit, family: Anisotropic, win: BivariateWindow, 
 
     # covariance of the free coordinates
     fisher = t_hat.fisher[np.ix_(free, free)]
-    gappy = bool(np.ptp(prep.taper) > 0)
+    gappy = bool(np.ptp(prep.taper) > 0) or isinstance(base, IrregularlyObserved)  # fixes correlate the ordinates
     cov = np.full((n_free, n_free), np.nan)
     method = ""
     with np.errstate(all="ignore"):
@@ -659,7 +714,7 @@ def _null_band_dfts(family: Anisotropic, theta_iso, win: BivariateWindow, contex
     models go through the general simulator.
     """
     prep = win.prep
-    if family.modulated:
+    if family.modulated or isinstance(family.base, IrregularlyObserved):
         draw = _window_simulator(family, theta_iso, win, context)
         return lambda rng, size: band_dfts(draw(rng, size), win)
     th = np.asarray(theta_iso, float)
@@ -768,8 +823,7 @@ def _standard_errors(out: AnisotropicFit, prob: _Problem, x, theta, cov, free):
     out.covariance = cov_nat
 
     # the tensor: K+- = SECONDS_PER_DAY / 4 (S0 +- rho S_M(0))
-    comps = base.components()
-    part, psl = comps[family.part_index]
+    part, psl = family.part, family.part_slice
 
     def pieces(xx):
         th = prob.theta(xx)

@@ -124,7 +124,7 @@ class FitSpec:
     anisotropic : bool
         Also fit the anisotropic (improper) version of the selected model, test isotropy and give the diffusivity
         tensor (:mod:`.anisotropy`); it is selected where isotropy is rejected at the 1 % level. Windows of
-        irregular fixes are not fitted anisotropically (their rows say so).
+        irregular fixes are fitted through their fixes' operator.
     """
 
     models: tuple = "auto"

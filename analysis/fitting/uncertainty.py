@@ -98,10 +98,20 @@ _FINE_STEPS = 6
 
 
 def _irregular_periodograms(family, theta, prep, context, rng, n_sim: int) -> np.ndarray:
-    """Periodograms over the band of windows observed as this one was from irregular fixes: the ocean velocity
-    simulated every ``dt / 6`` by circulant embedding, integrated to positions, read at the fix times, given
-    the fixes' errors (scaled as fitted) or the fitted white noise, interpolated to the grid and differenced
-    through the window's own operator (``family.operator.weights``)."""
+    """Periodograms over the band of windows observed as this one was from irregular fixes
+    (:func:`irregular_velocities`)."""
+    return _band_periodograms(irregular_velocities(family, theta, prep, context, rng, n_sim), prep)
+
+
+def irregular_velocities(family, theta, prep, context, rng, n_sim: int, improper=None) -> np.ndarray:
+    """Velocity windows ``(n_sim, n)`` (m/s, zero where invalid) observed as this one was from irregular fixes:
+    the ocean velocity simulated every ``dt / 6`` by circulant embedding, integrated to positions, read at the fix
+    times, given the fixes' errors (scaled as fitted) or the fitted white noise, interpolated to the grid and
+    differenced through the window's own operator (``family.operator.weights``).
+
+    ``improper=(index, a, b)`` makes ocean component ``index`` the widely linear ``a w + b conj(w)`` of its proper
+    series ``w`` (an anisotropic Matérn part, :mod:`driftspec.analysis.models.anisotropic`).
+    """
     op = family.operator
     p = len(family.base.parameters)
     ocean, extra = theta[:p], theta[p:]
@@ -109,20 +119,29 @@ def _irregular_periodograms(family, theta, prep, context, rng, n_sim: int) -> np
     s = op._s - op._s[0]  # fix times from the first fix used, days
     n_f = int(np.ceil(s[-1] / dt_f)) + 2
     fc = context.inertial_frequency_cpd or 0.0
+    comps = list(enumerate(family.base.components()))
+    special = None if improper is None else improper[0]
 
-    def acov(lag):  # a latitude-following part at the window's mean inertial frequency, as the operator has it
-        r = np.zeros(len(lag), complex)
-        for comp, sl in family.base.components():
-            rc = comp.autocovariance(ocean[sl], lag, context)
-            r += rc * np.exp(2j * np.pi * fc * lag) if comp.modulated else rc
-        return r
+    def draw(parts):  # one proper complex series (n_sim, n_f) of the summed components
+        def acov(lag):  # a latitude-following part at the window's mean inertial frequency, as the operator has it
+            r = np.zeros(len(lag), complex)
+            for _, (comp, sl) in parts:
+                rc = comp.autocovariance(ocean[sl], lag, context)
+                r += rc * np.exp(2j * np.pi * fc * lag) if comp.modulated else rc
+            return r
 
-    r = np.asarray(embedding_autocovariance(acov, n_f, dt_f, max_factor=1), complex)
-    half = r.size - 1
-    row = np.concatenate([r, np.conj(r[1:half][::-1])])
-    amp = np.sqrt(np.clip(scipy.fft.fft(row).real, 0, None) * row.size)
-    eps = rng.standard_normal((n_sim, 2 * amp.size), dtype=np.float32).view(np.complex64)
-    v = scipy.fft.ifft(eps * (amp / np.sqrt(2.0)), axis=-1, overwrite_x=True)[:, :n_f]  # m/s
+        r = np.asarray(embedding_autocovariance(acov, n_f, dt_f, max_factor=1), complex)
+        half = r.size - 1
+        row = np.concatenate([r, np.conj(r[1:half][::-1])])
+        amp = np.sqrt(np.clip(scipy.fft.fft(row).real, 0, None) * row.size)
+        eps = rng.standard_normal((n_sim, 2 * amp.size), dtype=np.float32).view(np.complex64)
+        return scipy.fft.ifft(eps * (amp / np.sqrt(2.0)), axis=-1, overwrite_x=True)[:, :n_f]  # m/s
+
+    rest = [c for c in comps if c[0] != special]
+    v = draw(rest) if rest else np.zeros((n_sim, n_f), complex)
+    if special is not None:
+        w = draw([c for c in comps if c[0] == special])
+        v = v + improper[1] * w + improper[2] * np.conj(w)
     x = np.concatenate([np.zeros((n_sim, 1)), np.cumsum(0.5 * (v[:, 1:] + v[:, :-1]), axis=1)], axis=1) \
         * dt_f * SECONDS_PER_DAY  # m, by the trapezoid rule
     pos = _interp_rows(x, s / dt_f)
@@ -133,8 +152,7 @@ def _irregular_periodograms(family, theta, prep, context, rng, n_sim: int) -> np
     else:
         sigma = np.zeros(s.size)
     pos = pos + sigma * (rng.standard_normal(pos.shape) + 1j * rng.standard_normal(pos.shape))
-    y = (op.weights @ pos.T).T / SECONDS_PER_DAY  # m/s on the grid (zero rows where invalid)
-    return _band_periodograms(y, prep)
+    return (op.weights @ pos.T).T / SECONDS_PER_DAY  # m/s on the grid (zero rows where invalid)
 
 
 def _interp_rows(x, at):

@@ -18,7 +18,12 @@ Expected periodogram matrix (debiased)::
 with ``c(tau) = sum_t h_{t+tau} h_t`` the lag weights and ``C`` the complementary covariance. For the families of
 :mod:`driftspec.analysis.models.anisotropic`, ``C = gamma R_M`` with ``R_M`` real and even, so ``X(k) = gamma
 E_M(k)``: the complementary expectation is the anisotropic component's own (real-FFT) expected periodogram times
-``gamma = rho exp(2 i theta)``, and an evaluation costs the same FFTs as the univariate one. The negative
+``gamma = rho exp(2 i theta)``, and an evaluation costs the same FFTs as the univariate one. For a window of
+irregular fixes (base family
+:class:`~driftspec.analysis.spectral.irregular.IrregularlyObserved`) the interpolation of the fixes is a real-linear
+map, so the same holds with the operator's kernel in place of the lag sum: ``E+-`` are the family's expected
+periodogram at ``+-f_k`` (position errors included) and ``E_M`` the Matérn component's own kernel integral at
+``+f_k``, without the errors (see :mod:`driftspec.analysis.spectral.irregular`). The negative
 log-likelihood over the band is::
 
     L = sum_k [ log det E_k + tr(E_k^-1 I_k) ],     I_k = y_k y_k^H
@@ -46,6 +51,7 @@ import numpy as np
 import scipy.fft
 
 from ..models.base import FitContext, ModelFamily
+from .irregular import IrregularlyObserved
 from .likelihood import PreparedWindow, prepare_window
 
 
@@ -193,12 +199,15 @@ def expected_matrix(family: ModelFamily, theta, win: BivariateWindow, context: F
     """The debiased expected augmented periodogram over the band (module docstring), with derivatives.
 
     ``family`` is an isotropic family (then ``cross`` is zero) or an
-    :class:`~driftspec.analysis.models.anisotropic.Anisotropic` one.
+    :class:`~driftspec.analysis.models.anisotropic.Anisotropic` one; either may be (built on) a family seen through
+    irregular fixes, whose operator must have been built for ``win``'s band.
     """
     theta = np.asarray(theta, float)
     prep = win.prep
     aniso = getattr(family, "anisotropic", False)
     base = family.base if aniso else family
+    if isinstance(base, IrregularlyObserved):
+        return _expected_irregular(family, base, aniso, theta, win, context, jacobian)
     nb = len(base.parameters)
     n_coords = nb + (2 if aniso else 0)
     nf = win.n_freq
@@ -226,6 +235,46 @@ def expected_matrix(family: ModelFamily, theta, win: BivariateWindow, context: F
         if jacobian:
             sl, dp = d_part
             d_cross[sl] = g * dp
+            d_cross[nb] = part
+            d_cross[nb + 1] = 1j * part
+    return ExpectedMatrix(pos, neg, cross, d_pos, d_neg, d_cross, part)
+
+
+def _expected_irregular(family, base: IrregularlyObserved, aniso: bool, theta, win: BivariateWindow, context,
+                        jacobian: bool) -> ExpectedMatrix:
+    """:func:`expected_matrix` for a window of irregular fixes: ``E+-`` from the operator's kernel (noise included),
+    ``X(k) = gamma E_M(k)`` with ``E_M`` the anisotropic component's own kernel integral at ``+f_k``, noise-free
+    (:meth:`~driftspec.analysis.spectral.irregular.IrregularObservation.component_in_band`). ``win.prep`` must
+    have the band the operator was built for."""
+    op = base.operator
+    order = np.argsort(op.band_index)
+    at = np.searchsorted(op.band_index[order], np.concatenate([win.k_pos, win.k_neg]))
+    at = np.clip(at, 0, order.size - 1)
+    where = order[at]
+    if not np.array_equal(op.band_index[where], np.concatenate([win.k_pos, win.k_neg])):
+        raise ValueError("the bivariate band is not inside the band the irregular-fix operator was built for")
+    nf = win.n_freq
+    i_pos, i_neg = where[:nf], where[nf:]
+    nb = len(base.parameters)
+    n_coords = nb + (2 if aniso else 0)
+    out = base.expected_in_band(theta[:nb], win.prep, context, jacobian=jacobian)
+    e, de = out if jacobian else (out, None)
+    pos, neg = e[i_pos], e[i_neg]
+    d_pos = d_neg = d_cross = None
+    if jacobian:
+        d_pos, d_neg = np.zeros((n_coords, nf)), np.zeros((n_coords, nf))
+        d_pos[:nb], d_neg[:nb] = de[:, i_pos], de[:, i_neg]
+        d_cross = np.zeros((n_coords, nf), complex)
+    part = np.zeros(nf)
+    cross = np.zeros(nf, complex)
+    if aniso:
+        sl = family.part_slice  # the leading (ocean) parameters of the irregular family
+        res = op.component_in_band(family.part, theta[sl], context, jacobian=jacobian)
+        part = (res[0] if jacobian else res)[i_pos]
+        g = family.gamma(theta)
+        cross = g * part
+        if jacobian:
+            d_cross[sl] = g * res[1][:, i_pos]
             d_cross[nb] = part
             d_cross[nb + 1] = 1j * part
     return ExpectedMatrix(pos, neg, cross, d_pos, d_neg, d_cross, part)

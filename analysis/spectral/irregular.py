@@ -61,6 +61,18 @@ Independent errors ``eps_j`` of standard deviation ``sigma_j`` (m) per component
 either with the given per-fix ``sigma_j`` (``noise="fixed"``) or with one fitted ``sigma`` for every fix
 (``noise="fitted"``: parameter ``position_noise``, m, appended to the family's parameters).
 
+Complementary moment (anisotropic models)
+-----------------------------------------
+With ``E[dZ(f) dZ(f')] = C(f) delta(f + f') df`` (``C`` the complementary spectrum, even in ``f``), and because
+the weights are real, ``a_j(-k) = conj a_j(k)`` and so ``G_{-k}(-f) = conj G_k(f)``, with ``G_k(f) = sum_j a_j(k)
+exp(2 pi i f s_j)``::
+
+    dt E[J_k J_{-k}] = dt * int C(f) K_k(f) df
+
+with the same kernel ``K_k``. For ``C = gamma S_M`` (an anisotropic Matérn part) this is ``gamma`` times that
+component's own kernel integral (:meth:`IrregularObservation.component_in_band`); white position errors, equal
+and independent in both coordinates, have no complementary part.
+
 Modulated (latitude-following) components are treated as stationary at the window's mean inertial
 frequency (their ``spectral_density`` with ``context.inertial_frequency_cpd``); the exact treatment folds
 the modulation into ``g_k`` and is not done here.
@@ -440,6 +452,48 @@ class IrregularObservation:
                 jac[sl.start + j] = np.real(density(tp, nodes, context) - density(tm, nodes, context)) / (2 * step)
         return dens, jac
 
+    def _kernel_integral(self, family, theta, context, jacobian):
+        """``dt int S K_k df`` over the band (column 0) and its derivatives in the optimiser's coordinates (the
+        other columns): the kernel product plus the tail beyond ``quad_max_cpd``, no position noise."""
+        p_model = len(family.parameters)
+        dens, jac = self._density_stack(family, theta, context, jacobian)
+        cols = dens[:, None] if jac is None else np.concatenate([dens[:, None], jac[:p_model].T], axis=1)
+        with _one_blas_thread():  # the same sums in every process, and faster than threads on a busy machine
+            out = self.kernel @ cols  # (band, 1 + p_model)
+        if self._tail is not None:
+            tot = np.zeros(cols.shape[1])
+            for last, prev in self._outer:
+                val, d_last, d_prev = self._tail_integral(dens[last], dens[prev])
+                tot[0] += val
+                if jac is not None:
+                    tot[1:] += d_last * jac[:p_model, last] + d_prev * jac[:p_model, prev]
+            out += np.outer(self.dt_days * self._diag, tot)
+        return out
+
+    def component_in_band(self, component: ModelFamily, theta, context: FitContext, jacobian: bool = True):
+        """``dt int S_c(f) K_k(f) df`` of one ocean component alone (no position noise), over the band in band
+        order, and its derivatives in the component's optimiser coordinates.
+
+        This is also the complementary expectation per unit ``gamma``: for a real-linear observation (real
+        weights ``W_nj``) ``G_{-k}(-f) = conj G_k(f)``, so a complementary spectrum ``C(f) = gamma S_c(f)`` (``S_c``
+        even) gives ``E[J_k J_{-k}] = gamma dt int S_c K_k df`` with the same kernel ``K_k`` (the bivariate
+        likelihood's ``X(k)``, :mod:`driftspec.analysis.spectral.bivariate`); white position errors equal in
+        both coordinates have no complementary part.
+
+        Returns
+        -------
+        e : ndarray (band,)
+            (m/s)^2 per cpd.
+        de : ndarray (component parameters, band)
+            Only when ``jacobian``.
+        """
+        theta = np.asarray(theta, float)
+        if theta.shape != (len(component.parameters),):
+            raise ValueError(f"theta must have {len(component.parameters)} values ({', '.join(component.names)})")
+        out = self._kernel_integral(component, theta, context, jacobian)
+        e = out[:, 0].copy()
+        return (e, np.ascontiguousarray(out[:, 1:].T)) if jacobian else e
+
     def expected_in_band(self, family: ModelFamily, theta, context: FitContext, band_index=None,
                          jacobian: bool = True):
         """``E[I_k]`` over the band and ``dE/dx`` for the optimiser's coordinates, in band order.
@@ -472,18 +526,7 @@ class IrregularObservation:
         p_all = p_model + (self.noise == "fitted")
         if theta.shape != (p_all,):
             raise ValueError(f"theta must have {p_all} values ({', '.join(q.name for q in self.parameters(family))})")
-        dens, jac = self._density_stack(family, theta, context, jacobian)
-        cols = dens[:, None] if jac is None else np.concatenate([dens[:, None], jac[:p_model].T], axis=1)
-        with _one_blas_thread():  # the same sums in every process, and faster than threads on a busy machine
-            out = self.kernel @ cols  # (band, 1 + p_model)
-        if self._tail is not None:
-            tot = np.zeros(cols.shape[1])
-            for last, prev in self._outer:
-                val, d_last, d_prev = self._tail_integral(dens[last], dens[prev])
-                tot[0] += val
-                if jac is not None:
-                    tot[1:] += d_last * jac[:p_model, last] + d_prev * jac[:p_model, prev]
-            out += np.outer(self.dt_days * self._diag, tot)
+        out = self._kernel_integral(family, theta[:p_model], context, jacobian)
         e = out[:, 0].copy()
         de = np.zeros((p_all, e.size)) if jacobian else None
         if jacobian:
@@ -528,13 +571,17 @@ class IrregularlyObserved(ModelFamily):
         self.parameters = operator.parameters(base) + ((ERROR_SCALE,) if self._scaled else ())
         self.modulated = False  # the operator treats a latitude-following part at the mean inertial frequency
 
-    def expected_in_band(self, theta, prep, context):
-        """``E[I_k]`` and ``dE/dx`` over the window's band (``prep`` must be the window the operator was built on)."""
+    def expected_in_band(self, theta, prep, context, jacobian: bool = True):
+        """``E[I_k]`` and ``dE/dx`` over the window's band (``prep`` must be the window the operator was built on);
+        ``E[I_k]`` alone when not ``jacobian``."""
         theta = self.check_theta(theta)
         if not self._scaled:
-            return self.operator.expected_in_band(self.base, theta, context, prep.band_index)
-        e, de = self.operator.expected_in_band(self.base, theta[:-1], context, prep.band_index)
+            return self.operator.expected_in_band(self.base, theta, context, prep.band_index, jacobian)
+        out = self.operator.expected_in_band(self.base, theta[:-1], context, prep.band_index, jacobian)
         noise = (theta[-1] ** 2 - 1.0) * self.operator.fixed_noise  # the operator added the unscaled noise
+        if not jacobian:
+            return out + noise
+        e, de = out
         return e + noise, np.vstack([de, 2.0 * theta[-1] ** 2 * self.operator.fixed_noise])
 
     def _spectral_density(self, theta, freq_cpd, context):
