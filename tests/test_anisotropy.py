@@ -568,3 +568,32 @@ def test_fit_window_gives_irregular_windows_an_anisotropic_row(irregular_windows
     assert row["isotropy_pvalue"] < 0.01 and row["selected"]
     assert abs(wrap_axis_deg(row["diffusivity_angle_deg"] - 30.0)) < 20
     assert row["diffusivity_major"] > row["diffusivity_minor"] > 0
+
+
+def test_irregular_expected_matrix_derivatives_against_finite_differences():
+    # reference: central differences of the expected matrix itself in the optimiser's coordinates (log variance,
+    # alpha, log damping, log error scale, (Re gamma, Im gamma)), for a window of irregular fixes
+    rng = np.random.default_rng(32)
+    t, valid, sigma = _irregular_setup(rng, n=480)
+    win = prepare_bivariate(np.where(valid, 1j, np.nan), DT, taper="hann", max_freq=6.0)
+    fam = _irregular_family(t, valid, sigma, win)
+    ctx = FitContext(dt_days=DT)
+    x0 = np.array([np.log(0.04), 1.2, np.log(1.0), np.log(1.3), 0.3, 0.25])
+
+    def theta(x):
+        g = complex(x[4], x[5])
+        return [np.exp(x[0]), x[1], *np.exp(x[2:4]), abs(g), np.degrees(0.5 * np.angle(g))]
+
+    em = expected_matrix(fam, theta(x0), win, ctx)
+    assert em.d_cross.shape == (6, win.n_freq) and np.all(em.d_cross[3] == 0)  # the error scale: no cross term
+    for j in range(6):
+        h = 1e-4
+        xp, xm = x0.copy(), x0.copy()
+        xp[j] += h
+        xm[j] -= h
+        ep = expected_matrix(fam, theta(xp), win, ctx, jacobian=False)
+        emn = expected_matrix(fam, theta(xm), win, ctx, jacobian=False)
+        for num, ana, ref in (((ep.pos - emn.pos) / (2 * h), em.d_pos[j], em.pos),
+                              ((ep.neg - emn.neg) / (2 * h), em.d_neg[j], em.neg),
+                              ((ep.cross - emn.cross) / (2 * h), em.d_cross[j], em.pos)):
+            np.testing.assert_allclose(ana, num, rtol=0, atol=1e-4 * np.max(np.abs(ref)))
