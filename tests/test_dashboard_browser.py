@@ -367,8 +367,9 @@ def test_bad_links_and_files_give_one_line_messages(server, page):
 @pytest.mark.parametrize("name, hemisphere", [("coast.parquet", "N"), ("polar.parquet", "N")])
 def test_maps_show_degrees_graticule_and_land(server, page, artifacts_dir, name, hemisphere):
     _open(page, f"{server}?{urlencode({'data': name})}")
-    labels = _axis_labels(page)
     if name == "coast.parquet":  # Mercator: degrees on both axes
+        # the map is drawn after the page has loaded (in the server's thread pool): wait for its axes
+        labels = _wait_for(lambda: _axis_labels(page), lambda v: len(v) > 0, timeout=90)
         assert any(re.fullmatch(r"\d+°W", x) for x in labels) and any(re.fullmatch(r"\d+°N", x) for x in labels)
     page.screenshot(path=str(artifacts_dir / f"dashboard-map-{name.split('.')[0]}.png"),
                     clip={**_map_box(page), "width": _map_box(page)["width"] + 80})
