@@ -55,8 +55,9 @@ def main():
     print(f"cost, {len(windows)} windows of 720 hourly samples (matern+inertial), median of 3:")
     print(f"  pooled fit (incl. cluster sandwich and heterogeneity check) {t_pool:7.2f} s   "
           f"{len(windows)} single-window fits {t_single:7.2f} s   ratio pooled/single {t_pool / t_single:.2f}")
+    n_sim = n_simulations(len(windows), len({w.track_id for w in windows}))
     print(f"  pooled: {res.n_iterations} scoring iterations, {res.n_evaluations / len(windows):.1f} likelihood "
-          f"evaluations per window, {n_simulations(len(windows))} simulated drifters per drifter "
+          f"evaluations per window, {n_sim} simulated drifters per drifter "
           f"(heterogeneity: statistic {res.heterogeneity_statistic:.1f} on {res.heterogeneity_df:.1f} effective df, "
           f"p = {res.heterogeneity_pvalue:.2f})")
 

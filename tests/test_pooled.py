@@ -277,3 +277,38 @@ def test_pool_map_anisotropy_summaries_match_map_of_the_window_fits(tmp_path):
     assert abs(float(cell["diffusivity_angle_deg"]) - 30.0) < 15.0
     assert 1.5 < float(cell["diffusivity_major"]) / float(cell["diffusivity_minor"]) < 5.0
     assert int(ds["n_windows"].sum()) == len(ws)
+
+
+def test_simulated_amplitudes_are_reestimated_as_scipy_minimize_finds_them():
+    # the heterogeneity check's simulated windows have their amplitudes re-estimated (two Newton-type steps and an
+    # efficient-score correction): the shared scores equal those at the amplitudes scipy.optimize.minimize finds for
+    # the same Whittle objective sum log E + I / E, with E = R + m_1 C_1 + m_2 C_2 (to a small fraction of their spread)
+    from scipy.optimize import minimize
+
+    from driftspec.analysis.regional.pooled import _reprofiled_scores
+
+    rng = np.random.default_rng(5)
+    nb, n_sim = 300, 6
+    f = np.linspace(0.05, 6, nb)
+    contrib = np.array([0.02 / (1 + (f / 0.5) ** 2) ** 1.2, 0.01 / (1 + ((f - 1.1) / 0.1) ** 2)])
+    rest = np.full(nb, 1e-4)
+    e = rest + contrib.sum(axis=0)
+    shared = np.array([contrib[0] * np.log1p(f), contrib[1] * (f - 1.1) / 0.01, 1e-4 * np.cos(f)])
+    owner = np.array([0, 1, -1])  # the first shared row scales with amplitude 1, the second with 2, the third not
+    pg = e * rng.exponential(size=(n_sim, nb))
+    got = _reprofiled_scores(pg[None], e[None], np.vstack([shared, contrib])[None], (np.ones(2), owner))[0]
+    worst = 0.0
+    for s in range(n_sim):
+        def objective(lam, i=pg[s]):
+            ee = rest + np.exp(lam) @ contrib
+            return np.sum(np.log(ee) + i / ee)
+
+        m = np.exp(minimize(objective, np.zeros(2), method="BFGS", options={"gtol": 1e-10}).x)
+        ee = rest + m @ contrib
+        scale = np.where(owner >= 0, m[np.clip(owner, 0, None)], 1.0)
+        ref = scale * (shared @ ((1 - pg[s] / ee) / ee))
+        spread = np.sqrt(((shared / e) ** 2).sum(axis=1))  # the score's standard deviation, about
+        assert np.all(np.abs(got[s] - ref) < 0.02 * spread), (got[s], ref, spread)
+        # the first-order score at the fitted amplitudes is not that close: the check can tell them apart
+        worst = max(worst, np.max(np.abs(shared @ ((1 - pg[s] / e) / e) - ref) / spread))
+    assert worst > 0.1
