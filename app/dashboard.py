@@ -893,9 +893,11 @@ class VelocityView(View):
         u = hv.Curve((t, v["u"]), "time", hv.Dimension("vel", label="velocity (m/s)"), label="u (east)")
         w = hv.Curve((t, v["v"]), "time", hv.Dimension("vel", label="velocity (m/s)"), label="v (north)")
         ws = ex.windows()
-        spans = [hv.VSpan(x.start, x.end).opts(color="#c9d3e6", alpha=0.25) for x in ws]
+        # every window in one vectorised element (one glyph, not one plot per window)
+        spans = hv.VSpans(pd.DataFrame({"x0": [x.start for x in ws], "x1": [x.end for x in ws]}),
+                          kdims=["x0", "x1"]).opts(color="#c9d3e6", alpha=0.25, apply_ranges=False)
         cur = ex.current()
-        layers = spans + ([hv.VSpan(cur.start, cur.end).opts(color="#f2c14e", alpha=0.45)] if cur else [])
+        layers = [spans] + ([hv.VSpan(cur.start, cur.end).opts(color="#f2c14e", alpha=0.45)] if cur else [])
         overlay = hv.Overlay([*layers, u.opts(color="#33658a"), w.opts(color="#b5522b")])
         return overlay.opts(hv.opts.Curve(line_width=1.2 * fs), hv.opts.Overlay(
             responsive=True, height=int(230 * min(fs, 1.4)), fontscale=fs, legend_position="top_left",
