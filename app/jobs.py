@@ -33,6 +33,9 @@ _BACKGROUND_POOL = None
 _POOL_LOCK = threading.Lock()
 #: ``os.nice`` increment of the processes that run background jobs and exact fits
 BACKGROUND_NICENESS = 10
+#: seconds between progress reports of a job (four times as long for a background job, whose progress every open
+#: page shows: each report is work on every session's event loop)
+PROGRESS_EVERY_S = 0.5
 #: windows in flight per job in the shared pool (the rest wait in the job, where cancelling is free)
 IN_FLIGHT = 2
 
@@ -207,7 +210,7 @@ class Job(param.Parameterized):
                 if not pending:
                     continue
                 now = time.perf_counter()
-                if done and now - last > 0.5:
+                if done and now - last > (PROGRESS_EVERY_S * (4 if self._background else 1)):
                     last = now
                     rate = done / (now - t0)
                     self._publish(n_done=done, rate=rate, eta_s=(len(self._windows) - done) / rate)
