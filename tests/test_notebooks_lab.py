@@ -63,7 +63,7 @@ def lab(demo_dir, tmp_path_factory):
     proc = subprocess.Popen(
         [sys.executable, "-m", "jupyterlab", "--no-browser", "--ip=127.0.0.1", f"--port={port}", "--port-retries=0",
          f"--IdentityProvider.token={token}", f"--ServerApp.root_dir={root}",
-         "--LabApp.news_url=", "--LabApp.check_for_updates_class=jupyterlab.NeverCheckForUpdate",
+         "--LabApp.news_url=None", "--LabApp.check_for_updates_class=jupyterlab.NeverCheckForUpdate",
          "--LabApp.extension_manager=readonly", "--LabApp.expose_app_in_browser=True", "--allow-root"],
         env=env, stdout=log, stderr=subprocess.STDOUT, cwd=top)
     url = f"http://127.0.0.1:{port}"
@@ -233,6 +233,9 @@ def test_notebook_runs_in_jupyterlab(name, lab, page):
             _check_dashboard(page, st)
     finally:
         if page.url.startswith(lab[0]):
+            shown_cell = page.locator(".jp-CodeCell", has_text="explore(")  # the quickstart's dashboard, if any
+            if shown_cell.count():
+                shown_cell.first.scroll_into_view_if_needed(timeout=10_000)
             page.screenshot(path=str(SCREENSHOTS / f"lab_{Path(name).stem}.png"))
             _shutdown(page)
     assert any(u.startswith(lab[0] + "/api/kernels") for u in page.requests)  # the requests were recorded
