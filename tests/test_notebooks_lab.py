@@ -144,7 +144,7 @@ def _run_notebook(page, lab, name, timeout=180.0):
     deadline = time.time() + timeout
     while time.time() < deadline:
         time.sleep(1.0)
-        st = _state(page)
+        st = _state(page) or st
         if st["kernel"] == "idle" and all(c["count"] is not None for c in st["cells"]):
             return st
         if any(o.get("output_type") == "error" for c in st["cells"] for o in c["outputs"]):
