@@ -58,7 +58,7 @@ from .jobs import Job
 from .state import ANALYSIS, FIT_PARAMS, URL_PARAMS, ExplorerState, parse_query, widgets_for
 from .trackdata import MAP_RATIO, TrackData
 
-hv.extension("bokeh", logo=False)
+hv.extension("bokeh", logo=False, inline=True)  # BokehJS from the package, not a CDN: works offline
 pn.extension("tabulator", inline=True)
 
 CAUTION = (
@@ -689,6 +689,13 @@ def bin_variance_ellipses(vel: pd.DataFrame, lon_edges, lat_edges) -> pd.DataFra
 
 
 # ====================================================================== views
+def _on_server() -> bool:
+    """Whether the page is being built for a server session. There plots load after the page (quick to open); in
+    a notebook they are drawn with the cell, so that Panel inlines their style sheets (offline notebooks)."""
+    doc = pn.state.curdoc
+    return doc is not None and getattr(doc, "session_context", None) is not None
+
+
 class View(pn.viewable.Viewer):
     """A panel of the page drawing from one Explorer."""
 
@@ -854,7 +861,7 @@ class TrackMap(View):
 
     def __panel__(self):
         # rendered after the page has loaded (in Panel's thread pool on a server), so opening a page is quick
-        return pn.Column(pn.panel(lambda: pn.pane.HoloViews(self.plot()), defer_load=True), self.readout,
+        return pn.Column(pn.panel(lambda: pn.pane.HoloViews(self.plot()), defer_load=_on_server()), self.readout,
                          sizing_mode="stretch_width")
 
 
@@ -905,7 +912,7 @@ class VelocityView(View):
             title=f"{st.track}: velocity; {len(ws)} windows of {st.window_days:g} days"))
 
     def __panel__(self):
-        return pn.panel(self.plot, sizing_mode="stretch_width", defer_load=True)
+        return pn.panel(self.plot, sizing_mode="stretch_width", defer_load=_on_server())
 
 
 class SpectrumView(View):
@@ -1002,7 +1009,7 @@ class SpectrumView(View):
         return row if comp is None else pn.Column(row, comp, sizing_mode="stretch_width")
 
     def __panel__(self):
-        return pn.Column(pn.panel(self.plot, defer_load=True), sizing_mode="stretch_width")
+        return pn.Column(pn.panel(self.plot, defer_load=_on_server()), sizing_mode="stretch_width")
 
 
 class FitTable(View):

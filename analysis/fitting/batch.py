@@ -168,7 +168,10 @@ def run_fits(windows: Iterable[Window], out, spec: FitSpec, *, workers: int = 1,
         For invalid run options, an output folder that cannot be written, or a resume whose stored settings differ
         from these (the message names the settings that differ).
     """
-    from tqdm.auto import tqdm
+    if progress:  # tqdm.auto warns on import in a notebook without ipywidgets, even for a disabled bar
+        from tqdm.auto import tqdm
+    else:
+        from tqdm import tqdm
 
     if int(workers) != workers or workers < 1:
         raise ValueError(f"workers must be a whole number >= 1; got {workers!r}")

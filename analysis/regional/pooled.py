@@ -1127,7 +1127,10 @@ def pool_map(windows: Iterable, spec: FitSpec | None = None, *, bin_deg: float =
         ``number_of_observations``), ``n_tracks``, ``heterogeneity_statistic``, ``heterogeneity_df``,
         ``heterogeneity_pvalue`` and ``pooled_status`` per bin; ``lat_bnds``/``lon_bnds``.
     """
-    from tqdm.auto import tqdm
+    if progress:  # tqdm.auto warns on import in a notebook without ipywidgets, even for a disabled bar
+        from tqdm.auto import tqdm
+    else:
+        from tqdm import tqdm
 
     from ..fitting.batch import run_settings, stored_settings
 
