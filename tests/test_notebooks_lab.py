@@ -25,7 +25,7 @@ from pathlib import Path
 from urllib.parse import urlsplit
 
 import pytest
-from test_dashboard_browser import CHROMIUM_ARGS, _browser_or_skip, _free_port
+from test_dashboard_browser import _browser_or_skip, _free_port, browser  # noqa: F401 - the shared browser fixture
 
 pytestmark = pytest.mark.browser
 NOTEBOOKS = Path(__file__).resolve().parent.parent / "notebooks"
@@ -87,17 +87,6 @@ def lab(demo_dir, tmp_path_factory):
     except subprocess.TimeoutExpired:
         proc.kill()
     log.close()
-
-
-@pytest.fixture(scope="module")
-def browser():
-    path = _browser_or_skip()
-    from playwright.sync_api import sync_playwright
-
-    with sync_playwright() as p:
-        b = p.chromium.launch(executable_path=path, headless=True, args=CHROMIUM_ARGS)
-        yield b
-        b.close()
 
 
 def _outside(url):
@@ -202,7 +191,7 @@ def _printed(st, cell):
 
 
 @pytest.fixture
-def page(browser):
+def page(browser):  # noqa: F811 - the fixture imported above
     ctx = browser.new_context(viewport={"width": 1500, "height": 1100})
     pg = ctx.new_page()
     pg.requests = []
