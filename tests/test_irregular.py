@@ -107,6 +107,39 @@ def test_weights_reproduce_regular_grid_and_add_velocity(rng):
     assert np.all(mine[~valid] == 0)
 
 
+def test_kernel_equals_the_direct_sum_over_samples_and_fixes(rng):
+    """The kernel built by a non-uniform FFT against its definition summed term by term: the tapered DFT over
+    grid samples n of sum_j W'_nj (exp(2 pi i f s_j) - 1) / (2 pi i f), W' the weights demeaned over the valid
+    samples (Percival & Walden 1993, the tapered periodogram's expectation as a kernel-weighted spectrum)."""
+    n = 480
+    t = satellite_times(rng, n * DT + 2.0) - 1.0
+    valid = velocity_mask(t, n, mask_hours=24.0)
+    valid[100:130] = False  # a gap in the velocities
+    assert valid.sum() > 0.8 * n
+    obs = IrregularObservation(t, DT, n, valid, "central", "hann", noise="none", max_freq_cpd=9.0,
+                               inertial_frequency_cpd=-1.0)
+    w = obs.weights.toarray()
+    w[valid] -= w[valid].mean(axis=0)
+    s = obs._s  # the fixes' times (days), centred: the zero-sum rows make the origin free
+    samples = np.arange(n)
+    k_bins = obs.band_index[[0, 7, 40, -1]]
+    dft = obs.taper[None, :] * np.exp(-2j * np.pi * np.outer(k_bins, samples) / n)  # (bins, samples)
+    step = 1.0 / 64  # cpd: the kernel is built on uniform grids; these frequencies lie on this one
+    rows = np.searchsorted(obs.band_index, k_bins)
+    direct, mine = [], []
+    for q in (-1517, -65, -1, 0, 1, 62, 352, 1088):
+        f = q * step
+        if q == 0:
+            g = dft @ (w @ s)  # the limit of (exp(2 pi i f s) - 1) / (2 pi i f)
+        else:
+            g = dft @ (w @ ((np.exp(2j * np.pi * f * s) - 1) / (2j * np.pi * f)))
+        direct.append(DT * np.abs(g) ** 2)
+        mine.append(obs._kernel_columns(step, [q], np.ones(1))[rows, 0])
+    direct, mine = np.array(direct), np.array(mine)
+    # at f = 0 the demeaned kernel vanishes (a steady drift is removed): both are round-off there
+    np.testing.assert_allclose(mine, direct, rtol=1e-7, atol=1e-12 * direct.max())
+
+
 # --- Monte Carlo: the mean periodogram of simulated satellite-like windows ------------------------------
 def _mc_periodograms(fix_times, sigma, n, valid, band, reps, rng, chunk=500):
     """Periodograms (replicate x band) of ``reps`` simulated windows, without and with per-fix errors: velocity
@@ -166,6 +199,36 @@ def test_monte_carlo_mean_periodogram():
 
 
 # --- derivatives and input checks -------------------------------------------------------------------------
+def test_sandwich_simulator_reproduces_the_expected_periodogram():
+    """The sandwich's draws of windows observed through irregular fixes (fitting/uncertainty.py: a velocity
+    simulated every dt/3 by circulant embedding, integrated, read at the fixes with their errors, interpolated and
+    differenced) against the kernel integral of the expected periodogram, a computation that shares nothing with
+    them but the fixes' weights."""
+    from driftspec.analysis.fitting.uncertainty import _band_periodograms, irregular_velocities
+    from driftspec.analysis.spectral.irregular import IrregularlyObserved
+
+    rng = np.random.default_rng(21)
+    n = 720
+    fix_times = satellite_times(rng, 30.4, start=-0.2)
+    valid = velocity_mask(fix_times, n, mask_hours=24.0)
+    sigma = rng.choice([250.0, 500.0, 1000.0], fix_times.size)
+    prep = prepare_window(np.full(n, 1j), DT, mask=valid, taper="hann", max_freq=2.9)
+    obs = IrregularObservation(fix_times, DT, n, valid, "central", prep.taper, position_error_m=sigma,
+                               noise="fixed", band_index=prep.band_index, inertial_frequency_cpd=-1.0)
+    fam = IrregularlyObserved(get_family("matern+inertial"), obs)  # parameters: THETA, then the errors' scale
+    expected = obs.expected(fam.base, THETA, CTX)
+    reps = 2560
+    pg = np.concatenate([_band_periodograms(irregular_velocities(fam, np.r_[THETA, 1.0], prep, CTX, rng, 64), prep)
+                         for _ in range(reps // 64)])
+    ratio = pg / expected
+    blocks = np.array_split(np.argsort(obs.freq_cpd), 16)  # 16 blocks of adjacent ordinates
+    for values, z_max in ((np.stack([ratio[:, b].mean(axis=1) for b in blocks], axis=1), 4.0),
+                          (ratio.mean(axis=1, keepdims=True), 4.0)):
+        mean = values.mean(axis=0)
+        se = values.std(axis=0, ddof=1) / np.sqrt(reps)
+        assert np.all(np.abs(mean - 1) < z_max * se), (np.max(np.abs(mean - 1) / se), mean)
+
+
 def test_jacobian_matches_finite_differences_of_the_expectation(rng):
     fix_times = satellite_times(rng, 30.4, start=-0.2)
     n = 720

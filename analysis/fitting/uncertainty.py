@@ -94,7 +94,7 @@ def _band_periodograms(z, prep) -> np.ndarray:
 
 
 #: sub-steps per grid step of the continuous velocity simulated for windows of irregular fixes
-_FINE_STEPS = 6
+_FINE_STEPS = 3
 
 
 def _irregular_periodograms(family, theta, prep, context, rng, n_sim: int) -> np.ndarray:
@@ -105,7 +105,7 @@ def _irregular_periodograms(family, theta, prep, context, rng, n_sim: int) -> np
 
 def irregular_velocities(family, theta, prep, context, rng, n_sim: int, improper=None) -> np.ndarray:
     """Velocity windows ``(n_sim, n)`` (m/s, zero where invalid) observed as this one was from irregular fixes:
-    the ocean velocity simulated every ``dt / 6`` by circulant embedding, integrated to positions, read at the fix
+    the ocean velocity simulated every ``dt / 3`` by circulant embedding, integrated to positions, read at the fix
     times, given the fixes' errors (scaled as fitted) or the fitted white noise, interpolated to the grid and
     differenced through the window's own operator (``family.operator.weights``).
 
@@ -133,17 +133,21 @@ def irregular_velocities(family, theta, prep, context, rng, n_sim: int, improper
         r = np.asarray(embedding_autocovariance(acov, n_f, dt_f, max_factor=1), complex)
         half = r.size - 1
         row = np.concatenate([r, np.conj(r[1:half][::-1])])
-        amp = np.sqrt(np.clip(scipy.fft.fft(row).real, 0, None) * row.size)
+        amp = np.sqrt(np.clip(scipy.fft.fft(row).real, 0, None) * (row.size / 2.0)).astype(np.float32)
+        # single precision for the draws and their transform (twice as fast; ample for a variance from n_sim
+        # draws); the positions are summed in double precision below
         eps = rng.standard_normal((n_sim, 2 * amp.size), dtype=np.float32).view(np.complex64)
-        return scipy.fft.ifft(eps * (amp / np.sqrt(2.0)), axis=-1, overwrite_x=True)[:, :n_f]  # m/s
+        eps *= amp
+        return scipy.fft.ifft(eps, axis=-1, overwrite_x=True)[:, :n_f]  # m/s, complex64
 
     rest = [c for c in comps if c[0] != special]
     v = draw(rest) if rest else np.zeros((n_sim, n_f), complex)
     if special is not None:
         w = draw([c for c in comps if c[0] == special])
         v = v + improper[1] * w + improper[2] * np.conj(w)
-    x = np.concatenate([np.zeros((n_sim, 1)), np.cumsum(0.5 * (v[:, 1:] + v[:, :-1]), axis=1)], axis=1) \
-        * dt_f * SECONDS_PER_DAY  # m, by the trapezoid rule
+    x = np.zeros((n_sim, n_f), complex)
+    np.cumsum(0.5 * (v[:, 1:] + v[:, :-1]), axis=1, dtype=complex, out=x[:, 1:])
+    x *= dt_f * SECONDS_PER_DAY  # m, by the trapezoid rule
     pos = _interp_rows(x, s / dt_f)
     if op.noise == "fixed":
         sigma = op.sigma_used * (extra[-1] if family._scaled else 1.0)

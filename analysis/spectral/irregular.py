@@ -51,6 +51,12 @@ to 1.5 sampling rates exactly, and beyond in the white-noise form. Each evaluati
 kernel matrix (band x nodes, about 1080 x 3300 for a 60-day hourly window) with the spectral density
 on the nodes, and its derivatives (central differences of the density in the optimiser's coordinates).
 
+Building the kernel: ``K_k(f) = |G_k(f)|^2 / (2 pi f)^2`` with ``G_k(f) = sum_j a_j(k) exp(2 pi i f s_j)`` (``a_j(k)``
+the tapered, demeaned transform of fix ``j``'s weights at bin ``k``, below). Both grids are uniform in ``f``, so
+``G_k`` on a grid of step ``d`` is a type-1 non-uniform FFT of the strengths ``a_j(k)`` at the points
+``x_j = 2 pi d s_j`` (finufft, one transform per band bin in one call), to a requested 1e-10 relative
+error, about ten times faster than summing the exponentials.
+
 Position error
 --------------
 Independent errors ``eps_j`` of standard deviation ``sigma_j`` (m) per component (``E|eps_j|^2 =
@@ -84,10 +90,13 @@ Percival, D. B., Walden, A. T. (1993). Spectral Analysis for Physical Applicatio
 Press. doi:10.1017/CBO9780511622762 (tapered periodogram, its expectation as a kernel-weighted spectrum).
 Davis, P. J., Rabinowitz, P. (1984). Methods of Numerical Integration, 2nd ed. Academic Press (product
 integration; the trapezoidal rule for band-limited integrands).
+Barnett, A. H., Magland, J., af Klinteberg, L. (2019). "A parallel nonuniform fast Fourier transform library based
+on an 'exponential of semicircle' kernel". SIAM J. Sci. Comput. 41, C479-C504. doi:10.1137/18M120885X (finufft).
 """
 
 from __future__ import annotations
 
+import finufft
 import numpy as np
 import scipy.fft
 import scipy.sparse
@@ -115,6 +124,8 @@ _CONTROLLER = ThreadpoolController()
 #: a fitted factor on the given per-fix position errors (their fix-by-fix structure kept, their level fitted)
 ERROR_SCALE = Parameter("position_error_scale", "1", 0.05, 20.0, "factor on the given per-fix position errors")
 _FD_STEP = 1e-5  # central-difference step of the density in the optimiser's coordinates
+#: requested relative accuracy of the non-uniform FFT that builds the kernel
+_NUFFT_EPS = 1e-10
 
 
 #: the spectrum's structure near zero frequency (a Matérn corner) is resolved on the fine grid up to here, cpd
@@ -240,7 +251,7 @@ class IrregularObservation:
                  max_freq_cpd: float | None = None, demean: bool = True,
                  inertial_frequency_cpd: float | None = None, fine_bands_cpd=None, transition_cpd: float = 0.25,
                  quad_max_cpd: float | None = None, oversample: float = 4.0, coarse_oversample: float = 1.5,
-                 log_node_step: float = 0.05, chunk: int = 256):
+                 log_node_step: float = 0.05):
         s = np.asarray(fix_times_days, float).ravel()
         n = int(n)
         dt = float(dt_days)
@@ -311,10 +322,7 @@ class IrregularObservation:
         if demean:
             dense[valid] -= dense[valid].mean(axis=0)
         a = scipy.fft.fft(self.taper[:, None] * dense, axis=0)[self.band_index]  # (band, fixes), 1/day
-        # for the kernel: the tapered weights (sparse), their mean over the valid samples and the taper's transform
-        self._tapered_weights = (scipy.sparse.diags(self.taper) @ self.weights).tocsr()
-        self._mean_weights = self.weights[valid].mean(axis=0).A1 if demean else None
-        self._taper_band = scipy.fft.fft(self.taper)[self.band_index]
+        self._a = np.ascontiguousarray(a)
         a2 = np.abs(a) ** 2
         self._diag = a2.sum(axis=1)  # sum_j |a_j(k)|^2, day^-2
         #: ``E_noise[I_k]`` per unit variance (m^2) of white position noise on each component
@@ -336,13 +344,14 @@ class IrregularObservation:
         psi1 = _partition(grid1, bands, transition_cpd)
         keep = psi1 > 0
         fine, w_fine = grid1[keep], d1 * psi1[keep]
-        kernels = [self._kernel_columns(fine, w_fine, chunk)]
+        kernels = [self._kernel_columns(d1, np.arange(-q1, q1 + 1)[keep], w_fine)]
         nodes_all = [fine]
         # smooth part: a cubic spline in log|f| on each stretch between the bands, integrated with weight 1 - psi
         d2 = 1.0 / (coarse_oversample * tspan)
         q2 = int(np.floor(fmax / d2))
         grid2 = np.arange(-q2, q2 + 1) * d2
         w2 = d2 * (1.0 - _partition(grid2, bands, transition_cpd))
+        g2 = self._transform(d2, q2)  # G_k on the whole coarse grid, sliced per stretch below
         self._outer = []
         start = fine.size
         for lo, hi in _gaps(bands, fmax):
@@ -352,7 +361,8 @@ class IrregularObservation:
             count = max(4, int(np.ceil(np.log(b_ / a_) / log_node_step)) + 1)
             nodes = np.geomspace(a_, b_, count)
             basis = make_interp_spline(np.log(nodes), np.eye(count), k=3)(np.log(np.abs(grid2[inside])))
-            kernels.append(self._kernel_columns(grid2[inside], w2[inside], chunk, basis=basis))
+            kernels.append(self._kernel_columns(d2, np.flatnonzero(inside) - q2, w2[inside], basis=basis,
+                                                transform=(g2, q2)))
             nodes_all.append(sign * nodes)
             if np.isclose(b_, fmax):  # the outermost stretch of one side: the tail continues from its last nodes
                 self._outer.append((start + count - 1, start + count - 2))
@@ -375,38 +385,38 @@ class IrregularObservation:
         return [(-_LOW_BAND_CPD, _LOW_BAND_CPD), (lo - _PEAK_MARGIN_CPD, hi + _PEAK_MARGIN_CPD)]
 
     # ------------------------------------------------------------------------------------------------
-    def _kernel_columns(self, f, weight, chunk, basis=None):
-        """``dt * weight_q * K_k(f_q)`` (band x points), or integrated against ``basis`` (band x nodes).
+    def _transform(self, step, qmax):
+        """``G_k(q * step)`` for ``q = -qmax..qmax`` (band x 2 qmax + 1): a type-1 non-uniform FFT over the fixes.
 
-        Per chunk of frequencies: ``q = (h W) e`` (the tapered weights, sparse, times ``exp(2 pi i f s_j)``), its
-        FFT along the samples at the band's bins, minus the demeaning term ``H_k (m . e)`` (``H`` the taper's
-        transform, ``m`` the weights' mean over the valid samples), all in double precision.
+        The points ``2 pi step s_j`` lie within +-pi / oversample (the grids' steps are at most 1 / (1.5 span) and
+        ``s`` is centred), so nothing folds; one thread, so a serial run and a process pool agree to the bit."""
+        x = 2 * np.pi * step * self._s
+        if np.abs(x).max() >= np.pi:
+            raise ValueError("frequency step too coarse for the window's span")
+        return finufft.nufft1d1(x, self._a, n_modes=2 * int(qmax) + 1, eps=_NUFFT_EPS, isign=1, nthreads=1)
+
+    def _kernel_columns(self, step, q, weight, basis=None, transform=None):
+        """``dt * weight_q * K_k(q * step)`` (band x points), or integrated against ``basis`` (band x nodes).
+
+        ``K_k(f) = |G_k(f)|^2 / (2 pi f)^2``: the rows of the weights sum to zero, so the ``-1`` of
+        ``(exp(2 pi i f s_j) - 1) / (2 pi i f)`` drops out; at ``f = 0`` the limit ``|sum_j a_j(k) s_j|^2``.
+        ``transform`` is ``(G, qmax)`` from :meth:`_transform` when it is already computed.
         """
-        nb = self.band_index.size
-        out = np.zeros((nb, f.size if basis is None else basis.shape[1]))
-        s = self._s
-        with _one_blas_thread():  # BLAS threads fight the worker processes for the cores
-            for c0 in range(0, f.size, chunk):
-                fc = f[c0:c0 + chunk]
-                twopif = 2 * np.pi * fc
-                zero = fc == 0
-                # sum_j W_nj (exp(2 pi i f s_j) - 1) / (2 pi i f): the rows of W sum to zero, so the -1 drops out
-                # and the 1/(2 pi f)^2 goes into the weight; at f = 0 the limit sum_j W_nj s_j
-                e = np.exp(1j * np.outer(s, twopif))
-                if zero.any():
-                    e[:, zero] = s[:, None]
-                spec = scipy.fft.fft(self._tapered_weights @ e, axis=0, overwrite_x=True)[self.band_index]
-                if self._mean_weights is not None:
-                    spec -= np.outer(self._taper_band, self._mean_weights @ e)
-                k = spec.real ** 2 + spec.imag ** 2  # (band, chunk)
-                with np.errstate(divide="ignore"):
-                    scale = np.where(zero, 1.0, 1.0 / np.where(zero, 1.0, twopif) ** 2)
-                k *= self.dt_days * weight[c0:c0 + chunk] * scale
-                if basis is None:
-                    out[:, c0:c0 + chunk] = k
-                else:
-                    out += k @ basis[c0:c0 + chunk]
-        return out
+        q = np.asarray(q, np.int64)
+        g, qmax = transform if transform is not None else (self._transform(step, np.abs(q).max()), None)
+        qmax = int(np.abs(q).max()) if qmax is None else qmax
+        g = g[:, q + qmax]
+        zero = q == 0
+        if zero.any():
+            g[:, zero] = (self._a @ self._s)[:, None]
+        k = g.real ** 2 + g.imag ** 2  # (band, points)
+        f = q * step
+        scale = 1.0 / np.where(zero, 1.0, 2 * np.pi * f) ** 2
+        k *= self.dt_days * weight * scale
+        if basis is None:
+            return k
+        with _one_blas_thread():  # the same summation order in a serial run and in a process pool
+            return k @ basis
 
     # ------------------------------------------------------------------------------------------------
     def parameters(self, family: ModelFamily) -> tuple[Parameter, ...]:
