@@ -123,3 +123,35 @@ def test_expected_periodogram_equals_quadratic_form(model, theta, modulated, rea
                   for sgn in (1, -1))
         fd = (expected_in_band(fam, up, prep, ctx)[0] - expected_in_band(fam, dn, prep, ctx)[0]) / 2e-6
         assert np.allclose(de_band[j], fd, rtol=1e-5, atol=1e-6 * np.abs(fd).max())
+
+
+@pytest.mark.parametrize("name, theta, fc", [
+    ("matern", [0.02, 1.3, 0.8], None),
+    ("matern+inertial", [0.02, 0.9, 0.05, 0.01, -1.0, 0.3], None),
+    ("matern+inertial", [0.01, 2.2, 3.0, 0.005, 0.7, 0.02], None),
+    ("follow-latitude", [0.02, 1.2, 1.0, 0.01, 0.05, 0.3], -1.3),
+])
+def test_spectral_density_derivatives_against_scipy_differentiate(name, theta, fc):
+    # the exact density derivatives the irregular-fix likelihood uses, in the optimiser's coordinates (log for
+    # scale parameters), against scipy.differentiate.derivative (adaptive finite differences, scipy >= 1.15)
+    from scipy.differentiate import derivative
+
+    fam = get_family("matern+inertial", "follow-latitude") if name == "follow-latitude" else get_family(name)
+    ctx = FitContext(dt_days=1 / 24, inertial_frequency_cpd=fc)
+    theta = np.asarray(theta, float)
+    f = np.r_[-12.0, np.linspace(-3, 3, 61), 0.0, 12.0]
+    s, jac = fam.spectral_density_jacobian(theta, f, ctx)
+    np.testing.assert_allclose(s, np.real(fam.spectral_density(theta, f, ctx)), rtol=1e-13)
+    for j, par in enumerate(fam.parameters):
+        def along(x, j=j, par=par):  # S(f_i) as x_j moves (x = log value for log-scale parameters), elementwise
+            out = np.empty(x.shape)
+            for idx in np.ndindex(*x.shape):
+                th = theta.copy()
+                th[j] = np.exp(x[idx]) if par.scale == "log" else x[idx]
+                out[idx] = np.real(fam._spectral_density(th, f[idx[0]:idx[0] + 1], ctx))[0]
+            return out
+        x0 = np.log(theta[j]) if par.scale == "log" else theta[j]
+        # (the absolute tolerance lets the iteration stop where the derivative crosses zero, at a peak's centre)
+        ref = derivative(along, np.full(f.shape, x0), initial_step=1e-3,
+                         tolerances={"atol": 1e-12 * np.abs(s).max(), "rtol": 1e-9})
+        np.testing.assert_allclose(jac[j], ref.df, rtol=1e-6, atol=1e-6 * np.abs(ref.df).max(), err_msg=par.name)

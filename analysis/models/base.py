@@ -107,6 +107,10 @@ class ModelFamily:
         """Two-sided density in (m/s)^2 per cpd at ``freq_cpd`` (positive = counterclockwise)."""
         return self._spectral_density(self.check_theta(theta), np.asarray(freq_cpd, float), context)
 
+    def spectral_density_jacobian(self, theta, freq_cpd, context: FitContext | None = None):
+        """``S`` and ``dS/dx_j`` for the optimiser coordinates ``x`` (``log`` or the value, per parameter)."""
+        return self._spectral_density_jacobian(self.check_theta(theta), np.asarray(freq_cpd, float), context)
+
     def initial_guess(self, freq_cpd, power, context: FitContext | None = None) -> np.ndarray:
         """Starting values from a periodogram over the fitted band, clipped into the bounds."""
         g = np.asarray(self._initial_guess(np.asarray(freq_cpd, float), np.asarray(power, float), context), float)
@@ -156,6 +160,25 @@ class ModelFamily:
             r_plus, r_minus = self._autocovariance(tp, lags_days, context), self._autocovariance(tm, lags_days, context)
             jac[j] = (r_plus - r_minus) / (2 * h)
         return r, jac
+
+    def _spectral_density_jacobian(self, theta, freq_cpd, context):
+        """Default: ``S`` and central finite differences of ``_spectral_density`` in the optimiser coordinates
+        (step 1e-5, which may leave the bounds by that much); families override with exact ones."""
+        s = np.real(self._spectral_density(theta, freq_cpd, context))
+        jac = np.empty((len(theta), np.size(s)))
+        for j, p in enumerate(self.parameters):
+            h = 1e-5
+            tp, tm = theta.copy(), theta.copy()
+            if p.scale == "log":
+                tp[j] *= np.exp(h)
+                tm[j] *= np.exp(-h)
+            else:
+                h *= max(1.0, abs(theta[j]))
+                tp[j] += h
+                tm[j] -= h
+            jac[j] = np.real(self._spectral_density(tp, freq_cpd, context)
+                             - self._spectral_density(tm, freq_cpd, context)) / (2 * h)
+        return s, jac
 
     def _zero_frequency_density(self, theta, context):
         return float(np.real(self._spectral_density(theta, np.array([0.0]), context))[0])
@@ -225,6 +248,16 @@ class SumFamily(ModelFamily):
     def _spectral_density(self, theta, freq_cpd, context):
         theta = np.asarray(theta, float)
         return sum(p._spectral_density(theta[s], freq_cpd, context) for p, s in self.components())
+
+    def _spectral_density_jacobian(self, theta, freq_cpd, context):
+        theta = np.asarray(theta, float)
+        dens = np.zeros(np.shape(freq_cpd))
+        jac = np.zeros((len(theta), np.size(freq_cpd)))
+        for p, s in self.components():
+            dp, jp = p._spectral_density_jacobian(theta[s], freq_cpd, context)
+            dens += dp
+            jac[s] = jp
+        return dens, jac
 
     def _zero_frequency_density(self, theta, context):
         theta = np.asarray(theta, float)

@@ -64,6 +64,10 @@ class Inertial(ModelFamily):
         f = np.asarray(freq_cpd, float)
         return var * 2 * gam / (gam**2 + (2 * np.pi * (f - f0)) ** 2)
 
+    def _spectral_density_jacobian(self, theta, freq_cpd, context=None):
+        var, f0, gam = theta
+        return _lorentzian_jacobian(var, gam, np.asarray(freq_cpd, float) - f0)
+
     def bounds(self, context: FitContext):
         b = [(p.lower, p.upper) for p in self.parameters]
         fc = context.inertial_frequency_cpd
@@ -126,6 +130,12 @@ class InertialFollowing(ModelFamily):
         f = np.asarray(freq_cpd, float)
         return var * 2 * gam / (gam**2 + (2 * np.pi * (f - fc - delta)) ** 2)
 
+    def _spectral_density_jacobian(self, theta, freq_cpd, context: FitContext):
+        var, delta, gam = theta
+        fc = context.inertial_frequency_cpd if context is not None and context.inertial_frequency_cpd is not None \
+            else 0.0
+        return _lorentzian_jacobian(var, gam, np.asarray(freq_cpd, float) - fc - delta)
+
     def bounds(self, context: FitContext):
         b = [(p.lower, p.upper) for p in self.parameters]
         fc = context.inertial_frequency_cpd if context is not None else None
@@ -142,6 +152,19 @@ class InertialFollowing(ModelFamily):
 
     def _derived(self, theta, context=None):
         return {"inertial_efold_days": float(1.0 / theta[2])}
+
+
+def _lorentzian_jacobian(var, gam, df):
+    """``S = var 2 gamma / (gamma^2 + (2 pi df)^2)`` and its exact derivatives in (log variance, the centre
+    frequency, log gamma), ``df`` the distance from the centre, cpd."""
+    w2 = (2 * np.pi * df) ** 2
+    den = gam**2 + w2
+    s = var * 2 * gam / den
+    jac = np.empty((3, s.size))
+    jac[0] = s
+    jac[1] = s * 2 * (2 * np.pi) ** 2 * df / den
+    jac[2] = s * (1 - 2 * gam**2 / den)
+    return s, jac
 
 
 def modulation_sequence(latitude_series, dt_days) -> np.ndarray:

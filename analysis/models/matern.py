@@ -37,7 +37,7 @@ import functools
 import math
 
 import numpy as np
-from scipy.special import gammaln, kv
+from scipy.special import digamma, gammaln, kv
 
 from .base import FitContext, ModelFamily, Parameter
 
@@ -152,6 +152,18 @@ class Matern(ModelFamily):
         var, alpha, lam = theta
         omega = 2 * np.pi * np.asarray(freq_cpd, float)
         return self._norm(var, alpha, lam) * (omega**2 + lam**2) ** (-alpha)
+
+    def _spectral_density_jacobian(self, theta, freq_cpd, context=None):
+        """``S`` and its exact derivatives in (log variance, alpha, log lambda)."""
+        var, alpha, lam = theta
+        omega2 = (2 * np.pi * np.asarray(freq_cpd, float)) ** 2
+        base = omega2 + lam**2
+        s = self._norm(var, alpha, lam) * base ** (-alpha)
+        jac = np.empty((3, s.size))
+        jac[0] = s
+        jac[1] = s * (2 * np.log(lam) + digamma(alpha) - digamma(alpha - 0.5) - np.log(base))
+        jac[2] = s * ((2 * alpha - 1) - 2 * alpha * lam**2 / base)
+        return s, jac
 
     def _zero_frequency_density(self, theta, context=None):
         var, alpha, lam = theta

@@ -123,7 +123,6 @@ def _one_blas_thread():
 _CONTROLLER = ThreadpoolController()
 #: a fitted factor on the given per-fix position errors (their fix-by-fix structure kept, their level fitted)
 ERROR_SCALE = Parameter("position_error_scale", "1", 0.05, 20.0, "factor on the given per-fix position errors")
-_FD_STEP = 1e-5  # central-difference step of the density in the optimiser's coordinates
 #: requested relative accuracy of the non-uniform FFT that builds the kernel
 _NUFFT_EPS = 1e-10
 
@@ -438,29 +437,12 @@ class IrregularObservation:
         return val, val / s_last * (1 + 1 / ((p + 1) * log_ratio)), -val / ((p + 1) * log_ratio * s_prev)
 
     def _density_stack(self, family, theta, context, jacobian):
-        """``S`` at the nodes and, optionally, ``dS/dx`` (rows) by central differences per component."""
-        nodes = self.nodes_cpd
-        dens = np.zeros(nodes.size)
-        jac = np.zeros((len(theta), nodes.size)) if jacobian else None
-        for comp, sl in family.components():
-            th = theta[sl]
-            dens += np.real(comp.spectral_density(th, nodes, context))
-            if not jacobian:
-                continue
-            # the steps may leave the bounds by 1e-5 (relative): use the family's unchecked density if it has one
-            density = getattr(comp, "_spectral_density", comp.spectral_density)
-            for j, par in enumerate(comp.parameters):
-                tp, tm = th.copy(), th.copy()
-                if par.scale == "log":
-                    tp[j] *= np.exp(_FD_STEP)
-                    tm[j] *= np.exp(-_FD_STEP)
-                    step = _FD_STEP
-                else:
-                    step = _FD_STEP * max(1.0, abs(th[j]))
-                    tp[j] += step
-                    tm[j] -= step
-                jac[sl.start + j] = np.real(density(tp, nodes, context) - density(tm, nodes, context)) / (2 * step)
-        return dens, jac
+        """``S`` at the nodes and, optionally, ``dS/dx`` (rows) in the optimiser's coordinates (exact where the
+        family has them, else central differences: ``ModelFamily._spectral_density_jacobian``)."""
+        theta = family.check_theta(theta)
+        if not jacobian:
+            return np.real(family._spectral_density(theta, self.nodes_cpd, context)), None
+        return family._spectral_density_jacobian(theta, self.nodes_cpd, context)
 
     def _kernel_integral(self, family, theta, context, jacobian):
         """``dt int S K_k df`` over the band (column 0) and its derivatives in the optimiser's coordinates (the
