@@ -96,6 +96,8 @@ on an 'exponential of semicircle' kernel". SIAM J. Sci. Comput. 41, C479-C504. d
 
 from __future__ import annotations
 
+import functools
+
 import finufft
 import numpy as np
 import scipy.fft
@@ -392,7 +394,32 @@ class IrregularObservation:
         x = 2 * np.pi * step * self._s
         if np.abs(x).max() >= np.pi:
             raise ValueError("frequency step too coarse for the window's span")
-        return finufft.nufft1d1(x, self._a, n_modes=2 * int(qmax) + 1, eps=_NUFFT_EPS, isign=1, nthreads=1)
+        m = 2 * int(qmax) + 1
+        pos, partner = self._conjugate_pairs
+        if pos is None:
+            return finufft.nufft1d1(x, self._a, n_modes=m, eps=_NUFFT_EPS, isign=1, nthreads=1)
+        # the weights are real, so a_j(-k) = conj a_j(k) and G_{-k}(f) = conj G_k(-f): transform the positive bins
+        # only and read their partners off the mirrored grid (half the work)
+        g = np.empty((self._a.shape[0], m), complex)
+        g[pos] = finufft.nufft1d1(x, self._a[pos], n_modes=m, eps=_NUFFT_EPS, isign=1, nthreads=1)
+        neg = np.flatnonzero(partner >= 0)
+        g[neg] = np.conj(g[partner[neg], ::-1])
+        return g
+
+    @functools.cached_property
+    def _conjugate_pairs(self):
+        """Rows of the positive band bins, and for each row the row of its mirror bin ``n - k`` (-1 if none);
+        ``(None, None)`` unless every negative bin has its positive mirror in the band."""
+        k = self.band_index
+        where = {int(v): i for i, v in enumerate(k)}
+        partner = np.array([where.get(int((self.n - v) % self.n), -1) if 2 * v > self.n else -1 for v in k])
+        pos = np.flatnonzero(2 * k < self.n)
+        neg = np.flatnonzero(2 * k > self.n)
+        if np.any(partner[neg] < 0) or np.any(2 * k == self.n) or \
+                not np.array_equal(np.sort(partner[neg]), pos[np.isin(pos, partner[neg])]) or \
+                len(neg) != len(pos):
+            return None, None
+        return pos, partner
 
     def _kernel_columns(self, step, q, weight, basis=None, transform=None):
         """``dt * weight_q * K_k(q * step)`` (band x points), or integrated against ``basis`` (band x nodes).
