@@ -199,7 +199,13 @@ def test_monte_carlo_mean_periodogram():
 
 
 # --- derivatives and input checks -------------------------------------------------------------------------
-def test_sandwich_simulator_reproduces_the_expected_periodogram():
+@pytest.mark.parametrize("theta, seed, errors_m", [
+    (THETA, 21, (250.0, 500.0, 1000.0)),
+    # an inertial oscillation decaying over 12 days, smaller errors, fixes spanning 29.5 days: an embedding of twice
+    # the span with its negative eigenvalues clipped put 7 % too much power into parts of the band here
+    (np.array([0.0076, 1.38, 0.987, 0.0103, -1.066, 0.0838]), 25, (100.0, 200.0, 400.0)),
+], ids=["damped", "inertial e-folding 12 days"])
+def test_sandwich_simulator_reproduces_the_expected_periodogram(theta, seed, errors_m):
     """The sandwich's draws of windows observed through irregular fixes (fitting/uncertainty.py: a velocity
     simulated every dt/3 by circulant embedding, integrated, read at the fixes with their errors, interpolated and
     differenced) against the kernel integral of the expected periodogram, a computation that shares nothing with
@@ -207,18 +213,18 @@ def test_sandwich_simulator_reproduces_the_expected_periodogram():
     from driftspec.analysis.fitting.uncertainty import _band_periodograms, irregular_velocities
     from driftspec.analysis.spectral.irregular import IrregularlyObserved
 
-    rng = np.random.default_rng(21)
+    rng = np.random.default_rng(seed)
     n = 720
     fix_times = satellite_times(rng, 30.4, start=-0.2)
     valid = velocity_mask(fix_times, n, mask_hours=24.0)
-    sigma = rng.choice([250.0, 500.0, 1000.0], fix_times.size)
+    sigma = rng.choice(errors_m, fix_times.size)
     prep = prepare_window(np.full(n, 1j), DT, mask=valid, taper="hann", max_freq=2.9)
     obs = IrregularObservation(fix_times, DT, n, valid, "central", prep.taper, position_error_m=sigma,
                                noise="fixed", band_index=prep.band_index, inertial_frequency_cpd=-1.0)
     fam = IrregularlyObserved(get_family("matern+inertial"), obs)  # parameters: THETA, then the errors' scale
-    expected = obs.expected(fam.base, THETA, CTX)
+    expected = obs.expected(fam.base, theta, CTX)
     reps = 2560
-    pg = np.concatenate([_band_periodograms(irregular_velocities(fam, np.r_[THETA, 1.0], prep, CTX, rng, 64), prep)
+    pg = np.concatenate([_band_periodograms(irregular_velocities(fam, np.r_[theta, 1.0], prep, CTX, rng, 64), prep)
                          for _ in range(reps // 64)])
     ratio = pg / expected
     blocks = np.array_split(np.argsort(obs.freq_cpd), 16)  # 16 blocks of adjacent ordinates
