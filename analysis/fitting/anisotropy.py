@@ -99,7 +99,7 @@ from ..spectral.bivariate import (
 )
 from ..spectral.irregular import IrregularlyObserved
 from .estimators import from_x, natural_jacobian, to_x
-from .uncertainty import irregular_velocities, simulator
+from .uncertainty import EMBEDDING_MAX_FACTOR, irregular_velocities, simulator
 
 #: the columns an anisotropic fit adds to a fits table (besides its parameters and their ``_se``)
 TENSOR_COLUMNS = ("diffusivity_major", "diffusivity_minor", "diffusivity_angle_deg")
@@ -257,12 +257,13 @@ def _window_simulator(family: Anisotropic, theta, win: BivariateWindow, context)
         return _irregular_simulator(family, theta, win, context)
     comps = family.components()
     part, psl = comps[family.part_index]
-    draw_part = simulator(part, theta[psl], win.prep, context, max_factor=1)
+    draw_part = simulator(part, theta[psl], win.prep, context, max_factor=EMBEDDING_MAX_FACTOR)
     rest = [(c, sl) for i, (c, sl) in enumerate(comps) if i != family.part_index]
     draw_rest = None
     if rest:
         fam = rest[0][0] if len(rest) == 1 else SumFamily(*[c for c, _ in rest])
-        draw_rest = simulator(fam, np.concatenate([theta[sl] for _, sl in rest]), win.prep, context, max_factor=1)
+        draw_rest = simulator(fam, np.concatenate([theta[sl] for _, sl in rest]), win.prep, context,
+                              max_factor=EMBEDDING_MAX_FACTOR)
     a, b = family.widely_linear_coefficients(theta)
 
     def draw(rng, size):

@@ -21,6 +21,14 @@ from ..spectral.irregular import IrregularlyObserved
 from ..spectral.likelihood import expected_in_band
 
 
+#: the largest circulant embedding of the simulations behind sandwich errors and simulated null distributions, in
+#: multiples of the smallest (twice the series): the smallest non-negative definite one up to this is used. Clipping
+#: the negative eigenvalues of the smallest embedding instead misstates a slowly decaying covariance (an inertial
+#: oscillation with an e-folding time near the window's length): the draws' mean periodogram was then up to 3 times
+#: the expected one in parts of the band of a 700-sample window.
+EMBEDDING_MAX_FACTOR = 4
+
+
 def simulator(family, theta, prep, context, max_factor: int = 64):
     """A function ``rng, size -> (size, n)`` series of the fitted (observed) process by circulant embedding,
     modulated components multiplied by the window's modulation, with the window's missing samples NaN.
@@ -74,12 +82,12 @@ def score_covariance(family, theta, prep, context, free=None, n_sim: int = 64, s
     if seed is None:
         seed = zlib.crc32(prep.periodogram.tobytes())
     rng = np.random.default_rng(seed)
-    # an embedding of 2 N (negative eigenvalues clipped): a variance estimated from 64 draws needs no exact
-    # long-lag covariance, and this bounds the cost (checked against the Isserlis formula in the tests)
+    # the smallest non-negative definite embedding up to 8 N (EMBEDDING_MAX_FACTOR; checked against the Isserlis
+    # formula in the tests)
     if isinstance(family, IrregularlyObserved):
         pg = _irregular_periodograms(family, np.asarray(theta, float), prep, context, rng, n_sim)
     else:
-        z = simulator(family, theta, prep, context, max_factor=1)(rng, n_sim)
+        z = simulator(family, theta, prep, context, max_factor=EMBEDDING_MAX_FACTOR)(rng, n_sim)
         pg = _band_periodograms(z, prep)
     scores = (1.0 - pg / e_band) @ dlog.T  # (n_sim, free)
     return np.atleast_2d(np.cov(scores, rowvar=False))
@@ -130,10 +138,7 @@ def irregular_velocities(family, theta, prep, context, rng, n_sim: int, improper
                 r += rc * np.exp(2j * np.pi * fc * lag) if comp.modulated else rc
             return r
 
-        # the smallest non-negative definite embedding up to 8 n_f: 2 n_f with clipped eigenvalues misstates a slowly
-        # decaying covariance (an inertial peak of e-folding time near the window's length: the draws' mean
-        # periodogram then departs from the expected one by up to 15 % in parts of the band)
-        r = np.asarray(embedding_autocovariance(acov, n_f, dt_f, max_factor=4), complex)
+        r = np.asarray(embedding_autocovariance(acov, n_f, dt_f, max_factor=EMBEDDING_MAX_FACTOR), complex)
         half = r.size - 1
         row = np.concatenate([r, np.conj(r[1:half][::-1])])
         amp = np.sqrt(np.clip(scipy.fft.fft(row).real, 0, None) * (row.size / 2.0)).astype(np.float32)
