@@ -70,6 +70,9 @@ CAUTION = (
 COLOURS = {"cw": "#b5522b", "ccw": "#1f7a7a", "model": "#20203a", "band": "#9aa0b4", "track": "#ff2d7a",
            "tide": "#7a6a00", "inertial": "#6a2fb5", "land": "#d9d4c7", "coast": "#6b6b6b", "grid": "#8c96a0"}
 MIN_COVERAGE = 0.5
+#: the track map's frame, screen pixels
+MAP_HEIGHT = 480
+MAP_WIDTH = int(MAP_HEIGHT * MAP_RATIO)
 
 
 def spec_of(st: ExplorerState) -> FitSpec:
@@ -599,7 +602,11 @@ class Explorer(param.Parameterized):
         tpl = OfflineTemplate(
             title=self.title, sidebar=[Controls(ex=self)], main=[self.main_area()],
             header_background="#0d1620" if dark else "#1d2b3a", sidebar_width=320,
-            theme="dark" if dark else "default", raw_css=[PRESENTATION_CSS])
+            theme="dark" if dark else "default", raw_css=[PRESENTATION_CSS],
+            # no header busy spinner: Panel's busy state is one for the whole server, so every open page's spinner
+            # turned (an animation redrawn by the browser many times a second) and was switched on and off whenever
+            # any other session was handling an event; each page shows its own jobs' progress and status instead
+            busy_indicator=None)
         self.start()
         if self.doc is not None:
             pn.state.on_session_destroyed(lambda _ctx: self.cancel())  # a closed page stops its jobs
@@ -694,6 +701,23 @@ def _on_server() -> bool:
     a notebook they are drawn with the cell, so that Panel inlines their style sheets (offline notebooks)."""
     doc = pn.state.curdoc
     return doc is not None and getattr(doc, "session_context", None) is not None
+
+
+#: a still "drawing ..." note instead of Panel's spinning loading indicator on panels drawn after the page has
+#: loaded: the spinner is an animated image that the browser redraws many times a second for as long as the page
+#: waits, which on a busy server with many pages opening costs more browser time than drawing the page itself
+STILL_LOADING_CSS = """
+:host(.pn-loading):before, .pn-loading:before {
+  -webkit-mask-image: none !important; mask-image: none !important; background-color: transparent !important;
+  content: 'drawing \\2026'; width: auto !important; height: auto !important; color: #5a6270; font-size: 1.1em;
+}
+"""
+
+
+def deferred(obj, **params):
+    """``obj`` (a function or method) drawn after the page has loaded on a server, with a still loading note."""
+    on_server = _on_server()
+    return pn.panel(obj, defer_load=on_server, stylesheets=[STILL_LOADING_CSS] if on_server else [], **params)
 
 
 class View(pn.viewable.Viewer):
@@ -813,8 +837,11 @@ class TrackMap(View):
         data, st = self.ex.data, self.state
         dr = self.date_range.param.value if self.date_range is not None else None
         pts = hv.DynamicMap(pn.bind(self._points, st.param.color_by, dr))
-        shaded = dynspread(rasterize(pts, aggregator=dsh.mean("value"), width=900, height=560),
-                           threshold=0.6, max_px=2)
+        # rasterized at the frame's size (times the screen's pixel ratio) from the start, and again only when the
+        # view is zoomed or panned: with the default plot-size stream the first image (900 x 560) was redrawn at
+        # the frame's size as soon as the browser reported it, so every page drew and sent the map twice
+        shaded = dynspread(rasterize(pts, aggregator=dsh.mean("value"), width=MAP_WIDTH, height=MAP_HEIGHT,
+                                     streams=[hv.streams.RangeXY]), threshold=0.6, max_px=2)
         shaded = shaded.apply.opts(
             clabel=pn.bind(lambda c: {"speed": "speed (m/s)", "time": "days since first fix"}.get(c, c),
                            st.param.color_by), cmap="fire", colorbar=True, cnorm="eq_hist", tools=["tap", "box_select"])
@@ -838,7 +865,7 @@ class TrackMap(View):
                                     self.ex.param.current_window))
         (x0, x1), (y0, y1) = data.extent
         return functools.reduce(operator.mul, [geo[0], shaded, *geo[1:], picker, sel, box, ell]).opts(
-            hv.opts.Overlay(frame_height=480, frame_width=int(480 * MAP_RATIO), title="All tracks", xlim=(x0, x1),
+            hv.opts.Overlay(frame_height=MAP_HEIGHT, frame_width=MAP_WIDTH, title="All tracks", xlim=(x0, x1),
                             ylim=(y0, y1), active_tools=["wheel_zoom"], bgcolor="#eef2f5",
                             legend_position="bottom_left", **axis))
 
@@ -861,7 +888,7 @@ class TrackMap(View):
 
     def __panel__(self):
         # rendered after the page has loaded (in Panel's thread pool on a server), so opening a page is quick
-        return pn.Column(pn.panel(lambda: pn.pane.HoloViews(self.plot()), defer_load=_on_server()), self.readout,
+        return pn.Column(deferred(lambda: pn.pane.HoloViews(self.plot())), self.readout,
                          sizing_mode="stretch_width")
 
 
@@ -912,7 +939,7 @@ class VelocityView(View):
             title=f"{st.track}: velocity; {len(ws)} windows of {st.window_days:g} days"))
 
     def __panel__(self):
-        return pn.panel(self.plot, sizing_mode="stretch_width", defer_load=_on_server())
+        return deferred(self.plot, sizing_mode="stretch_width")
 
 
 class SpectrumView(View):
@@ -1009,7 +1036,7 @@ class SpectrumView(View):
         return row if comp is None else pn.Column(row, comp, sizing_mode="stretch_width")
 
     def __panel__(self):
-        return pn.Column(pn.panel(self.plot, defer_load=_on_server()), sizing_mode="stretch_width")
+        return pn.Column(deferred(self.plot), sizing_mode="stretch_width")
 
 
 class FitTable(View):

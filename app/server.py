@@ -102,6 +102,12 @@ def configure_panel() -> None:
     session's drawing never holds up another session's page (Panel's "Enable Automatic Threading")."""
     pn.config.nthreads = 4
     pn.config.inline = True  # every resource from this server: the page works with no network
+    # plots drawn on 2-D canvases, not WebGL: they are small (hundreds to thousands of points; the map is one
+    # raster image), which a canvas draws at once, while WebGL on a machine without a usable GPU runs in software
+    # emulation and cost the browser several CPU-seconds per opened page
+    import holoviews as hv
+
+    hv.renderer("bokeh").webgl = False
 
 
 def make_app(input_path: Path, fits_path: Path | None = None, first_look: bool = True):
