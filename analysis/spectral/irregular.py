@@ -408,16 +408,15 @@ class IrregularObservation:
 
     @functools.cached_property
     def _conjugate_pairs(self):
-        """Rows of the positive band bins, and for each row the row of its mirror bin ``n - k`` (-1 if none);
-        ``(None, None)`` unless every negative bin has its positive mirror in the band."""
+        """Rows of the positive band bins, and for each row the row of its mirror bin ``n - k`` (-1 for the
+        positive rows); ``(None, None)`` unless the band's negative bins mirror its positive ones one to one."""
         k = self.band_index
-        where = {int(v): i for i, v in enumerate(k)}
-        partner = np.array([where.get(int((self.n - v) % self.n), -1) if 2 * v > self.n else -1 for v in k])
-        pos = np.flatnonzero(2 * k < self.n)
-        neg = np.flatnonzero(2 * k > self.n)
-        if np.any(partner[neg] < 0) or np.any(2 * k == self.n) or \
-                not np.array_equal(np.sort(partner[neg]), pos[np.isin(pos, partner[neg])]) or \
-                len(neg) != len(pos):
+        row_of = {int(v): i for i, v in enumerate(k)}
+        pos, neg = np.flatnonzero(2 * k < self.n), np.flatnonzero(2 * k > self.n)
+        partner = np.full(k.size, -1)
+        partner[neg] = [row_of.get(int(self.n - k[i]), -1) for i in neg]
+        if len(pos) != len(neg) or np.any(2 * k == self.n) or np.any(partner[neg] < 0) \
+                or np.unique(partner[neg]).size != neg.size:
             return None, None
         return pos, partner
 
