@@ -205,6 +205,8 @@ def test_goodness_of_fit_pvalue_matches_scipy_kstest(rng):
     # an inertial oscillation decaying over 12 days in an 11-day window: the covariance is far from zero at the
     # window's length, where a circulant embedding of twice the window wraps around
     ("matern+inertial", [0.0076, 1.38, 0.987, 0.0103, -1.066, 0.0838]),
+    # a Matérn background decorrelating over 20 days (damping 0.05 per day) in the same window
+    ("matern", [0.02, 1.2, 0.05]),
 ])
 def test_score_covariance_matches_gaussian_quadratic_form_formula(model, theta):
     # For a proper complex Gaussian series the tapered DFT J of the demeaned series is Gaussian with
@@ -241,7 +243,7 @@ def test_score_covariance_matches_gaussian_quadratic_form_formula(model, theta):
     assert np.allclose(np.diag(sim), np.diag(exact), rtol=0.06)  # 6000 draws: ~2 % sampling error
     corr = lambda a: a / np.sqrt(np.outer(np.diag(a), np.diag(a)))  # noqa: E731
     assert np.allclose(corr(sim), corr(exact), atol=0.03)
-    if model == "matern":  # and gaps make it far from the Fisher information times N sum h^4 for log lambda
+    if theta[2] == 1.0:  # and gaps make it far from the Fisher information times N sum h^4 for log lambda
         fisher = u @ u.T
         assert exact[2, 2] > 1.3 * fisher[2, 2] * prep.variance_inflation
 
@@ -319,3 +321,21 @@ def test_anisotropic_candidate_is_selected_for_a_flow_with_a_preferred_direction
     assert {r["model"] for r in rows} == {"matern", a.model} and sum(bool(r["selected"]) for r in rows) == 1
     iso = next(r for r in rows if r["model"] == "matern")
     assert iso["diffusivity_major"] == iso["diffusivity_minor"] == iso["diffusivity"]
+
+
+def test_ou_series_has_the_closed_form_autocovariance():
+    # the exact AR(1) recursion behind the sandwich's draws of damped oscillations: sample autocovariance of
+    # 4000 series against var exp((2 pi i f0 - gamma) tau), the complex OU process's closed form
+    from driftspec.analysis.fitting.uncertainty import ou_series
+
+    var, f0, gam, dt = 0.01, -1.07, 0.09, 1 / 72
+    rng = np.random.default_rng(11)
+    z = ou_series(var, 2j * np.pi * f0 - gam, 400, dt, rng, 4000)
+    for lag in (0, 1, 17, 200, 399):
+        emp = np.mean(z[:, lag:] * np.conj(z[:, : z.shape[1] - lag]))
+        ref = var * np.exp((2j * np.pi * f0 - gam) * lag * dt)
+        # the sample mean of 4000 x (400 - lag) products, strongly correlated along a series: ~2 % of var
+        assert abs(emp - ref) < 0.05 * var, (lag, emp, ref)
+    # stationary from the first sample to the last (sampling error of each mean of 4000 |z|^2: 1.6 %)
+    assert np.mean(np.abs(z[:, 0]) ** 2) == pytest.approx(var, rel=0.06)
+    assert np.mean(np.abs(z[:, -1]) ** 2) == pytest.approx(var, rel=0.06)

@@ -1,7 +1,8 @@
 """Uncertainty beyond the Fisher information: the simulated score covariance of the debiased Whittle sandwich,
 and simulation of the fitted (observed) process for the parametric bootstrap.
 
-Both draw series from the fitted model by circulant embedding (C. R. Dietrich, G. N. Newsam, "Fast and exact
+Both draw series from the fitted model, damped oscillations (complex OU processes) by their exact AR(1) recursion
+and the rest by circulant embedding (C. R. Dietrich, G. N. Newsam, "Fast and exact
 simulation of stationary Gaussian processes through circulant embedding of the covariance matrix", SIAM J. Sci.
 Comput. 18, 1088-1107, 1997) with the window's mask, taper and mean removal, so what they measure is the spread
 of what was actually observed. "The debiased Whittle likelihood", Biometrika 106(2), 251-266 (2019),
@@ -14,8 +15,10 @@ import zlib
 
 import numpy as np
 import scipy.fft
+import scipy.signal
 
 from ..conventions import SECONDS_PER_DAY
+from ..models.inertial import Inertial, InertialFollowing
 from ..simulation.simulate import embedding_autocovariance
 from ..spectral.irregular import IrregularlyObserved
 from ..spectral.likelihood import expected_in_band
@@ -23,9 +26,10 @@ from ..spectral.likelihood import expected_in_band
 
 #: the largest circulant embedding of the simulations behind sandwich errors and simulated null distributions, in
 #: multiples of the smallest (twice the series): the smallest non-negative definite one up to this is used. Clipping
-#: the negative eigenvalues of the smallest embedding instead misstates a slowly decaying covariance (an inertial
-#: oscillation with an e-folding time near the window's length): the draws' mean periodogram was then up to 3 times
-#: the expected one in parts of the band of a 700-sample window.
+#: the negative eigenvalues of the smallest embedding instead misstates a slowly decaying covariance: for an inertial
+#: oscillation with an e-folding time near the window's length (now drawn by its recursion instead) the draws' mean
+#: periodogram was up to 3 times the expected one in parts of the band of a 700-sample window; a Matérn background
+#: with a small damping still needs the larger embedding (checked against the Isserlis formula in the tests).
 EMBEDDING_MAX_FACTOR = 4
 
 
@@ -37,8 +41,11 @@ def simulator(family, theta, prep, context, max_factor: int = 64):
     set to zero): slowly decaying models otherwise need embeddings many times the window.
     """
     theta = np.asarray(theta, float)
-    # independent stationary components add up to one stationary process: one embedding for all of them
+    # damped oscillations (complex OU processes) exactly by their recursion; independent stationary components
+    # otherwise add up to one stationary process: one embedding for all of them
     parts = family.components()
+    ou = [(c, sl) for c, sl in parts if isinstance(c, (Inertial, InertialFollowing))]
+    parts = [(c, sl) for c, sl in parts if not isinstance(c, (Inertial, InertialFollowing))]
     steady = [(c, sl) for c, sl in parts if not c.modulated]
     groups = [(False, lambda lag: sum(c.autocovariance(theta[sl], lag, context) for c, sl in steady))] if steady \
         else []
@@ -54,6 +61,10 @@ def simulator(family, theta, prep, context, max_factor: int = 64):
 
     def draw(rng, size):
         z = np.zeros((size, prep.n), complex)
+        for comp, sl in ou:
+            var, f0, gam = theta[sl]
+            x = ou_series(var, 2j * np.pi * f0 - gam, prep.n, prep.dt_days, rng, size)
+            z += x * prep.modulation if comp.modulated else x
         for modulated, amp in comps:
             # z_j = sum_k sqrt(lam_k / m) eps_k exp(+2 pi i j k / m), eps standard complex normal
             # (single-precision normals: twice as fast to draw, ample for a variance)
@@ -113,7 +124,7 @@ def _irregular_periodograms(family, theta, prep, context, rng, n_sim: int) -> np
 
 def irregular_velocities(family, theta, prep, context, rng, n_sim: int, improper=None) -> np.ndarray:
     """Velocity windows ``(n_sim, n)`` (m/s, zero where invalid) observed as this one was from irregular fixes:
-    the ocean velocity simulated every ``dt / 3`` by circulant embedding, integrated to positions, read at the fix
+    the ocean velocity simulated every ``dt / 3`` (:func:`simulator`'s methods), integrated to positions, read at the fix
     times, given the fixes' errors (scaled as fitted) or the fitted white noise, interpolated to the grid and
     differenced through the window's own operator (``family.operator.weights``).
 
@@ -131,6 +142,15 @@ def irregular_velocities(family, theta, prep, context, rng, n_sim: int, improper
     special = None if improper is None else improper[0]
 
     def draw(parts):  # one proper complex series (n_sim, n_f) of the summed components
+        ou = [(c, sl) for _, (c, sl) in parts if isinstance(c, (Inertial, InertialFollowing))]
+        out = None
+        for comp, sl in ou:  # damped oscillations exactly by their recursion (no embedding to outgrow)
+            var, f0, gam = ocean[sl]
+            x = ou_series(var, 2j * np.pi * (f0 + (fc if comp.modulated else 0.0)) - gam, n_f, dt_f, rng, n_sim)
+            out = x if out is None else out + x
+        parts = [(i, (c, sl)) for i, (c, sl) in parts if not isinstance(c, (Inertial, InertialFollowing))]
+        if not parts:
+            return out
         def acov(lag):  # a latitude-following part at the window's mean inertial frequency, as the operator has it
             r = np.zeros(len(lag), complex)
             for _, (comp, sl) in parts:
@@ -146,7 +166,8 @@ def irregular_velocities(family, theta, prep, context, rng, n_sim: int, improper
         # draws); the positions are summed in double precision below
         eps = rng.standard_normal((n_sim, 2 * amp.size), dtype=np.float32).view(np.complex64)
         eps *= amp
-        return scipy.fft.ifft(eps, axis=-1, overwrite_x=True)[:, :n_f]  # m/s, complex64
+        x = scipy.fft.ifft(eps, axis=-1, overwrite_x=True)[:, :n_f]  # m/s, complex64
+        return x if out is None else out + x
 
     rest = [c for c in comps if c[0] != special]
     v = draw(rest) if rest else np.zeros((n_sim, n_f), complex)
@@ -165,6 +186,17 @@ def irregular_velocities(family, theta, prep, context, rng, n_sim: int, improper
         sigma = np.zeros(s.size)
     pos = pos + sigma * (rng.standard_normal(pos.shape) + 1j * rng.standard_normal(pos.shape))
     return (op.weights @ pos.T).T / SECONDS_PER_DAY  # m/s on the grid (zero rows where invalid)
+
+
+def ou_series(var: float, rate: complex, n: int, dt_days: float, rng, size: int) -> np.ndarray:
+    """``size`` stationary complex Ornstein-Uhlenbeck series ``(size, n)`` with ``E[z(t + tau) conj z(t)] = var
+    exp(rate tau)`` (``rate = 2 pi i f0 - gamma``, per day) sampled every ``dt_days``: exactly, by the AR(1)
+    recursion ``z_t = phi z_(t-1) + e_t``, ``phi = exp(rate dt)``, ``E|e_t|^2 = var (1 - |phi|^2)``, from a
+    stationary ``z_0`` (a linear filter along the series, ``scipy.signal.lfilter``)."""
+    phi = np.exp(rate * dt_days)
+    e = (rng.standard_normal((size, n)) + 1j * rng.standard_normal((size, n))) * np.sqrt(0.5 * var)
+    e[:, 1:] *= np.sqrt(max(1.0 - abs(phi) ** 2, 0.0))
+    return scipy.signal.lfilter([1.0], [1.0, -phi], e, axis=-1)
 
 
 def _interp_rows(x, at):
