@@ -433,7 +433,7 @@ class Explorer(param.Parameterized):
     def on_first_look(self, job):
         """The shared first-look job reported: show its progress, and its fits when no others were chosen."""
         if job.status == "done" and job.result is not None and not self._user_fits:
-            df = pd.DataFrame([r for rows in job.result for r in rows])
+            df = self.data.first_look_table()
             if len(df):
                 self._set(all_fits=df)
                 self._refresh_param_choices()
@@ -837,11 +837,14 @@ class TrackMap(View):
         data, st = self.ex.data, self.state
         dr = self.date_range.param.value if self.date_range is not None else None
         pts = hv.DynamicMap(pn.bind(self._points, st.param.color_by, dr))
-        # rasterized at the frame's size (times the screen's pixel ratio) from the start, and again only when the
-        # view is zoomed or panned: with the default plot-size stream the first image (900 x 560) was redrawn at
-        # the frame's size as soon as the browser reported it, so every page drew and sent the map twice
+        # rasterized once per page, at the frame's size (times the screen's pixel ratio) over the map's extent, and
+        # again only when the view is zoomed or panned: with the default plot-size stream the first image
+        # (900 x 560) was redrawn at the frame's size as soon as the browser reported it, and without the extent
+        # the first image covered the data's own range and was redrawn over the map's range at once
+        (x0, x1), (y0, y1) = data.extent
         shaded = dynspread(rasterize(pts, aggregator=dsh.mean("value"), width=MAP_WIDTH, height=MAP_HEIGHT,
-                                     streams=[hv.streams.RangeXY]), threshold=0.6, max_px=2)
+                                     x_range=(x0, x1), y_range=(y0, y1), streams=[hv.streams.RangeXY]),
+                           threshold=0.6, max_px=2)
         shaded = shaded.apply.opts(
             clabel=pn.bind(lambda c: {"speed": "speed (m/s)", "time": "days since first fix"}.get(c, c),
                            st.param.color_by), cmap="fire", colorbar=True, cnorm="eq_hist", tools=["tap", "box_select"])
@@ -863,7 +866,6 @@ class TrackMap(View):
         box = hv.DynamicMap(pn.bind(self._region_box, st.param.region))
         ell = hv.DynamicMap(pn.bind(self._anisotropy_ellipse, self.ex.param.current_anisotropic,
                                     self.ex.param.current_window))
-        (x0, x1), (y0, y1) = data.extent
         return functools.reduce(operator.mul, [geo[0], shaded, *geo[1:], picker, sel, box, ell]).opts(
             hv.opts.Overlay(frame_height=MAP_HEIGHT, frame_width=MAP_WIDTH, title="All tracks", xlim=(x0, x1),
                             ylim=(y0, y1), active_tools=["wheel_zoom"], bgcolor="#eef2f5",
@@ -1179,7 +1181,8 @@ class TrackSummary(View):
                          sizing_mode="stretch_width")
 
     def __panel__(self):
-        return pn.Column(self.plot, sizing_mode="stretch_width")
+        # drawn when its tab is first shown (not on every new track fit of a page that never shows it)
+        return pn.Column(pn.panel(self.plot, lazy=True), sizing_mode="stretch_width")
 
 
 class ParameterMap(View):
@@ -1315,7 +1318,8 @@ class ParameterMap(View):
         binsz = pn.widgets.FloatSlider.from_param(self.state.param.bin_deg, name="Bin size (degrees)")
         values = pn.widgets.RadioButtonGroup.from_param(self.state.param.map_values, name="Values per bin")
         ell = pn.widgets.Checkbox.from_param(self.state.param.ellipses, name="Variance ellipses")
-        return pn.Column(pn.Row(mp, binsz, pn.Column(values, ell), self.fit_all), pn.panel(self.plot),
+        # drawn when its tab is first shown: every open page redrew its hidden map when the first look finished
+        return pn.Column(pn.Row(mp, binsz, pn.Column(values, ell), self.fit_all), pn.panel(self.plot, lazy=True),
                          sizing_mode="stretch_width")
 
 
@@ -1353,7 +1357,7 @@ class DispersionView(View):
     def __panel__(self):
         button = pn.widgets.Button(name="Compute dispersion", button_type="primary")
         button.on_click(self.ex.compute_dispersion)
-        return pn.Column(button, self.plot, sizing_mode="stretch_width")
+        return pn.Column(button, pn.panel(self.plot, lazy=True), sizing_mode="stretch_width")
 
 
 class Controls(View):

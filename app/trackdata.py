@@ -50,6 +50,7 @@ class TrackData:
         self.extent = widen_to_ratio(*data_extent(self.proj, self.points["x"], self.points["y"]), MAP_RATIO)
         self._lock = threading.Lock()
         self.first_look: Job | None = None
+        self._first_look_table: pd.DataFrame | None = None
         self._subscribers: weakref.WeakSet = weakref.WeakSet()
 
     def track_velocity(self, track_id: str) -> pd.DataFrame:
@@ -76,6 +77,16 @@ class TrackData:
                           label="first look", key=("first look", spec.to_json()))
                 self.first_look = job.start()
             return self.first_look
+
+    def first_look_table(self) -> pd.DataFrame | None:
+        """The first look's fits table once it is done: built once, shared (read-only) by every session."""
+        job = self.first_look
+        if job is None or job.status != "done" or job.result is None:
+            return None
+        with self._lock:
+            if getattr(self, "_first_look_table", None) is None:
+                self._first_look_table = pd.DataFrame([r for rows in job.result for r in rows])
+            return self._first_look_table
 
     def subscribe(self, explorer) -> None:
         self._subscribers.add(explorer)
