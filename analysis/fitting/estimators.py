@@ -275,6 +275,12 @@ def get_estimator(name: str) -> Estimator:
     return ESTIMATORS[name]()
 
 
+#: the scoring's initial damping (relative to the Fisher information's diagonal). Measured on 40 demo tracks (112
+#: windows): 1e-2 instead of 1e-3 took the irregular-fix fits from 25.3 to 22.0 evaluations on average, the
+#: regular-grid ones from 15.6 to 15.9 and clean hourly windows unchanged at 5.6, with the same optima.
+_MU0 = 1e-2
+
+
 def _fisher_scoring(problem: Problem, x0, max_iter=60):
     """Levenberg-Marquardt-damped Fisher scoring for the debiased Whittle objective.
 
@@ -310,7 +316,7 @@ def _fisher_scoring(problem: Problem, x0, max_iter=60):
     # ones; a poorly determined parameter (tiny curvature) would otherwise jump from bound to bound
     scales = [p.scale for p, f in zip(family.parameters, free) if f]
     cap = np.array([3.0 if sc == "log" else 0.5 * (h - l) for sc, l, h in zip(scales, lo, hi)])
-    mu, nu = 1e-3, 2.0
+    mu, nu = _MU0, 2.0
     flat = 0  # accepted steps in a row that changed the objective by a negligible amount
     success, message = False, "maximum iterations reached"
     for _ in range(max_iter):
