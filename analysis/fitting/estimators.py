@@ -275,7 +275,7 @@ def get_estimator(name: str) -> Estimator:
     return ESTIMATORS[name]()
 
 
-#: the scoring's initial damping (relative to the Fisher information's diagonal). Measured on 40 demo tracks (112
+#: the scoring's initial damping (relative to the Fisher information's diagonal). Measured on 40 demo tracks (104
 #: windows): 1e-2 instead of 1e-3 took the irregular-fix fits from 25.3 to 22.0 evaluations on average, the
 #: regular-grid ones from 15.6 to 15.9 and clean hourly windows unchanged at 5.6, with the same optima.
 _MU0 = 1e-2
