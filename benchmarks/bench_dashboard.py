@@ -1,9 +1,10 @@
 """Dashboard speed, in one run: first render of the demo page in Chromium, map re-render after zooming at 10 and
 50 million points, refit latency (a changed window length to its fit on the page's state, through the worker
 processes), and the time until ten sessions opened together have all rendered, with the server's peak memory
-(the server process and its fit workers).
+(the server process and its fit workers); with --page-cpu also the CPU seconds one more opened page costs the
+server, its fit workers and the browser (all pages share one headless Chromium and the machine's cores).
 
-    python benchmarks/bench_dashboard.py [--sizes 10000000 50000000] [--sessions 10]
+    python benchmarks/bench_dashboard.py [--sizes 10000000 50000000] [--sessions 10] [--page-cpu]
 """
 
 import argparse
@@ -117,6 +118,65 @@ def pages(n_sessions):
         proc.wait(20)
 
 
+def _cpu_by_kind(root_pid):
+    """CPU seconds so far of this process's children by kind: the server, its fit workers (background ones apart),
+    and the browser's processes by type (needs psutil)."""
+    import psutil
+
+    out = {}
+    for k in psutil.Process(root_pid).children(recursive=True):
+        try:
+            cmd = " ".join(k.cmdline())
+            t = k.cpu_times()
+            nice = k.nice()
+        except psutil.Error:
+            continue
+        if "driftspec" in cmd:
+            kind = "server"
+        elif "multiprocessing" in cmd:
+            kind = "background workers" if nice > 0 else "workers"
+        elif "chrom" in cmd:
+            kind = "browser " + (cmd.split("--type=")[1].split()[0] if "--type=" in cmd else "main")
+        else:
+            continue
+        out[kind] = out.get(kind, 0.0) + t.user + t.system
+    return out
+
+
+def page_cpu(track="TB31-0003", settle_s=10.0):
+    """CPU seconds by process kind for one more page opened after a first page has warmed the server: until it has
+    rendered, and in the ``settle_s`` seconds after (deferred plots, the rest of its fits)."""
+    from playwright.sync_api import sync_playwright
+
+    proc, url = _start_server()
+    try:
+        time.sleep(1.0)
+        with sync_playwright() as p:
+            b = p.chromium.launch(executable_path=CHROMIUM, headless=True, args=CHROMIUM_ARGS)
+            page = b.new_page(viewport={"width": 1500, "height": 1200})
+            page.goto(url, timeout=300_000)
+            _rendered(page)
+            page.wait_for_timeout(8000)
+            page.close()
+            before = _cpu_by_kind(os.getpid())
+            t0 = time.perf_counter()
+            page = b.new_page(viewport={"width": 1500, "height": 1200})
+            page.goto(f"{url}?track={track}", timeout=300_000)
+            _rendered(page)
+            t_render = time.perf_counter() - t0
+            rendered = _cpu_by_kind(os.getpid())
+            page.wait_for_timeout(int(1000 * settle_s))
+            after = _cpu_by_kind(os.getpid())
+            b.close()
+    finally:
+        proc.terminate()
+        proc.wait(20)
+
+    def diff(a, b):
+        return {k: round(b.get(k, 0) - a.get(k, 0), 1) for k in sorted(b) if b.get(k, 0) - a.get(k, 0) >= 0.05}
+    return t_render, diff(before, rendered), diff(rendered, after)
+
+
 def rerender(n, repeats=5):
     import datashader as dsh
     import holoviews as hv
@@ -162,6 +222,8 @@ def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--sizes", type=int, nargs="*", default=[10_000_000, 50_000_000])
     ap.add_argument("--sessions", type=int, default=10)
+    ap.add_argument("--page-cpu", action="store_true",
+                    help="also: CPU seconds by process (server, fit workers, browser) of one more opened page")
     a = ap.parse_args()
     print(f"machine: {os.cpu_count()} cores, load average {os.getloadavg()[0]:.1f} (other work slows every number)")
     lat = refit_latency()
@@ -178,6 +240,10 @@ def main():
         print(f"{a.sessions} sessions opened together: all rendered after {max(done):.1f} s (median "
               f"{statistics.median(done):.1f} s)  target < 20 s; server peak memory {peak:.0f} MB "
               f"(server and fit workers)")
+        if a.page_cpu:
+            t_render, until, settle = page_cpu()
+            print(f"one more page: rendered after {t_render:.1f} s; CPU seconds until then {until}, in the 10 s "
+                  f"after {settle} (background workers: the first look, shared by every page)")
 
 
 if __name__ == "__main__":
