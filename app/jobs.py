@@ -41,8 +41,13 @@ IN_FLIGHT = 2
 
 
 def _warm():
+    """Initializer of every fit worker: BLAS and OpenMP on one thread (a window's matrices are small; library threads
+    only contend with the other workers and the server, as in ``driftspec fit``), then the Matérn tables."""
+    from threadpoolctl import threadpool_limits
+
     from driftspec.analysis.models.matern import _tables
 
+    threadpool_limits(limits=1)
     _tables()
 
 
