@@ -142,23 +142,28 @@ class ModelFamily:
     def _initial_guess(self, freq_cpd, power, context):
         raise NotImplementedError
 
-    def _autocovariance_jacobian(self, theta, lags_days, context):
-        """Default: central finite differences of ``_autocovariance``; families override with exact ones."""
-        r = self._autocovariance(theta, lags_days, context)
-        jac = np.empty((len(theta), len(r)), dtype=complex)
+    def _central_steps(self, theta, h):
+        """``(j, theta + step e_j, theta - step e_j, step)`` per parameter, the step ``h`` in the optimiser's
+        coordinates (relative for log-scaled parameters, scaled by ``max(1, |value|)`` for linear ones)."""
         for j, p in enumerate(self.parameters):
-            h = 1e-6
             tp, tm = theta.copy(), theta.copy()
             if p.scale == "log":
                 tp[j] *= np.exp(h)
                 tm[j] *= np.exp(-h)
+                step = h
             else:
                 step = h * max(1.0, abs(theta[j]))
                 tp[j] += step
                 tm[j] -= step
-                h = step
-            r_plus, r_minus = self._autocovariance(tp, lags_days, context), self._autocovariance(tm, lags_days, context)
-            jac[j] = (r_plus - r_minus) / (2 * h)
+            yield j, tp, tm, step
+
+    def _autocovariance_jacobian(self, theta, lags_days, context):
+        """Default: central finite differences of ``_autocovariance``; families override with exact ones."""
+        r = self._autocovariance(theta, lags_days, context)
+        jac = np.empty((len(theta), len(r)), dtype=complex)
+        for j, tp, tm, step in self._central_steps(theta, 1e-6):
+            jac[j] = (self._autocovariance(tp, lags_days, context) - self._autocovariance(tm, lags_days, context)) \
+                / (2 * step)
         return r, jac
 
     def _spectral_density_jacobian(self, theta, freq_cpd, context):
@@ -166,18 +171,9 @@ class ModelFamily:
         (step 1e-5, which may leave the bounds by that much); families override with exact ones."""
         s = np.real(self._spectral_density(theta, freq_cpd, context))
         jac = np.empty((len(theta), np.size(s)))
-        for j, p in enumerate(self.parameters):
-            h = 1e-5
-            tp, tm = theta.copy(), theta.copy()
-            if p.scale == "log":
-                tp[j] *= np.exp(h)
-                tm[j] *= np.exp(-h)
-            else:
-                h *= max(1.0, abs(theta[j]))
-                tp[j] += h
-                tm[j] -= h
+        for j, tp, tm, step in self._central_steps(theta, 1e-5):
             jac[j] = np.real(self._spectral_density(tp, freq_cpd, context)
-                             - self._spectral_density(tm, freq_cpd, context)) / (2 * h)
+                             - self._spectral_density(tm, freq_cpd, context)) / (2 * step)
         return s, jac
 
     def _zero_frequency_density(self, theta, context):
