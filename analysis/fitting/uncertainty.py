@@ -23,7 +23,6 @@ from ..simulation.simulate import embedding_autocovariance
 from ..spectral.irregular import IrregularlyObserved
 from ..spectral.likelihood import expected_in_band
 
-
 #: the largest circulant embedding of the simulations behind sandwich errors and simulated null distributions, in
 #: multiples of the smallest (twice the series): the smallest non-negative definite one up to this is used. Clipping
 #: the negative eigenvalues of the smallest embedding instead misstates a slowly decaying covariance: for an inertial
@@ -31,6 +30,8 @@ from ..spectral.likelihood import expected_in_band
 #: periodogram was up to 3 times the expected one in parts of the band of a 700-sample window; a Matérn background
 #: with a small damping still needs the larger embedding (checked against the Isserlis formula in the tests).
 EMBEDDING_MAX_FACTOR = 4
+#: components drawn exactly by their AR(1) recursion (:func:`ou_series`) instead of a circulant embedding
+_OSCILLATIONS = (Inertial, InertialFollowing)
 
 
 def simulator(family, theta, prep, context, max_factor: int = 64):
@@ -44,8 +45,8 @@ def simulator(family, theta, prep, context, max_factor: int = 64):
     # damped oscillations (complex OU processes) exactly by their recursion; independent stationary components
     # otherwise add up to one stationary process: one embedding for all of them
     parts = family.components()
-    ou = [(c, sl) for c, sl in parts if isinstance(c, (Inertial, InertialFollowing))]
-    parts = [(c, sl) for c, sl in parts if not isinstance(c, (Inertial, InertialFollowing))]
+    ou = [(c, sl) for c, sl in parts if isinstance(c, _OSCILLATIONS)]
+    parts = [(c, sl) for c, sl in parts if not isinstance(c, _OSCILLATIONS)]
     steady = [(c, sl) for c, sl in parts if not c.modulated]
     groups = [(False, lambda lag: sum(c.autocovariance(theta[sl], lag, context) for c, sl in steady))] if steady \
         else []
@@ -124,8 +125,8 @@ def _irregular_periodograms(family, theta, prep, context, rng, n_sim: int) -> np
 
 def irregular_velocities(family, theta, prep, context, rng, n_sim: int, improper=None) -> np.ndarray:
     """Velocity windows ``(n_sim, n)`` (m/s, zero where invalid) observed as this one was from irregular fixes:
-    the ocean velocity simulated every ``dt / 3`` (:func:`simulator`'s methods), integrated to positions, read at the fix
-    times, given the fixes' errors (scaled as fitted) or the fitted white noise, interpolated to the grid and
+    the ocean velocity simulated every ``dt / 3`` (:func:`simulator`'s methods), integrated to positions, read at the
+    fix times, given the fixes' errors (scaled as fitted) or the fitted white noise, interpolated to the grid and
     differenced through the window's own operator (``family.operator.weights``).
 
     ``improper=(index, a, b)`` makes ocean component ``index`` the widely linear ``a w + b conj(w)`` of its proper
@@ -142,15 +143,16 @@ def irregular_velocities(family, theta, prep, context, rng, n_sim: int, improper
     special = None if improper is None else improper[0]
 
     def draw(parts):  # one proper complex series (n_sim, n_f) of the summed components
-        ou = [(c, sl) for _, (c, sl) in parts if isinstance(c, (Inertial, InertialFollowing))]
+        ou = [(c, sl) for _, (c, sl) in parts if isinstance(c, _OSCILLATIONS)]
         out = None
         for comp, sl in ou:  # damped oscillations exactly by their recursion (no embedding to outgrow)
             var, f0, gam = ocean[sl]
             x = ou_series(var, 2j * np.pi * (f0 + (fc if comp.modulated else 0.0)) - gam, n_f, dt_f, rng, n_sim)
             out = x if out is None else out + x
-        parts = [(i, (c, sl)) for i, (c, sl) in parts if not isinstance(c, (Inertial, InertialFollowing))]
+        parts = [(i, (c, sl)) for i, (c, sl) in parts if not isinstance(c, _OSCILLATIONS)]
         if not parts:
             return out
+
         def acov(lag):  # a latitude-following part at the window's mean inertial frequency, as the operator has it
             r = np.zeros(len(lag), complex)
             for _, (comp, sl) in parts:

@@ -428,8 +428,10 @@ class IrregularObservation:
         ``transform`` is ``(G, qmax)`` from :meth:`_transform` when it is already computed.
         """
         q = np.asarray(q, np.int64)
-        g, qmax = transform if transform is not None else (self._transform(step, np.abs(q).max()), None)
-        qmax = int(np.abs(q).max()) if qmax is None else qmax
+        if transform is None:
+            qmax = int(np.abs(q).max())
+            transform = (self._transform(step, qmax), qmax)
+        g, qmax = transform
         g = g[:, q + qmax]
         zero = q == 0
         if zero.any():
@@ -465,10 +467,9 @@ class IrregularObservation:
     def _density_stack(self, family, theta, context, jacobian):
         """``S`` at the nodes and, optionally, ``dS/dx`` (rows) in the optimiser's coordinates (exact where the
         family has them, else central differences: ``ModelFamily._spectral_density_jacobian``)."""
-        theta = family.check_theta(theta)
         if not jacobian:
-            return np.real(family._spectral_density(theta, self.nodes_cpd, context)), None
-        return family._spectral_density_jacobian(theta, self.nodes_cpd, context)
+            return np.real(family.spectral_density(theta, self.nodes_cpd, context)), None
+        return family.spectral_density_jacobian(theta, self.nodes_cpd, context)
 
     def _kernel_integral(self, family, theta, context, jacobian):
         """``dt int S K_k df`` over the band (column 0) and its derivatives in the optimiser's coordinates (the
