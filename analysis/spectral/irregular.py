@@ -102,7 +102,7 @@ import finufft
 import numpy as np
 import scipy.fft
 import scipy.sparse
-from scipy.interpolate import make_interp_spline
+from scipy.interpolate import BSpline, make_interp_spline
 from threadpoolctl import ThreadpoolController
 
 from ..conventions import SECONDS_PER_DAY
@@ -361,7 +361,9 @@ class IrregularObservation:
             sign = 1.0 if lo > 0 else -1.0
             count = max(4, int(np.ceil(np.log(b_ / a_) / log_node_step)) + 1)
             nodes = np.geomspace(a_, b_, count)
-            basis = make_interp_spline(np.log(nodes), np.eye(count), k=3)(np.log(np.abs(grid2[inside])))
+            # the interpolating spline's cardinal functions, as B-splines (4 nonzero per point) times coefficients
+            spline = make_interp_spline(np.log(nodes), np.eye(count), k=3)
+            basis = (BSpline.design_matrix(np.log(np.abs(grid2[inside])), spline.t, 3), spline.c)
             kernels.append(self._kernel_columns(d2, np.flatnonzero(inside) - q2, w2[inside], basis=basis,
                                                 transform=(g2, q2)))
             nodes_all.append(sign * nodes)
@@ -421,7 +423,9 @@ class IrregularObservation:
         return pos, partner
 
     def _kernel_columns(self, step, q, weight, basis=None, transform=None):
-        """``dt * weight_q * K_k(q * step)`` (band x points), or integrated against ``basis`` (band x nodes).
+        """``dt * weight_q * K_k(q * step)`` (band x points), or integrated against ``basis`` (band x nodes), given as
+        ``(design, coefficients)``: the functions' values at the points are ``design @ coefficients``, with ``design``
+        a sparse B-spline design matrix (the product is taken in that order, cheaper than with the dense values).
 
         ``K_k(f) = |G_k(f)|^2 / (2 pi f)^2``: the rows of the weights sum to zero, so the ``-1`` of
         ``(exp(2 pi i f s_j) - 1) / (2 pi i f)`` drops out; at ``f = 0`` the limit ``|sum_j a_j(k) s_j|^2``.
@@ -442,8 +446,9 @@ class IrregularObservation:
         k *= self.dt_days * weight * scale
         if basis is None:
             return k
+        design, coefficients = basis
         with _one_blas_thread():  # the same summation order in a serial run and in a process pool
-            return k @ basis
+            return (design.T @ k.T).T @ coefficients
 
     # ------------------------------------------------------------------------------------------------
     def parameters(self, family: ModelFamily) -> tuple[Parameter, ...]:
