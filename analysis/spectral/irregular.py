@@ -96,7 +96,9 @@ on an 'exponential of semicircle' kernel". SIAM J. Sci. Comput. 41, C479-C504. d
 
 from __future__ import annotations
 
+import contextlib
 import functools
+import threading
 
 import finufft
 import numpy as np
@@ -116,13 +118,25 @@ NOISE_MODES = ("auto", "fixed", "fitted", "none")
 POSITION_NOISE: Parameter = PositionNoise.parameters[0]
 
 
-def _one_blas_thread():
+@contextlib.contextmanager
+def one_blas_thread():
     """A context in which BLAS runs on one thread, so the kernel product sums in the same order everywhere (a
-    serial run and a process pool then give bit-identical fits)."""
-    return _CONTROLLER.limit(limits=1, user_api="blas")
+    serial run and a process pool then give bit-identical fits). Nested uses cost nothing: a window's fit enters
+    it once (:func:`~driftspec.analysis.fitting.core.fit_window`) and its hundred kernel products inside run free of
+    threadpoolctl's bookkeeping (about 3 % of a fit otherwise)."""
+    if getattr(_NESTING, "depth", 0):
+        yield
+        return
+    _NESTING.depth = 1
+    try:
+        with _CONTROLLER.limit(limits=1, user_api="blas"):
+            yield
+    finally:
+        _NESTING.depth = 0
 
 
 _CONTROLLER = ThreadpoolController()
+_NESTING = threading.local()
 #: a fitted factor on the given per-fix position errors (their fix-by-fix structure kept, their level fitted)
 ERROR_SCALE = Parameter("position_error_scale", "1", 0.05, 20.0, "factor on the given per-fix position errors")
 #: requested relative accuracy of the non-uniform FFT that builds the kernel
@@ -447,7 +461,7 @@ class IrregularObservation:
         if basis is None:
             return k
         design, coefficients = basis
-        with _one_blas_thread():  # the same summation order in a serial run and in a process pool
+        with one_blas_thread():  # the same summation order in a serial run and in a process pool
             return (design.T @ k.T).T @ coefficients
 
     # ------------------------------------------------------------------------------------------------
@@ -482,7 +496,7 @@ class IrregularObservation:
         p_model = len(family.parameters)
         dens, jac = self._density_stack(family, theta, context, jacobian)
         cols = dens[:, None] if jac is None else np.concatenate([dens[:, None], jac[:p_model].T], axis=1)
-        with _one_blas_thread():  # the same sums in every process, and faster than threads on a busy machine
+        with one_blas_thread():  # the same sums in every process, and faster than threads on a busy machine
             out = self.kernel @ cols  # (band, 1 + p_model)
         if self._tail is not None:
             tot = np.zeros(cols.shape[1])
