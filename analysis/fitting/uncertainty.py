@@ -134,6 +134,19 @@ def _irregular_periodograms(family, theta, prep, context, rng, n_sim: int) -> np
 
 #: lag step of the tabulated position covariance, in grid steps (Hermite interpolation between the nodes)
 _LAG_STEP_FRACTION = 0.25
+#: steps of the finer table over the first two lag steps
+_NEAR_STEPS = 32
+
+
+def _hermite(x, step, f, df):
+    """Cubic Hermite interpolation at ``x >= 0`` (clipped to the table) of values ``f`` with derivatives ``df``
+    tabulated every ``step`` from zero."""
+    x = np.clip(x, 0.0, None) / step
+    i = np.minimum(x.astype(np.int64), f.size - 2)
+    t = x - i
+    t2, t3 = t * t, t * t * t
+    return ((2 * t3 - 3 * t2 + 1) * f[i] + (t3 - 2 * t2 + t) * step * df[i] + (3 * t2 - 2 * t3) * f[i + 1]
+            + (t3 - t2) * step * df[i + 1])
 
 
 def irregular_periodogram_covariance(family, theta, prep, context) -> np.ndarray:
@@ -155,30 +168,39 @@ def irregular_periodogram_covariance(family, theta, prep, context) -> np.ndarray
     errors equal in both coordinates) has ``cov(I_j, I_k) = dt^2 |C_jk|^2`` (Isserlis' theorem:
     L. Isserlis, "On a formula for the product-moment coefficient of any order of a normal frequency
     distribution in any number of variables", Biometrika 12, 134-139, 1918, doi:10.1093/biomet/12.1-2.134), and
-    ``dt C_jj`` is the expected periodogram. ``F`` is tabulated every quarter grid step by Simpson's rule and read
-    between the nodes by cubic Hermite interpolation (``F' = int_0^tau R``). A latitude-following part is taken
-    at the window's mean inertial frequency, as the operator takes it.
+    ``dt C_jj`` is the expected periodogram. ``F`` is tabulated every quarter grid step (every 1/64 over the first
+    two: a rough Matérn's cusp at zero lag matters for fixes minutes apart) by Simpson's rule and read between the
+    nodes by cubic Hermite interpolation (``F' = int_0^tau R``). A latitude-following part is taken at the window's
+    mean inertial frequency, as the operator takes it.
     """
     op = family.operator
     p = len(family.base.parameters)
     ocean, extra = theta[:p], theta[p:]
     s = op._s
     fc = context.inertial_frequency_cpd or 0.0
+    def acov(lags):
+        r = np.zeros(lags.size, complex)
+        for comp, sl in family.base.components():
+            rc = comp.autocovariance(ocean[sl], lags, context)
+            r += rc * np.exp(2j * np.pi * fc * lags) if comp.modulated else rc
+        return r
+
+    # F and F' tabulated: every h / 16 up to 2 h (a rough Matérn's autocovariance has a cusp at zero lag, which
+    # matters for fixes minutes apart), then every h from there on
     h = prep.dt_days * _LAG_STEP_FRACTION
-    lags = np.arange(int(np.ceil((s[-1] - s[0]) / h)) + 2) * h
-    r = np.zeros(lags.size, complex)
-    for comp, sl in family.base.components():
-        rc = comp.autocovariance(ocean[sl], lags, context)
-        r += rc * np.exp(2j * np.pi * fc * lags) if comp.modulated else rc
-    g1 = scipy.integrate.cumulative_simpson(r, dx=h, initial=0.0)  # F'
-    f = lags * g1 - scipy.integrate.cumulative_simpson(lags * r, dx=h, initial=0.0)  # F
+    near = np.arange(_NEAR_STEPS + 1) * (2 * h / _NEAR_STEPS)
+    r = acov(near)
+    g1_near = scipy.integrate.cumulative_simpson(r, x=near, initial=0.0)  # F'
+    f_near = near * g1_near - scipy.integrate.cumulative_simpson(near * r, x=near, initial=0.0)  # F
+    far = np.arange(int(np.ceil((s[-1] - s[0]) / h)) + 2) * h  # lags beyond 2 h, less 2 h
+    r = acov(far + 2 * h)
+    g1_far = g1_near[-1] + scipy.integrate.cumulative_simpson(r, dx=h, initial=0.0)
+    f_far = (f_near[-1] + far * g1_near[-1] + far * scipy.integrate.cumulative_simpson(r, dx=h, initial=0.0)
+             - scipy.integrate.cumulative_simpson(far * r, dx=h, initial=0.0))
     tau = s[:, None] - s[None, :]
-    x = np.abs(tau) / h
-    i = np.minimum(x.astype(np.int64), lags.size - 2)
-    t = x - i
-    t2, t3 = t * t, t * t * t
-    m = ((2 * t3 - 3 * t2 + 1) * f[i] + (t3 - 2 * t2 + t) * h * g1[i] + (3 * t2 - 2 * t3) * f[i + 1]
-         + (t3 - t2) * h * g1[i + 1])
+    m = _hermite(np.abs(tau) - 2 * h, h, f_far, g1_far)
+    close = np.abs(tau) < 2 * h
+    m[close] = _hermite(np.abs(tau[close]), 2 * h / _NEAR_STEPS, f_near, g1_near)
     m = np.where(tau >= 0, m, np.conj(m))  # F(s_j - s_l)
     d = m[1:, :-1] - m[:-1, :-1] - m[1:, 1:] + m[:-1, 1:]  # cov of the displacements, (m/s)^2 day^2
     if op.noise == "fixed":

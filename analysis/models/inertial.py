@@ -167,6 +167,30 @@ def _lorentzian_jacobian(var, gam, df):
     return s, jac
 
 
+def lag_truncated_lorentzian_jacobian(var, gam, df, max_lag_days):
+    """The density of the damped oscillation's autocovariance cut to ``|tau| <= L`` (``L = max_lag_days``) and its
+    derivatives in (log variance, the centre frequency, log gamma), ``df`` the distance from the centre, cpd::
+
+        S_L(f) = int_(-L)^L var exp(-gamma |tau| + 2 pi i f0 tau) exp(-2 pi i f tau) dtau
+               = 2 var Re[(exp(u L) - 1) / u],   u = -gamma - 2 pi i (f - f0),
+
+    which tends to the Lorentzian of :func:`_lorentzian_jacobian` as ``L`` grows. A rectangle rule of step ``d``
+    over ``S K`` with ``K`` the squared transform of a function supported on a span ``T`` is exact for ``S_L`` when
+    ``L + T <= 1 / d`` (Poisson summation), while for the Lorentzian itself it is off by the autocovariance at lags
+    beyond ``1/d - T``: large for a peak narrower than the grid (``gamma`` near its lower bound of 0.001 per day).
+    """
+    u = -gam - 2j * np.pi * np.asarray(df, float)
+    e = np.exp(u * max_lag_days)
+    q = (e - 1.0) / u
+    dq = (max_lag_days * e - q) / u
+    s = 2 * var * q.real
+    jac = np.empty((3, s.size))
+    jac[0] = s
+    jac[1] = 2 * var * (dq * 2j * np.pi).real
+    jac[2] = -2 * var * gam * dq.real
+    return s, jac
+
+
 def modulation_sequence(latitude_series, dt_days) -> np.ndarray:
     """``exp(i phase_t)`` with ``phase`` the running integral of ``2 pi f_inertial(latitude_t)``."""
     lat = np.asarray(latitude_series, float)

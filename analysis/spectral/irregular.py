@@ -109,7 +109,7 @@ from threadpoolctl import ThreadpoolController
 
 from ..conventions import SECONDS_PER_DAY
 from ..models.base import FitContext, ModelFamily, Parameter
-from ..models.inertial import Inertial
+from ..models.inertial import Inertial, InertialFollowing, _lorentzian_jacobian, lag_truncated_lorentzian_jacobian
 from ..models.observation import PositionNoise
 from .periodogram import masked_taper
 
@@ -359,6 +359,10 @@ class IrregularObservation:
         psi1 = _partition(grid1, bands, transition_cpd)
         keep = psi1 > 0
         fine, w_fine = grid1[keep], d1 * psi1[keep]
+        self._fine_count = fine.size
+        # the lag up to which the fine rule is exact: its alias lag 1/d1 less the kernel's span and the partition's
+        # reach in lag (about two over its transition width)
+        self._truncation_lag_days = 1.0 / d1 - tspan - 2.0 / transition_cpd
         kernels = [self._kernel_columns(d1, np.arange(-q1, q1 + 1)[keep], w_fine)]
         nodes_all = [fine]
         # smooth part: a cubic spline in log|f| on each stretch between the bands, integrated with weight 1 - psi
@@ -485,10 +489,34 @@ class IrregularObservation:
 
     def _density_stack(self, family, theta, context, jacobian):
         """``S`` at the nodes and, optionally, ``dS/dx`` (rows) in the optimiser's coordinates (exact where the
-        family has them, else central differences: ``ModelFamily._spectral_density_jacobian``)."""
+        family has them, else central differences: ``ModelFamily._spectral_density_jacobian``).
+
+        On the fine grid a damped oscillation enters by the density of its autocovariance cut at the lag where the
+        grid's rectangle rule stays exact
+        (:func:`~driftspec.analysis.models.inertial.lag_truncated_lorentzian_jacobian`), so a peak narrower than the
+        grid step is integrated as the window sees it."""
         if not jacobian:
-            return np.real(family.spectral_density(theta, self.nodes_cpd, context)), None
-        return family.spectral_density_jacobian(theta, self.nodes_cpd, context)
+            dens, jac = np.real(family.spectral_density(theta, self.nodes_cpd, context)), None
+        else:
+            dens, jac = family.spectral_density_jacobian(theta, self.nodes_cpd, context)
+        fine = slice(0, self._fine_count)
+        fc = context.inertial_frequency_cpd if context is not None and context.inertial_frequency_cpd is not None \
+            else 0.0
+        theta = np.asarray(theta, float)
+        for comp, sl in family.components():
+            if not isinstance(comp, (Inertial, InertialFollowing)):
+                continue
+            var, centre, gam = theta[sl]
+            if isinstance(comp, InertialFollowing):
+                centre = centre + fc
+            df = self.nodes_cpd[fine] - centre
+            s_plain, j_plain = _lorentzian_jacobian(var, gam, df)
+            s_cut, j_cut = lag_truncated_lorentzian_jacobian(var, gam, df, self._truncation_lag_days)
+            dens = dens.copy() if jac is None else dens
+            dens[fine] += s_cut - s_plain
+            if jac is not None:
+                jac[sl, fine] += j_cut - j_plain
+        return dens, jac
 
     def _kernel_integral(self, family, theta, context, jacobian):
         """``dt int S K_k df`` over the band (column 0) and its derivatives in the optimiser's coordinates (the
