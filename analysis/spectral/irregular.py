@@ -30,10 +30,11 @@ on the fixes' span ``T'``; so on a uniform frequency grid of step ``delta`` the 
 to aliasing terms of the integrand's Fourier transform at lags ``>= 1/delta - T'``, which are the velocity
 autocovariance there (Poisson summation). Hence the integration grid:
 
-* ``|f| <= fine_band_cpd`` (default 3.5 cpd, beyond every inertial frequency the models allow): step
-  ``1 / (6 T')`` (lags ``>= 5 T'``, 300 days for a 60-day window, where any damping above 0.02/day has
-  killed the autocovariance), ``S`` evaluated at every point, so narrow inertial peaks are integrated as
-  well as the window can resolve them;
+* on the fine bands (near zero frequency and around the inertial range): step ``1 / (4 T')`` (``oversample``),
+  ``S`` evaluated at every point. The rule is exact for a density whose autocovariance vanishes beyond lag
+  ``3 T'``; a damped oscillation enters there by the density of its autocovariance cut at that lag (less the
+  partition's reach), so a peak narrower than the step (damping near its lower bound of 0.001/day, whose
+  autocovariance lasts years) is integrated as the window sees it;
 * from there to ``quad_max_cpd`` (default 1.5 times the sampling rate, 36 cpd for hourly samples, which
   holds the first alias of the whole fitted band, ``f_k +- 1/dt``): step ``1 / (3 T')``, and ``S`` is
   smooth (a power law and Lorentzian tails), so it is represented by a cubic spline in ``log |f|`` on
