@@ -46,7 +46,11 @@ def velocity_mask(fix_times, n, mask_hours=3.0):
     # an inertial peak at the damping's lower bound (0.001 per day), far narrower than the kernel's finest frequency
     # step: with its plain Lorentzian density on the fine grid the rectangle rule was off by up to 77 % here
     ("central", np.r_[THETA[:5], 0.001]),
-], ids=["central", "forward", "undamped peak"])
+    # known limit: a Matérn background with a corner far below the lowest frequency (damping 0.01/day, memory of
+    # months) enters the fine grid by its plain density; the lowest bins then come out up to twice too high
+    pytest.param("central", np.r_[THETA[0], THETA[1], 0.01, THETA[3:]],
+                 marks=pytest.mark.xfail(strict=True, reason="slow Matérn damping: lowest bins off (known limit)")),
+], ids=["central", "forward", "undamped peak", "slow matern"])
 def test_fixes_on_the_grid_match_the_observed_family(operator, theta):
     n = 720
     s = np.arange(-1, n + 1) * DT  # a fix at every grid time: interpolation is the identity

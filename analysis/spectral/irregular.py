@@ -34,7 +34,10 @@ autocovariance there (Poisson summation). Hence the integration grid:
   ``S`` evaluated at every point. The rule is exact for a density whose autocovariance vanishes beyond lag
   ``3 T'``; a damped oscillation enters there by the density of its autocovariance cut at that lag (less the
   partition's reach), so a peak narrower than the step (damping near its lower bound of 0.001/day, whose
-  autocovariance lasts years) is integrated as the window sees it;
+  autocovariance lasts years) is integrated as the window sees it. A Matérn background enters by its plain
+  density, exact while its damping is above about 0.1/day on a 30-day window; at 0.03/day the lowest bins are
+  off by 8 % and at 0.01/day by a factor of two (a known limit: such a corner lies far below the window's lowest
+  frequency, where the damping is barely determined anyway);
 * from there to ``quad_max_cpd`` (default 1.5 times the sampling rate, 36 cpd for hourly samples, which
   holds the first alias of the whole fitted band, ``f_k +- 1/dt``): step ``1 / (3 T')``, and ``S`` is
   smooth (a power law and Lorentzian tails), so it is represented by a cubic spline in ``log |f|`` on
