@@ -374,7 +374,7 @@ class IrregularObservation:
         q2 = int(np.floor(fmax / d2))
         grid2 = np.arange(-q2, q2 + 1) * d2
         w2 = d2 * (1.0 - _partition(grid2, bands, transition_cpd))
-        g2 = self._transform(d2, q2)  # G_k on the whole coarse grid, sliced per stretch below
+        p2 = self._power(d2, q2)  # |G_k|^2 on the whole coarse grid, sliced per stretch below
         self._outer = []
         start = fine.size
         for lo, hi in _gaps(bands, fmax):
@@ -387,7 +387,7 @@ class IrregularObservation:
             spline = make_interp_spline(np.log(nodes), np.eye(count), k=3)
             basis = (BSpline.design_matrix(np.log(np.abs(grid2[inside])), spline.t, 3), spline.c)
             kernels.append(self._kernel_columns(d2, np.flatnonzero(inside) - q2, w2[inside], basis=basis,
-                                                transform=(g2, q2)))
+                                                power=(p2, q2)))
             nodes_all.append(sign * nodes)
             if np.isclose(b_, fmax):  # the outermost stretch of one side: the tail continues from its last nodes
                 self._outer.append((start + count - 1, start + count - 2))
@@ -410,8 +410,10 @@ class IrregularObservation:
         return [(-_LOW_BAND_CPD, _LOW_BAND_CPD), (lo - _PEAK_MARGIN_CPD, hi + _PEAK_MARGIN_CPD)]
 
     # ------------------------------------------------------------------------------------------------
-    def _transform(self, step, qmax):
-        """``G_k(q * step)`` for ``q = -qmax..qmax`` (band x 2 qmax + 1): a type-1 non-uniform FFT over the fixes.
+    def _power(self, step, qmax):
+        """``|G_k(q * step)|^2`` for ``q = -qmax..qmax`` (band x 2 qmax + 1), at ``q = 0`` the limit
+        ``|sum_j a_j(k) s_j|^2`` of ``|G_k(f)|^2 / (2 pi f)^2`` instead: ``G_k`` by a type-1 non-uniform FFT over the
+        fixes.
 
         The points ``2 pi step s_j`` lie within +-pi / oversample (the grids' steps are at most 1 / (1.5 span) and
         ``s`` is centred), so nothing folds; one thread, so a serial run and a process pool agree to the bit."""
@@ -420,15 +422,18 @@ class IrregularObservation:
             raise ValueError("frequency step too coarse for the window's span")
         m = 2 * int(qmax) + 1
         pos, partner = self._conjugate_pairs
+        rows = slice(None) if pos is None else pos
+        g = finufft.nufft1d1(x, self._a[rows], n_modes=m, eps=_NUFFT_EPS, isign=1, nthreads=1)
+        g[:, qmax] = self._a[rows] @ self._s
         if pos is None:
-            return finufft.nufft1d1(x, self._a, n_modes=m, eps=_NUFFT_EPS, isign=1, nthreads=1)
-        # the weights are real, so a_j(-k) = conj a_j(k) and G_{-k}(f) = conj G_k(-f): transform the positive bins
-        # only and read their partners off the mirrored grid (half the work)
-        g = np.empty((self._a.shape[0], m), complex)
-        g[pos] = finufft.nufft1d1(x, self._a[pos], n_modes=m, eps=_NUFFT_EPS, isign=1, nthreads=1)
+            return g.real ** 2 + g.imag ** 2
+        # the weights are real, so a_j(-k) = conj a_j(k) and |G_{-k}(f)| = |G_k(-f)|: transform the positive bins
+        # only and read their partners' power off the mirrored grid (half the work)
+        power = np.empty((self._a.shape[0], m))
+        power[pos] = g.real ** 2 + g.imag ** 2
         neg = np.flatnonzero(partner >= 0)
-        g[neg] = np.conj(g[partner[neg], ::-1])
-        return g
+        power[neg] = power[partner[neg], ::-1]
+        return power
 
     @functools.cached_property
     def _conjugate_pairs(self):
@@ -444,25 +449,22 @@ class IrregularObservation:
             return None, None
         return pos, partner
 
-    def _kernel_columns(self, step, q, weight, basis=None, transform=None):
+    def _kernel_columns(self, step, q, weight, basis=None, power=None):
         """``dt * weight_q * K_k(q * step)`` (band x points), or integrated against ``basis`` (band x nodes), given as
         ``(design, coefficients)``: the functions' values at the points are ``design @ coefficients``, with ``design``
         a sparse B-spline design matrix (the product is taken in that order, cheaper than with the dense values).
 
         ``K_k(f) = |G_k(f)|^2 / (2 pi f)^2``: the rows of the weights sum to zero, so the ``-1`` of
         ``(exp(2 pi i f s_j) - 1) / (2 pi i f)`` drops out; at ``f = 0`` the limit ``|sum_j a_j(k) s_j|^2``.
-        ``transform`` is ``(G, qmax)`` from :meth:`_transform` when it is already computed.
+        ``power`` is ``(|G|^2, qmax)`` from :meth:`_power` when it is already computed.
         """
         q = np.asarray(q, np.int64)
-        if transform is None:
+        if power is None:
             qmax = int(np.abs(q).max())
-            transform = (self._transform(step, qmax), qmax)
-        g, qmax = transform
-        g = g[:, q + qmax]
+            power = (self._power(step, qmax), qmax)
+        p, qmax = power
+        k = p[:, q + qmax]  # (band, points), a copy
         zero = q == 0
-        if zero.any():
-            g[:, zero] = (self._a @ self._s)[:, None]
-        k = g.real ** 2 + g.imag ** 2  # (band, points)
         f = q * step
         scale = 1.0 / np.where(zero, 1.0, 2 * np.pi * f) ** 2
         k *= self.dt_days * weight * scale
