@@ -338,9 +338,10 @@ class IrregularObservation:
 
         # --- a_j(k) and the diagonal kernel sum_j |a_j(k)|^2 ------------------------------------------
         dense = self.weights.toarray()
-        if demean:
-            dense[valid] -= dense[valid].mean(axis=0)
         a = scipy.fft.fft(self.taper[:, None] * dense, axis=0)[self.band_index]  # (band, fixes), 1/day
+        if demean:  # each fix's mean weight over the valid samples, where the taper lives, times the taper's transform
+            mean = (valid / valid.sum()) @ dense
+            a -= np.outer(scipy.fft.fft(self.taper)[self.band_index], mean)
         self._a = np.ascontiguousarray(a)
         a2 = np.abs(a) ** 2
         self._diag = a2.sum(axis=1)  # sum_j |a_j(k)|^2, day^-2
