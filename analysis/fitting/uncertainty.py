@@ -146,13 +146,13 @@ _NEAR_STEPS = 32
 
 def _hermite(x, step, f, df):
     """Cubic Hermite interpolation at ``x >= 0`` (clipped to the table) of values ``f`` with derivatives ``df``
-    tabulated every ``step`` from zero."""
+    tabulated every ``step`` from zero (each interval's cubic in Horner form)."""
+    f0, f1, d0, d1 = f[:-1], f[1:], step * df[:-1], step * df[1:]
+    c0, c1, c2, c3 = f0, d0, 3 * (f1 - f0) - 2 * d0 - d1, 2 * (f0 - f1) + d0 + d1
     x = np.clip(x, 0.0, None) / step
-    i = np.minimum(x.astype(np.int64), f.size - 2)
+    i = np.minimum(x.astype(np.int64), f0.size - 1)
     t = x - i
-    t2, t3 = t * t, t * t * t
-    return ((2 * t3 - 3 * t2 + 1) * f[i] + (t3 - 2 * t2 + t) * step * df[i] + (3 * t2 - 2 * t3) * f[i + 1]
-            + (t3 - t2) * step * df[i + 1])
+    return ((c3[i] * t + c2[i]) * t + c1[i]) * t + c0[i]
 
 
 def irregular_periodogram_covariance(family, theta, prep, context) -> np.ndarray:
@@ -203,11 +203,14 @@ def irregular_periodogram_covariance(family, theta, prep, context) -> np.ndarray
     g1_far = g1_near[-1] + scipy.integrate.cumulative_simpson(r, dx=h, initial=0.0)
     f_far = (f_near[-1] + far * g1_near[-1] + far * scipy.integrate.cumulative_simpson(r, dx=h, initial=0.0)
              - scipy.integrate.cumulative_simpson(far * r, dx=h, initial=0.0))
-    tau = s[:, None] - s[None, :]
-    m = _hermite(np.abs(tau) - 2 * h, h, f_far, g1_far)
-    close = np.abs(tau) < 2 * h
-    m[close] = _hermite(np.abs(tau[close]), 2 * h / _NEAR_STEPS, f_near, g1_near)
-    m = np.where(tau >= 0, m, np.conj(m))  # F(s_j - s_l)
+    below = np.tril_indices(s.size, -1)  # the fixes are in time order: s_j - s_l > 0 below the diagonal
+    tau = s[below[0]] - s[below[1]]
+    v = _hermite(tau - 2 * h, h, f_far, g1_far)
+    close = tau < 2 * h
+    v[close] = _hermite(tau[close], 2 * h / _NEAR_STEPS, f_near, g1_near)
+    m = np.zeros((s.size, s.size), complex)  # F(s_j - s_l), with F(0) = 0 and F(-tau) = conj F(tau)
+    m[below] = v
+    m[below[1], below[0]] = np.conj(v)
     d = m[1:, :-1] - m[:-1, :-1] - m[1:, 1:] + m[:-1, 1:]  # cov of the displacements, (m/s)^2 day^2
     if op.noise == "fixed":
         sigma = op.sigma_used * (extra[-1] if family._scaled else 1.0)
