@@ -266,6 +266,9 @@ def test_periodogram_covariance_in_closed_form_matches_simulated_windows():
     theta = np.r_[THETA, 1.0]  # the given errors unscaled
     cov = irregular_periodogram_covariance(fam, theta, prep, CTX)
     e, de = fam.expected_in_band(theta, prep, CTX)
+    # a periodogram ordinate of a proper complex Gaussian series is its mean times a unit exponential, so its
+    # variance is its squared mean (a standard result: Percival & Walden 1993, doi:10.1017/CBO9780511622762, ch. 6;
+    # chapter from memory)
     assert np.max(np.abs(np.sqrt(np.diag(cov)) / e - 1)) < 2e-3
     reps = 2000
     pg = _mc_periodograms(fix_times, sigma, n, valid, prep.band_index, reps, rng)[1]
@@ -273,6 +276,8 @@ def test_periodogram_covariance_in_closed_form_matches_simulated_windows():
     sums = pg @ weights.T  # replicate x weighted sum
     dev = (sums - sums.mean(axis=0)) ** 2
     mc, se = dev.mean(axis=0), dev.std(axis=0, ddof=1) / np.sqrt(reps)
+    # the closed form rests on Isserlis' theorem, cov(I_j, I_k) = dt^2 |E J_j conj J_k|^2 (L. Isserlis, Biometrika 12,
+    # 134-139, 1918); the simulated windows rest on nothing but the observation itself
     closed = np.einsum("aj,jk,ak->a", weights, cov, weights)
     assert np.all(np.abs(closed - mc) < 4 * se), (closed / mc, se / mc)
     # the correlations matter: ignoring them (the diagonal alone) misstates the band's total by far more

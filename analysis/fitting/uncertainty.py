@@ -8,7 +8,8 @@ Comput. 18, 1088-1107, 1997) with the window's mask, taper and mean removal, so 
 of what was actually observed. "The debiased Whittle likelihood", Biometrika 106(2), 251-266 (2019),
 doi:10.1093/biomet/asy071, section 4, gives the sandwich form ``F^-1 V F^-1``. For windows of irregular fixes the
 score's covariance needs no simulation: :func:`irregular_periodogram_covariance` gives the periodogram's covariance
-in closed form (exact, about three times faster than 64 draws).
+in closed form (exact, and below :data:`CLOSED_FORM_MAX_WORK` faster than 64 draws: a third of their time on the
+demo's 30-day windows, about half on 60-day ones).
 """
 
 from __future__ import annotations
@@ -102,7 +103,9 @@ def score_covariance(family, theta, prep, context, free=None, n_sim: int = 64, s
     # the smallest non-negative definite embedding up to 8 N (EMBEDDING_MAX_FACTOR; checked against the Isserlis
     # formula in the tests)
     if isinstance(family, IrregularlyObserved):
-        if not prep.real_valued and prep.band_index.size * family.operator._s.size ** 2 <= CLOSED_FORM_MAX_WORK:
+        fixes = family.operator._s.size
+        if not prep.real_valued and fixes <= CLOSED_FORM_MAX_FIXES and prep.band_index.size * fixes**2 <= \
+                CLOSED_FORM_MAX_WORK:
             # the periodogram's covariance in closed form: no simulation needed
             w = dlog / e_band
             return np.atleast_2d(w @ irregular_periodogram_covariance(family, np.asarray(theta, float), prep,
@@ -138,6 +141,8 @@ def _irregular_periodograms(family, theta, prep, context, rng, n_sim: int) -> np
 #: they cost the same near 2.5e8 (measured: 21 against 38 ms for 60 days of satellite-like fixes, 105 against 80 ms
 #: for 120 days, one core)
 CLOSED_FORM_MAX_WORK = 2.5e8
+#: and at most this many fixes (its memory is about 100 bytes x fixes^2: 0.6 GB here)
+CLOSED_FORM_MAX_FIXES = 2500
 #: lag step of the tabulated position covariance, in grid steps (Hermite interpolation between the nodes)
 _LAG_STEP_FRACTION = 0.25
 #: steps of the finer table over the first two lag steps
@@ -174,10 +179,10 @@ def irregular_periodogram_covariance(family, theta, prep, context) -> np.ndarray
     errors equal in both coordinates) has ``cov(I_j, I_k) = dt^2 |C_jk|^2`` (Isserlis' theorem:
     L. Isserlis, "On a formula for the product-moment coefficient of any order of a normal frequency
     distribution in any number of variables", Biometrika 12, 134-139, 1918, doi:10.1093/biomet/12.1-2.134), and
-    ``dt C_jj`` is the expected periodogram. ``F`` is tabulated every quarter grid step (every 1/64 over the first
-    two: a rough Matérn's cusp at zero lag matters for fixes minutes apart) by Simpson's rule and read between the
-    nodes by cubic Hermite interpolation (``F' = int_0^tau R``). A latitude-following part is taken at the window's
-    mean inertial frequency, as the operator takes it.
+    ``dt C_jj`` is the expected periodogram. ``F`` is tabulated every quarter grid step (every 1/64 grid step over
+    the first half step: a rough Matérn's cusp at zero lag matters for fixes minutes apart) by Simpson's rule and
+    read between the nodes by cubic Hermite interpolation (``F' = int_0^tau R``). A latitude-following part is
+    taken at the window's mean inertial frequency, as the operator takes it.
     """
     op = family.operator
     p = len(family.base.parameters)

@@ -42,7 +42,7 @@ autocovariance there (Poisson summation). Hence the integration grid:
   holds the first alias of the whole fitted band, ``f_k +- 1/dt``): step ``1 / (3 T')``, and ``S`` is
   smooth (a power law and Lorentzian tails), so it is represented by a cubic spline in ``log |f|`` on
   about 60 nodes and the kernel is integrated against each spline basis function once, at build time
-  (product integration). A raised-cosine partition of width ``transition_cpd`` (1 cpd) joins the two
+  (product integration). A smooth partition of width ``transition_cpd`` (0.25 cpd) joins the two
   grids, so both integrands go smoothly to zero where their grid ends and the Poisson argument holds;
 * beyond ``quad_max_cpd`` the red spectrum is continued as a power law (slope from the two outermost
   nodes), and fixes far apart in time decorrelate there: only the diagonal ``sum_j |a_j(k)|^2`` of
@@ -125,22 +125,29 @@ POSITION_NOISE: Parameter = PositionNoise.parameters[0]
 @contextlib.contextmanager
 def one_blas_thread():
     """A context in which BLAS runs on one thread, so the kernel product sums in the same order everywhere (a
-    serial run and a process pool then give bit-identical fits). Nested uses cost nothing: a window's fit enters
-    it once (:func:`~driftspec.analysis.fitting.core.fit_window`) and its hundred kernel products inside run free of
+    serial run and a process pool then give bit-identical fits). Nested and concurrent uses share one limit: the
+    first to enter sets it and the last to leave restores the library's setting, so a window's fit enters it once
+    (:func:`~driftspec.analysis.fitting.core.fit_window`) and its hundred kernel products inside run free of
     threadpoolctl's bookkeeping (about 3 % of a fit otherwise)."""
-    if getattr(_NESTING, "depth", 0):
-        yield
-        return
-    _NESTING.depth = 1
+    global _BLAS_USERS, _BLAS_LIMIT
+    with _BLAS_LOCK:
+        if _BLAS_USERS == 0:
+            _BLAS_LIMIT = _CONTROLLER.limit(limits=1, user_api="blas")
+        _BLAS_USERS += 1
     try:
-        with _CONTROLLER.limit(limits=1, user_api="blas"):
-            yield
+        yield
     finally:
-        _NESTING.depth = 0
+        with _BLAS_LOCK:
+            _BLAS_USERS -= 1
+            if _BLAS_USERS == 0:
+                _BLAS_LIMIT.restore_original_limits()
+                _BLAS_LIMIT = None
 
 
 _CONTROLLER = ThreadpoolController()
-_NESTING = threading.local()
+_BLAS_LOCK = threading.Lock()
+_BLAS_USERS = 0  # contexts inside one_blas_thread, in all threads
+_BLAS_LIMIT = None
 #: a fitted factor on the given per-fix position errors (their fix-by-fix structure kept, their level fitted)
 ERROR_SCALE = Parameter("position_error_scale", "1", 0.05, 20.0, "factor on the given per-fix position errors")
 #: requested relative accuracy of the non-uniform FFT that builds the kernel
@@ -367,7 +374,11 @@ class IrregularObservation:
         self._fine_count = fine.size
         # the lag up to which the fine rule is exact: its alias lag 1/d1 less the kernel's span and the partition's
         # reach in lag (about two over its transition width)
-        self._truncation_lag_days = 1.0 / d1 - tspan - 2.0 / transition_cpd
+        reach = tspan + 2.0 / transition_cpd  # the kernel's reach in lag, with the partition's
+        cut = 1.0 / d1 - reach
+        # cutting at L keeps the integral only when L >= reach (the cut-off autocovariance never meets the kernel):
+        # windows shorter than about 8 days at oversample 4 keep the plain density
+        self._truncation_lag_days = cut if cut >= reach else None
         kernels = [self._kernel_columns(d1, np.arange(-q1, q1 + 1)[keep], w_fine)]
         nodes_all = [fine]
         # smooth part: a cubic spline in log|f| on each stretch between the bands, integrated with weight 1 - psi
@@ -506,6 +517,8 @@ class IrregularObservation:
             dens, jac = np.real(family.spectral_density(theta, self.nodes_cpd, context)), None
         else:
             dens, jac = family.spectral_density_jacobian(theta, self.nodes_cpd, context)
+        if self._truncation_lag_days is None:
+            return dens, jac
         fine = slice(0, self._fine_count)
         fc = context.inertial_frequency_cpd if context is not None and context.inertial_frequency_cpd is not None \
             else 0.0
