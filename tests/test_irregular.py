@@ -71,6 +71,23 @@ def test_fixes_on_the_grid_match_the_observed_family(operator, theta):
     np.testing.assert_allclose(e, ref[obs.band_index], rtol=5e-3)
 
 
+def test_short_window_matches_the_observed_family():
+    """A 5-day window: its fine frequency step is that of a 30-day window, so the oscillation's lag cut still lies
+    beyond the kernel's reach and inside the rule's exact lag; checked against the regular-grid autocovariance
+    route (with the step from the window's own span the rule was off by 1 % here)."""
+    n = 120
+    s = np.arange(-1, n + 1) * DT
+    valid = np.ones(n, bool)
+    obs = IrregularObservation(s, DT, n, valid, "central", "hann", position_error_m=150.0, demean=False,
+                               max_freq_cpd=9.0, inertial_frequency_cpd=-1.0)
+    assert obs._truncation_lag_days is not None
+    fam = get_family("matern+inertial")
+    e = obs.expected(fam, THETA, CTX)
+    prep = prepare_window(np.full(n, 1j), DT, mask=valid, taper="hann", max_freq=9.0)
+    ref = expected_periodogram(observed(fam, "differenced+noise", "central"), np.r_[THETA, 150.0], prep, CTX)
+    np.testing.assert_allclose(e, ref[obs.band_index], rtol=5e-3)
+
+
 def test_noise_alone_matches_closed_form():
     # white position noise through the central difference: R(0) = sigma^2 / D^2, R(+-2) = -sigma^2 / (2 D^2)
     # (models/observation.py docstring); with no taper and no gaps the periodogram's mean is the Bartlett

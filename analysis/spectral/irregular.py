@@ -154,6 +154,8 @@ ERROR_SCALE = Parameter("position_error_scale", "1", 0.05, 20.0, "factor on the 
 _NUFFT_EPS = 1e-10
 
 
+#: the grids' steps are at most 1 / (oversample x this), days (short windows get the steps of a longer one)
+_MIN_GRID_SPAN_DAYS = 30.0
 #: the spectrum's structure near zero frequency (a Matérn corner) is resolved on the fine grid up to here, cpd
 _LOW_BAND_CPD = 0.3
 #: a peak's flanks are resolved on the fine grid this far beyond the range its centre may take, cpd
@@ -365,7 +367,8 @@ class IrregularObservation:
         bands = _merge_bands(self._fine_bands(fine_bands_cpd, inertial_frequency_cpd, dt), transition_cpd, fmax)
         self.fine_bands_cpd = bands
         # fine part: rectangle rule at every point, weight psi (1 on the bands, smoothly 0 a transition away)
-        d1 = 1.0 / (oversample * tspan)
+        # at least 30 days' worth of span, so that short windows too have an exact lag beyond their kernel's reach
+        d1 = 1.0 / (oversample * max(tspan, _MIN_GRID_SPAN_DAYS))
         q1 = int(np.ceil(fmax / d1))
         grid1 = np.arange(-q1, q1 + 1) * d1
         psi1 = _partition(grid1, bands, transition_cpd)
@@ -376,13 +379,13 @@ class IrregularObservation:
         # reach in lag (about two over its transition width)
         reach = tspan + 2.0 / transition_cpd  # the kernel's reach in lag, with the partition's
         cut = 1.0 / d1 - reach
-        # cutting at L keeps the integral only when L >= reach (the cut-off autocovariance never meets the kernel):
-        # windows shorter than about 8 days at oversample 4 keep the plain density
+        # cutting at L keeps the integral only when L >= reach (the cut-off autocovariance never meets the kernel);
+        # with the fine step's floor this holds for every window at oversample 2 and more
         self._truncation_lag_days = cut if cut >= reach else None
         kernels = [self._kernel_columns(d1, np.arange(-q1, q1 + 1)[keep], w_fine)]
         nodes_all = [fine]
         # smooth part: a cubic spline in log|f| on each stretch between the bands, integrated with weight 1 - psi
-        d2 = 1.0 / (coarse_oversample * tspan)
+        d2 = 1.0 / (coarse_oversample * max(tspan, _MIN_GRID_SPAN_DAYS))
         q2 = int(np.floor(fmax / d2))
         grid2 = np.arange(-q2, q2 + 1) * d2
         w2 = d2 * (1.0 - _partition(grid2, bands, transition_cpd))
