@@ -21,17 +21,14 @@ Reading guide
 from __future__ import annotations
 
 import functools
-import operator
 import threading
 import time
 
-import datashader as dsh
 import holoviews as hv
 import numpy as np
 import pandas as pd
 import panel as pn
 import param
-from holoviews.operation.datashader import dynspread, rasterize
 
 from driftspec.analysis.conventions import tidal_frequencies_cpd
 from driftspec.analysis.fitting import FitSpec, fit_window
@@ -39,22 +36,20 @@ from driftspec.analysis.fitting.anisotropy import AnisotropicFit
 from driftspec.analysis.models import get_family
 from driftspec.analysis.regional import default_params, grid_fits
 from driftspec.analysis.regional.pooled import pool_fit
-from driftspec.analysis.spectral.periodogram import multitaper_spectrum, rotary_periodogram
 from driftspec.analysis.tracks.pipeline import load_velocities
 from driftspec.analysis.tracks.windows import iter_windows
 
 from .geo import (
     bin_cells,
     bin_quads,
-    degree_ticks,
     ellipse_ring,
-    label_points,
     lat_label,
     lon_label,
     map_bin_edges,
     widen_to_ratio,
 )
 from .jobs import Job
+from .plots import ComplementaryFigure, RotarySpectrumFigure, TrackMapFigure, VelocityFigure, on_page
 from .state import ANALYSIS, FIT_PARAMS, URL_PARAMS, ExplorerState, parse_query, widgets_for
 from .trackdata import MAP_RATIO, TrackData
 
@@ -161,10 +156,24 @@ class Explorer(param.Parameterized):
         self.state.param.watch(self._on_settings, ["track", "window", *FIT_PARAMS])
         self.state.param.watch(self._on_pooling, ["region", "map_values", "bin_deg"])
         self._started = False
+        self.closed = False  # the page was closed: nothing is drawn any more
 
     def _set(self, **values):
+        if self.closed:
+            return
         with param.edit_constant(self):
             self.param.update(**values)
+
+    def close(self, *_):
+        """The page was closed: stop its jobs and draw nothing more. (A closed page's panes redrawn after its
+        session ended rewrote style sheets that Panel shares between pages to Panel's CDN address, which the open
+        pages then asked for.)"""
+        self.closed = True
+        self._cancel.set()
+        for slot, job in self._jobs.items():
+            if job is not None:
+                job.cancel()
+                self._jobs[slot] = None
 
     # ------------------------------------------------------------------ data
     def _refresh_param_choices(self):
@@ -397,6 +406,8 @@ class Explorer(param.Parameterized):
 
     def _on_job(self, job):
         """A job reported (on this session's loop). Results of a job that is no longer current are dropped."""
+        if self.closed:
+            return
         with self._lock:
             self._job_reported(job)
 
@@ -432,6 +443,8 @@ class Explorer(param.Parameterized):
 
     def on_first_look(self, job):
         """The shared first-look job reported: show its progress, and its fits when no others were chosen."""
+        if self.closed:
+            return
         if job.status == "done" and job.result is not None and not self._user_fits:
             df = self.data.first_look_table()
             if len(df):
@@ -609,7 +622,7 @@ class Explorer(param.Parameterized):
             busy_indicator=None)
         self.start()
         if self.doc is not None:
-            pn.state.on_session_destroyed(lambda _ctx: self.cancel())  # a closed page stops its jobs
+            pn.state.on_session_destroyed(self.close)  # a closed page stops its jobs
         return tpl
 
     def sync_url(self):
@@ -738,142 +751,194 @@ class View(pn.viewable.Viewer):
         return 1.8 if self.state.presentation else 1.0
 
 
+class LiveView(View):
+    """A view whose Bokeh plot is built once per page and then updated in place (:mod:`driftspec.app.plots`):
+    ``_build`` makes the plot, ``_draw`` puts the current data into it; changes of the parameters named in
+    ``_watch`` redraw, presentation mode and theme rebuild."""
+
+    def __init__(self, **params):
+        super().__init__(**params)
+        self._pending = False
+        self._pane = pn.pane.Bokeh(**self._pane_sizing)
+        self._rebuild()
+        for owner, names in self._watch():
+            owner.param.watch(self._redraw, names)
+        self.state.param.watch(self._rebuild, ["presentation", "theme"])
+
+    #: how the plot's pane is sized (the plots stretch to the page's width; the map keeps its frame)
+    _pane_sizing = {"sizing_mode": "stretch_width"}
+
+    def _watch(self):
+        return []
+
+    def _rebuild(self, *_):
+        self._pane.object = self._build()
+        self._draw()
+
+    def _redraw(self, *_):
+        """Redraw once for a burst of changes, on the page's session (see :func:`driftspec.app.plots.on_page`)."""
+        if self._pending or self.ex.closed:
+            return
+        self._pending = True
+
+        def apply():
+            self._pending = False
+            self._draw()
+            doc = self._pane.object.document
+            if doc is not None and getattr(doc, "session_context", None) is None:
+                pn.io.push_notebook(self._pane, *self._extra_panes())  # a notebook: send the change
+        on_page(self._pane.object, apply)
+
+    def _extra_panes(self):
+        return []
+
+    def __panel__(self):
+        return self._pane
+
+
 def geography_layers(data: TrackData, labels: bool, view=None):
     """Land, shoreline and graticule of a data set's map, and the axis options putting degrees on the axes
     (cylindrical views) or labels on the graticule lines (polar views). ``view``: the (xlim, ylim) shown."""
-    land, lines, glabels = data.geography
-    gap = np.full((1, 2), np.nan)
-    # one multi-part geometry (parts separated by NaN rows) renders in a third of the time of one per island
-    land_xy = np.concatenate([q for r in land for q in (r, gap)])[:-1] if land else np.zeros((0, 2))
-    land_el = hv.Polygons([{"x": land_xy[:, 0], "y": land_xy[:, 1]}] if land else [], kdims=["x", "y"]).opts(
-        color=COLOURS["land"], line_color=COLOURS["coast"], line_width=0.7)
-    grid_xy = np.concatenate([a for p in lines for a in (p, gap)]) if lines else np.zeros((0, 2))
+    land_xy, grid_xy = data.geography_xy
+    land_el = hv.Polygons([{"x": land_xy[:, 0], "y": land_xy[:, 1]}] if len(land_xy) else [],
+                          kdims=["x", "y"]).opts(color=COLOURS["land"], line_color=COLOURS["coast"], line_width=0.7)
     grid = hv.Path([grid_xy], kdims=["x", "y"]).opts(color=COLOURS["grid"], line_width=0.6, line_dash="dashed",
                                                       alpha=0.8)
     layers = [land_el, grid]
-    (x0, x1), (y0, y1) = view or data.extent
-    xt, yt = degree_ticks(data.proj, (x0, x1), (y0, y1))
+    xt, yt, keep = data.map_labels(view or data.extent)
     if xt:
         axis = dict(xticks=list(xt.items()), yticks=list(yt.items()), xlabel="longitude", ylabel="latitude")
     else:
         axis = dict(xaxis=None, yaxis=None)
-        if labels:
-            keep = label_points(lines, glabels, (x0, x1), (y0, y1))
-            if keep:
-                layers.append(hv.Labels(keep, kdims=["x", "y"], vdims="text").opts(
-                    text_color="#3a4450", text_font_size="9pt", text_align="left", text_baseline="bottom"))
+        if labels and keep:
+            layers.append(hv.Labels(keep, kdims=["x", "y"], vdims="text").opts(
+                text_color="#3a4450", text_font_size="9pt", text_align="left", text_baseline="bottom"))
     return layers, axis
 
 
-class TrackMap(View):
-    """All tracks, datashaded, over land and graticule; click selects a track, box-select sets the region."""
+#: the colour bar's title for each value the track map can show
+MAP_VALUE_LABELS = {"speed": "speed (m/s)", "time": "days since first fix"}
 
-    pointer = param.Parameter()
+
+class TrackMap(LiveView):
+    """All tracks as a raster of a value per pixel (datashader), over land and graticule; a click selects a track,
+    box select sets the region, zooming redraws the raster for the new view."""
+
+    pointer_x = param.Number(default=np.nan, doc="Projected x of the pointer over the map (for the readout)")
+    pointer_y = param.Number(default=np.nan)
+    _pane_sizing = {}
 
     def __init__(self, **params):
-        super().__init__(**params)
-        self.pointer = hv.streams.PointerXY(x=np.nan, y=np.nan)
-        data = self.ex.data
+        data = params["ex"].data
         self.date_range = pn.widgets.DatetimeRangeSlider(
             name="Dates shown on the map", start=data.time_range[0], end=data.time_range[1],
             value=data.time_range, step=86400000) if data.time_range else None
+        self._view = data.extent  # the (x, y) ranges the raster covers
+        self._raster_key = None
+        self._last_move = 0.0
+        super().__init__(**params)
+        if self.date_range is not None:
+            self.date_range.param.watch(self._redraw, "value")
 
-    def _points(self, color_by, date_range):
-        pts = self.ex.data.points
-        if date_range is not None:
-            lo, hi = (pd.Timestamp(d).value for d in date_range)
-            t = pts["t_ns"].to_numpy()
-            pts = pts[(t >= lo) & (t <= hi)]
-        col = color_by if color_by in pts else "speed"
-        return hv.Points((pts["x"].to_numpy(), pts["y"].to_numpy(), pts[col].to_numpy()), kdims=["x", "y"],
-                         vdims=[hv.Dimension("value", label={"speed": "speed (m/s)",
-                                                             "time": "days since first fix"}.get(col, col))])
+    def _watch(self):
+        return [(self.state, ["track", "region", "color_by", "anisotropic"]),
+                (self.ex, ["current_anisotropic", "current_window"])]
 
-    def _selected(self, track):
-        v = self.ex.track_velocity(track)
-        if not len(v):
-            return hv.Path([]).opts(color=COLOURS["track"])
-        x, y = self.ex.data.proj.forward(v["lon"].to_numpy(), v["lat"].to_numpy())
-        return hv.Path([np.column_stack([x, y])], kdims=["x", "y"]).opts(color=COLOURS["track"], line_width=2.5)
+    def _build(self):
+        from bokeh.events import MouseMove, RangesUpdate, SelectionGeometry, Tap
 
-    def _region_box(self, region):
-        if not region:
-            return hv.Bounds((np.nan,) * 4).opts(color="#2b5fd9", line_width=2)
-        lon0, lat0, lon1, lat1 = region
-        x, y = self.ex.data.proj.forward(np.array([lon0, lon1]), np.array([lat0, lat1]))
-        return hv.Bounds((x[0], y[0], x[1], y[1])).opts(color="#2b5fd9", line_width=2)
+        data = self.ex.data
+        land_xy, grid_xy = data.geography_xy
+        xt, yt, labels = data.map_labels(data.extent)
+        self._fig = TrackMapFigure(extent=data.extent, frame_width=MAP_WIDTH, frame_height=MAP_HEIGHT,
+                                   colours=COLOURS, land_xy=land_xy, grid_xy=grid_xy, grid_labels=labels,
+                                   ticks=(xt, yt), picker=data.picker_columns, clabel=self._clabel())
+        self._raster_key = None
+        fig = self._fig.figure
+        for event, handler in ((Tap, lambda e: self.ex.select_at(e.x, e.y)), (SelectionGeometry, self._on_box),
+                               (RangesUpdate, self._on_ranges), (MouseMove, self._on_move)):
+            fig.on_event(event, self._in_session(handler))
+        return fig
+
+    def _in_session(self, handler):
+        """``handler`` of a Bokeh event run as Panel runs its own callbacks, with the page's document current (the
+        panes it redraws then resolve their style sheets for this page: without it, those of the status and
+        summary panes pointed to Panel's CDN)."""
+        from panel.io.state import set_curdoc
+
+        def run(event):
+            doc = self._fig.figure.document
+            if self.ex.closed:
+                return
+            if doc is None:
+                handler(event)
+                return
+            with set_curdoc(doc):
+                handler(event)
+        return run
+
+    def _clabel(self):
+        return MAP_VALUE_LABELS.get(self.state.color_by, self.state.color_by)
+
+    def _draw(self):
+        ex, st, data, fig = self.ex, self.state, self.ex.data, self._fig
+        dates = tuple(self.date_range.value) if self.date_range is not None else None
+        key = (st.color_by, dates, self._view)
+        if key != self._raster_key:
+            # the map's own extent over every date is the same on every page: computed once, shared
+            full = dates is None or dates == tuple(data.time_range)
+            image = data.raster(st.color_by, *self._view, MAP_WIDTH, MAP_HEIGHT, None if full else dates)
+            fig.show_raster(image, *self._view, self._clabel())
+            self._raster_key = key
+        v = ex.track_velocity(st.track)
+        fig.show_track(*data.proj.forward(v["lon"].to_numpy(), v["lat"].to_numpy()))
+        if st.region:
+            lon0, lat0, lon1, lat1 = st.region
+            x, y = data.proj.forward(np.array([lon0, lon1]), np.array([lat0, lat1]))
+            fig.show_region((x[0], y[0], x[1], y[1]))
+        else:
+            fig.show_region(None)
+        fig.show_ellipse(*self._anisotropy_ellipse(ex.current_anisotropic, ex.current_window))
 
     def _anisotropy_ellipse(self, aniso, window):
         """The fitted model's velocity variance ellipse at the window's mean position (an anisotropic fit), with
-        its numbers written beside it and in its hover."""
-        vdims = ["sd_major", "sd_minor", "angle", "rho", "pvalue"]
+        its numbers for the hover and the text beside it: ``(ring, values, text, solid)``, or ``(None,)``."""
         st = self.state
         if (aniso is None or window is None or aniso.family is None or not st.anisotropic
                 or not np.all(np.isfinite(list(aniso.params.values())))):
-            return (hv.Path([], kdims=["x", "y"], vdims=vdims, label="model variance ellipse")
-                    * hv.Labels([], kdims=["x", "y"], vdims="text"))
+            return (None,)
         sd_major, sd_minor, angle = variance_ellipse_axes(model_velocity_covariance(aniso, st.model, st.inertial))
         (x0, x1), _ = self.ex.data.extent
         scale = 0.06 * (x1 - x0) / max(sd_major, 1e-12)  # the major axis spans an eighth of the map
         ring = ellipse_ring(self.ex.data.proj, float(window.lon), float(window.lat), scale * sd_major,
                             scale * sd_minor, angle)
         rho, p = aniso.params["anisotropy"], aniso.isotropy_pvalue
-        path = hv.Path([{"x": ring[:, 0], "y": ring[:, 1], "sd_major": sd_major, "sd_minor": sd_minor,
-                         "angle": angle, "rho": rho, "pvalue": p}], kdims=["x", "y"], vdims=vdims,
-                       label="model variance ellipse").opts(
-            color=COLOURS["inertial"], line_width=3, line_dash="solid" if getattr(aniso, "selected", False)
-            else "dashed", tools=["hover"],
-            hover_tooltips=[("model std. dev. along the axis", "@sd_major{0.000} m/s"),
-                            ("across", "@sd_minor{0.000} m/s"), ("axis", "@angle{0.0}° from east"),
-                            ("anisotropy ρ", "@rho{0.000}"), ("isotropy p-value", "@pvalue{0.0000}")])
+        chosen = getattr(aniso, "selected", False)
         text = (f"ρ {rho:.2f} · {sd_major:.3f}/{sd_minor:.3f} m/s along {angle:.0f}° · isotropy p {p:.2g}"
-                + ("" if getattr(aniso, "selected", False) else " (not rejected)"))
-        label = hv.Labels([(float(ring[:, 0].max()), float(ring[:, 1].max()), text)], kdims=["x", "y"],
-                          vdims="text").opts(text_color=COLOURS["inertial"], text_font_size="10pt",
-                                             text_align="left", text_baseline="bottom")
-        return path * label
+                + ("" if chosen else " (not rejected)"))
+        values = {"sd_major": sd_major, "sd_minor": sd_minor, "angle": angle, "rho": rho, "pvalue": p}
+        return ring, values, text, bool(chosen)
 
-    def plot(self):
-        data, st = self.ex.data, self.state
-        dr = self.date_range.param.value if self.date_range is not None else None
-        pts = hv.DynamicMap(pn.bind(self._points, st.param.color_by, dr))
-        # rasterized once per page, at the frame's size (times the screen's pixel ratio) over the map's extent, and
-        # again only when the view is zoomed or panned: with the default plot-size stream the first image
-        # (900 x 560) was redrawn at the frame's size as soon as the browser reported it, and without the extent
-        # the first image covered the data's own range and was redrawn over the map's range at once
-        (x0, x1), (y0, y1) = data.extent
-        shaded = dynspread(rasterize(pts, aggregator=dsh.mean("value"), width=MAP_WIDTH, height=MAP_HEIGHT,
-                                     x_range=(x0, x1), y_range=(y0, y1), streams=[hv.streams.RangeXY]),
-                           threshold=0.6, max_px=2)
-        shaded = shaded.apply.opts(
-            clabel=pn.bind(lambda c: {"speed": "speed (m/s)", "time": "days since first fix"}.get(c, c),
-                           st.param.color_by), cmap="fire", colorbar=True, cnorm="eq_hist", tools=["tap", "box_select"])
-        tap = hv.streams.Tap(source=shaded, x=np.nan, y=np.nan)
-        tap.add_subscriber(lambda x=None, y=None, **_: self.ex.select_at(x, y))
-        # hover and box select act on glyphs: an invisible, thinned copy of the samples carrying degrees
-        p = data.points
-        step = max(1, len(p) // 5000)
-        tid = np.asarray(data.track_ids, dtype=object)[p["track_code"].to_numpy()[::step]]
-        picker = hv.Points((p["x"].to_numpy()[::step], p["y"].to_numpy()[::step], p["lon"].to_numpy()[::step],
-                            p["lat"].to_numpy()[::step], tid), kdims=["x", "y"], vdims=["lon", "lat", "track"]).opts(
-            alpha=0, nonselection_alpha=0, selection_alpha=0, size=4, tools=["box_select", "hover"],
-            hover_tooltips=[("track", "@track"), ("longitude", "@lon{0.00}°"), ("latitude", "@lat{0.00}°")])
-        bounds = hv.streams.BoundsXY(source=picker, bounds=(0, 0, 0, 0))
-        bounds.add_subscriber(lambda bounds=None, **_: self.ex.select_box(bounds))
-        self.pointer.source = shaded
-        geo, axis = geography_layers(data, labels=True)
-        sel = hv.DynamicMap(pn.bind(self._selected, st.param.track))
-        box = hv.DynamicMap(pn.bind(self._region_box, st.param.region))
-        ell = hv.DynamicMap(pn.bind(self._anisotropy_ellipse, self.ex.param.current_anisotropic,
-                                    self.ex.param.current_window))
-        return functools.reduce(operator.mul, [geo[0], shaded, *geo[1:], picker, sel, box, ell]).opts(
-            hv.opts.Overlay(frame_height=MAP_HEIGHT, frame_width=MAP_WIDTH, title="All tracks", xlim=(x0, x1),
-                            ylim=(y0, y1), active_tools=["wheel_zoom"], bgcolor="#eef2f5",
-                            legend_position="bottom_left", **axis))
+    def _on_box(self, event):
+        g = event.geometry
+        if event.final and g.get("type") == "rect":
+            self.ex.select_box((g["x0"], g["y0"], g["x1"], g["y1"]))
 
-    @param.depends("pointer.x", "pointer.y")
+    def _on_ranges(self, event):
+        if None in (event.x0, event.x1, event.y0, event.y1):
+            return
+        self._view = ((float(event.x0), float(event.x1)), (float(event.y0), float(event.y1)))
+        self._redraw()
+
+    def _on_move(self, event):
+        now = time.monotonic()  # the readout follows the pointer at most ten times a second
+        if now - self._last_move >= 0.1:
+            self._last_move = now
+            self.param.update(pointer_x=event.x, pointer_y=event.y)
+
+    @param.depends("pointer_x", "pointer_y")
     def readout(self):
-        x, y = self.pointer.x, self.pointer.y
+        x, y = self.pointer_x, self.pointer_y
         data = self.ex.data
         if data.tree is None or x is None or not np.isfinite(x):
             return pn.pane.Markdown("Hover over the map for track, time and value; click a track to select it.",
@@ -889,9 +954,7 @@ class TrackMap(View):
             css_classes=["ds-readout"], margin=(10, 10, 4, 10))
 
     def __panel__(self):
-        # rendered after the page has loaded (in Panel's thread pool on a server), so opening a page is quick
-        return pn.Column(deferred(lambda: pn.pane.HoloViews(self.plot())), self.readout,
-                         sizing_mode="stretch_width")
+        return pn.Column(self._pane, self.readout, sizing_mode="stretch_width")
 
 
 class Summary(View):
@@ -917,128 +980,67 @@ class Summary(View):
         return pn.panel(self.line, sizing_mode="stretch_width", defer_load=False)
 
 
-class VelocityView(View):
-    @param.depends("state.track", "state.window", "state.window_days", "state.overlap", "state.presentation")
-    def plot(self):
+class VelocityView(LiveView):
+    """The selected track's velocity, its windows shaded and the current one marked."""
+
+    def _watch(self):
+        return [(self.state, ["track", "window", "window_days", "overlap"])]
+
+    def _build(self):
+        self._fig = VelocityFigure(COLOURS, self.fontscale())
+        return self._fig.figure
+
+    def _draw(self):
         ex, st = self.ex, self.state
-        v = ex.track_velocity(st.track)
-        fs = self.fontscale()
-        if not len(v):
-            return hv.Curve([]).opts(responsive=True, height=230)
-        t = v["time"]
-        u = hv.Curve((t, v["u"]), "time", hv.Dimension("vel", label="velocity (m/s)"), label="u (east)")
-        w = hv.Curve((t, v["v"]), "time", hv.Dimension("vel", label="velocity (m/s)"), label="v (north)")
         ws = ex.windows()
-        # every window in one vectorised element (one glyph, not one plot per window)
-        spans = hv.VSpans(pd.DataFrame({"x0": [x.start for x in ws], "x1": [x.end for x in ws]}),
-                          kdims=["x0", "x1"]).opts(color="#c9d3e6", alpha=0.25, apply_ranges=False)
-        cur = ex.current()
-        layers = [spans] + ([hv.VSpan(cur.start, cur.end).opts(color="#f2c14e", alpha=0.45)] if cur else [])
-        overlay = hv.Overlay([*layers, u.opts(color="#33658a"), w.opts(color="#b5522b")])
-        return overlay.opts(hv.opts.Curve(line_width=1.2 * fs), hv.opts.Overlay(
-            responsive=True, height=int(230 * min(fs, 1.4)), fontscale=fs, legend_position="top_left",
-            xlabel="time (UTC)", ylabel="velocity (m/s)",
-            title=f"{st.track}: velocity; {len(ws)} windows of {st.window_days:g} days"))
-
-    def __panel__(self):
-        return deferred(self.plot, sizing_mode="stretch_width")
+        self._fig.show(f"{st.track}: velocity; {len(ws)} windows of {st.window_days:g} days",
+                       ex.track_velocity(st.track), ws, ex.current())
 
 
-class SpectrumView(View):
-    """Rotary spectra of the current window (clockwise and counterclockwise), with the fitted model."""
+class SpectrumView(LiveView):
+    """Rotary spectra of the current window (clockwise and counterclockwise), with the fitted model; under them,
+    with the anisotropic setting, the complementary spectrum of the anisotropic fit."""
 
-    def _complementary(self, fs):
-        """The complementary (relation) spectrum of an anisotropic fit: observed and fitted ``|J(f) J(-f)|``."""
-        a = self.ex.current_anisotropic
-        if (not self.state.anisotropic or a is None or a.window is None or a.family is None
-                or not np.all(np.isfinite(list(a.params.values())))):
-            return None
-        f, obs, model = complementary_curves(a)
-        kd = hv.Dimension("freq", label="frequency |f| (cpd)")
-        vd = hv.Dimension("power", label="(m/s)²/cpd")
-        ok = obs > 0
-        layers = [hv.Curve((f[ok], obs[ok]), kd, vd, label="|J(f) J(−f)| observed").opts(color="#7d7d7d",
-                                                                                         line_width=0.8),
-                  hv.Curve((f, model), kd, vd, label="fitted model (expected)").opts(
-                      color=COLOURS["inertial"], line_width=2.2 * fs, line_dash="dashed")]
-        ov = hv.Overlay(layers).opts(hv.opts.Overlay(
-            logx=True, logy=True, responsive=True, height=int(280 * min(fs, 1.3)), fontscale=fs,
-            title=f"complementary (ρ {a.params['anisotropy']:.2f}, p {a.isotropy_pvalue:.2g})",
-            legend_position="bottom_left", legend_opts={"background_fill_alpha": 0.55}))
-        return pn.pane.HoloViews(ov, sizing_mode="stretch_width", min_width=260)
+    def __init__(self, **params):
+        self._note = pn.pane.Markdown("No window of this length with enough valid samples on this track.",
+                                      visible=False)
+        self._comp_pane = pn.pane.Bokeh(sizing_mode="stretch_width", visible=False)
+        self._comp = None
+        self._spectra_of = None  # the window whose spectra the plot shows
+        super().__init__(**params)
 
-    @param.depends("ex.current_window", "ex.current_fit", "ex.current_anisotropic", "state.presentation")
-    def plot(self):
+    def _watch(self):
+        return [(self.ex, ["current_window", "current_fit", "current_anisotropic"]), (self.state, ["anisotropic"])]
+
+    def _build(self):
+        self._fig = RotarySpectrumFigure(COLOURS, self.ink(), tidal_frequencies_cpd(), self.fontscale())
+        self._comp = None
+        self._comp_pane.object = None
+        return self._fig.layout
+
+    def _draw(self):
         w, res = self.ex.current_window, self.ex.current_fit
-        fs = self.fontscale()
-        if w is None:
-            return pn.pane.Markdown("No window of this length with enough valid samples on this track.")
-        mt = multitaper_spectrum(w.z, w.dt_seconds, time_bandwidth=3)
-        pg = rotary_periodogram(w.z, w.dt_seconds)
-        panels = []
-        for side, sign in (("cw", -1), ("ccw", 1)):
-            sel = np.sign(mt.freq_cpd) == sign
-            f = np.abs(mt.freq_cpd[sel])
-            o = np.argsort(f)
-            f = f[o]
-            kd = hv.Dimension("freq", label=f"{'clockwise' if side == 'cw' else 'counterclockwise'} frequency (cpd)")
-            vd = hv.Dimension("power", label="(m/s)²/cpd")
-            band = hv.Area((f, mt.lower[sel][o], mt.upper[sel][o]), kd, [vd, "power2"]).opts(
-                color=COLOURS[side], alpha=0.18, line_alpha=0)
-            pgs = np.sign(pg.freq_cpd) == sign
-            fp = np.abs(pg.freq_cpd[pgs])
-            op = np.argsort(fp)
-            raw = hv.Curve((fp[op], pg.power[pgs][op]), kd, vd, label="periodogram").opts(
-                color="#b8b8b8", line_width=0.6)
-            est = hv.Curve((f, mt.power[sel][o]), kd, vd, label="multitaper").opts(color=COLOURS[side],
-                                                                                   line_width=1.6 * fs)
-            layers = [band, raw, est]
-            if res is not None and res.family is not None and np.all(np.isfinite(res.theta)):
-                ff, ee, inb = res.expected_spectrum()
-                side_sel = np.sign(ff) == sign
-                fa = np.abs(ff[side_sel])
-                om = np.argsort(fa)
-                e_side, in_side = ee[side_sel][om], inb[side_sel][om]
-                layers.append(hv.Curve((fa[om], np.where(in_side, e_side, np.nan)), kd, vd,
-                                       label="fitted model").opts(color=self.ink(), line_width=2.2 * fs,
-                                                                  line_dash="dashed"))
-                layers.append(hv.Curve((fa[om], np.where(in_side, np.nan, e_side)), kd, vd,
-                                       label="model beyond fitted band").opts(color=self.ink(),
-                                                                              line_width=1.2 * fs,
-                                                                              line_dash="dotted"))
-                floor = res.noise_floor(fa[om] * sign)
-                if np.any(floor > 0):
-                    layers.append(hv.Curve((fa[om][floor > 0], floor[floor > 0]), kd, vd,
-                                           label="position-noise floor").opts(color="#8a8a8a", line_width=1.5,
-                                                                              line_dash="dashdot"))
-                layers.append(hv.VLine(res.prepared.freq_cpd[res.prepared.band].max() if res.prepared is not None
-                                       else 0).opts(color="#888", line_width=1))
-            fc = w.inertial_frequency_cpd
-            if np.sign(fc) == sign and abs(fc) > 0:
-                layers.append(hv.VLine(abs(fc)).opts(color=COLOURS["inertial"], line_width=1.5, line_dash="dotdash"))
-                layers.append(hv.Text(abs(fc), float(np.nanmax(mt.upper)), " f", halign="left", valign="top")
-                              .opts(color=COLOURS["inertial"], text_font_size=f"{int(10 * fs)}pt"))
-            tides = tidal_frequencies_cpd()  # one glyph for the lines, one for their names
-            layers.append(hv.VLines(list(tides.values())).opts(color=COLOURS["tide"], line_width=0.8,
-                                                              line_dash="dotted"))
-            low = float(np.nanmin(mt.lower[mt.lower > 0]))
-            layers.append(hv.Labels([(ft, low, name) for name, ft in tides.items()], [kd, vd], "tide").opts(
-                text_color=COLOURS["tide"], text_font_size=f"{int(8 * fs)}pt", text_baseline="bottom"))
-            pos = mt.lower[mt.lower > 0]
-            ylim = (float(pos.min()) / 5 if pos.size else 1e-8, float(np.nanmax(mt.upper)) * 3)
-            title = "clockwise" if side == "cw" else "counterclockwise"
-            ov = hv.Overlay(layers).opts(
-                hv.opts.Overlay(logx=True, logy=True, responsive=True, height=int(330 * min(fs, 1.3)), ylim=ylim,
-                                title=title, fontscale=fs, legend_position="bottom_left",
-                                legend_opts={"background_fill_alpha": 0.55},
-                                show_legend=side == "ccw", invert_xaxis=side == "cw"))
-            panels.append(pn.pane.HoloViews(ov, sizing_mode="stretch_width", min_width=300))
-        row = pn.Row(*panels, sizing_mode="stretch_width")
-        comp = self._complementary(fs)
-        return row if comp is None else pn.Column(row, comp, sizing_mode="stretch_width")
+        self._note.visible = w is None
+        self._pane.visible = w is not None
+        if w is not None:
+            self._fig.show(w, res)
+        a = self.ex.current_anisotropic
+        shown = (w is not None and self.state.anisotropic and a is not None and a.window is not None
+                 and a.family is not None and np.all(np.isfinite(list(a.params.values()))))
+        if shown:
+            if self._comp is None:
+                self._comp = ComplementaryFigure(COLOURS, self.fontscale())
+                self._comp.show(*complementary_curves(a), a.params["anisotropy"], a.isotropy_pvalue)
+                self._comp_pane.object = self._comp.figure
+            else:
+                self._comp.show(*complementary_curves(a), a.params["anisotropy"], a.isotropy_pvalue)
+        self._comp_pane.visible = bool(shown)
+
+    def _extra_panes(self):
+        return [self._comp_pane]
 
     def __panel__(self):
-        return pn.Column(deferred(self.plot), sizing_mode="stretch_width")
+        return pn.Column(self._note, self._pane, self._comp_pane, sizing_mode="stretch_width")
 
 
 class FitTable(View):
@@ -1425,6 +1427,15 @@ class OfflineTemplate(pn.template.VanillaTemplate):
     """The plain page template without its web-font link: the page must work with no network."""
 
     _resources = {"css": {}}
+
+    def _init_doc(self, doc=None, comm=None, title=None, notebook=False, location=True):
+        # Bokeh recomputes the set of a document's models each time a root is added (the template adds one per
+        # area): adding them all under one freeze recomputes it once (0.4 CPU-s less per opened page)
+        target = doc if doc is not None else pn.state.curdoc
+        if target is None:
+            return super()._init_doc(doc, comm, title, notebook, location)
+        with target.models.freeze():
+            return super()._init_doc(doc, comm, title, notebook, location)
 
 
 PRESENTATION_CSS = """

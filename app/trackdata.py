@@ -15,7 +15,16 @@ from scipy.spatial import cKDTree
 
 from driftspec.analysis.runs import run_bounds
 
-from .geo import choose_projection, data_extent, graticule, land_polygons, lonlat_ranges, widen_to_ratio
+from .geo import (
+    choose_projection,
+    data_extent,
+    degree_ticks,
+    graticule,
+    label_points,
+    land_polygons,
+    lonlat_ranges,
+    widen_to_ratio,
+)
 from .jobs import Job, call_in_session
 
 #: width / height of the maps' frames
@@ -52,6 +61,7 @@ class TrackData:
         self.first_look: Job | None = None
         self._first_look_table: pd.DataFrame | None = None
         self._subscribers: weakref.WeakSet = weakref.WeakSet()
+        self._rasters: dict = {}
 
     def track_velocity(self, track_id: str) -> pd.DataFrame:
         s, e = self.slices.get(track_id, (0, 0))
@@ -65,6 +75,61 @@ class TrackData:
         land = land_polygons(self.proj, lon_r, lat_r)
         lines, labels = graticule(self.proj, lon_r, lat_r)
         return land, lines, labels
+
+    @functools.cached_property
+    def geography_xy(self):
+        """Land and graticule as two (n, 2) arrays of projected points, their parts separated by NaN rows (drawn
+        as one glyph each: one multi-part geometry renders in a third of the time of one per island)."""
+        land, lines, _ = self.geography
+        gap = np.full((1, 2), np.nan)
+        land_xy = np.concatenate([q for r in land for q in (r, gap)])[:-1] if land else np.zeros((0, 2))
+        grid_xy = np.concatenate([a for p in lines for a in (p, gap)]) if lines else np.zeros((0, 2))
+        return land_xy, grid_xy
+
+    def map_labels(self, view):
+        """Degree labels for the view ``(xlim, ylim)``: axis ticks ``{position: label}`` for x and y (cylindrical
+        views), and for polar views (no axis ticks) the graticule labels ``[(x, y, text)]`` inside the view."""
+        (x0, x1), (y0, y1) = view
+        xt, yt = degree_ticks(self.proj, (x0, x1), (y0, y1))
+        if xt:
+            return xt, yt, []
+        _, lines, labels = self.geography
+        return xt, yt, label_points(lines, labels, (x0, x1), (y0, y1))
+
+    @functools.cached_property
+    def picker_columns(self) -> dict:
+        """A thinned copy of the samples (at most about 5,000) carrying the map's hover and box selection:
+        projected ``x``, ``y``, ``lon``, ``lat`` (degrees) and ``track``."""
+        p = self.points
+        step = max(1, len(p) // 5000)
+        return {"x": p["x"].to_numpy()[::step], "y": p["y"].to_numpy()[::step], "lon": p["lon"].to_numpy()[::step],
+                "lat": p["lat"].to_numpy()[::step],
+                "track": np.asarray(self.track_ids, dtype=object)[p["track_code"].to_numpy()[::step]]}
+
+    def raster(self, value: str, x_range, y_range, width: int, height: int, dates=None) -> np.ndarray:
+        """The mean of ``value`` (a column of :attr:`points`: ``speed`` or ``time``) over the samples in each of
+        ``height`` x ``width`` pixels covering ``x_range`` x ``y_range`` (rows from south to north, NaN where
+        empty), spread where the samples are sparse (datashader's ``mean`` and ``dynspread``); only samples
+        between the two ``dates`` when given. The map's own extent (without dates) is computed once and shared."""
+        import datashader as dsh
+        import datashader.transfer_functions as tf
+
+        key = (value, tuple(x_range), tuple(y_range), width, height)
+        shared = dates is None and key[1:3] == tuple(tuple(r) for r in self.extent)
+        if shared and key in self._rasters:
+            return self._rasters[key]
+        pts = self.points
+        if dates is not None:
+            lo, hi = (pd.Timestamp(d).value for d in dates)
+            t = pts["t_ns"].to_numpy()
+            pts = pts[(t >= lo) & (t <= hi)]
+        col = value if value in pts else "speed"
+        canvas = dsh.Canvas(plot_width=width, plot_height=height, x_range=tuple(x_range), y_range=tuple(y_range))
+        agg = tf.dynspread(canvas.points(pts, "x", "y", dsh.mean(col)), threshold=0.6, max_px=2)
+        image = agg.values.astype(np.float32)
+        if shared:
+            self._rasters[key] = image
+        return image
 
     # ------------------------------------------------------------------ first look
     def start_first_look(self, windows_of, spec) -> Job | None:

@@ -198,8 +198,11 @@ def test_anisotropy_ellipse_axes_are_the_eigenvectors_of_the_model_covariance(ex
 
     ex = explorer
     w, a = anisotropic_fit
-    path = TrackMap(ex=ex)._anisotropy_ellipse(a, w).Path.Model_variance_ellipse
-    drawn = path.data[0]
+    view = TrackMap(ex=ex)
+    view._fig.show_ellipse(*view._anisotropy_ellipse(a, w))
+    drawn = {k: np.asarray(v) for k, v in view._fig.ellipse.data.items()}  # the columns the map's glyph draws
+    assert len(set(drawn["sd_major"])) == 1 and len(drawn["sd_major"]) == len(drawn["x"])
+    drawn.update({k: drawn[k][0] for k in ("sd_major", "sd_minor", "angle")})
     # the covariance of (u, v) implied by the fit, from the published form (Schreier & Scharf 2010, ch. 2): the
     # Matern part sigma^2/2 [[1 + rho cos 2t, rho sin 2t], [rho sin 2t, 1 - rho cos 2t]], the inertial part
     # circular (sigma_I^2 / 2 on the diagonal)

@@ -1,0 +1,338 @@
+"""The dashboard's line plots drawn with Bokeh directly: the selected track's velocity, the current window's rotary
+spectra with the fitted model, and the complementary spectrum of an anisotropic fit.
+
+Each plot is built once per page and then updated in place: a new track, window or fit puts new arrays into the
+plot's data sources, so the page receives a few arrays instead of a new plot to build and lay out. (Drawn through
+HoloViews, every update rebuilt the plot on the server, about 70 ms per layer, and the browser built its views
+and laid the page out again.) HoloViews still draws the datashaded map and the summary tabs.
+
+These classes only draw; the arrays come from :mod:`driftspec.analysis` (spectra, the fit's expected spectrum)
+and from :mod:`driftspec.app.dashboard` (``complementary_curves``).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+from bokeh.layouts import row
+from bokeh.models import ColumnDataSource, DataRange1d, Label, Legend, LegendItem, Range1d
+
+from .jobs import call_in_session
+
+#: tools of every line plot (the toolbar's PNG button is how a plot is saved)
+TOOLS = "pan,wheel_zoom,box_zoom,reset,save"
+
+
+def on_page(model, fn) -> None:
+    """Apply ``fn`` (which changes ``model`` and its sources) where it is safe: on a served page, on the page's
+    session (a fit may report from another thread), through Panel as any other update of the page; in a notebook
+    or before the plot is shown, here and now (the caller then pushes the change to a notebook)."""
+    call_in_session(model.document, fn)
+
+
+def scale_fonts(fig, fontscale: float) -> None:
+    """Title, axis labels, tick labels and legend at ``fontscale`` times Bokeh's default sizes."""
+    if fontscale == 1.0:
+        return
+    fig.title.text_font_size = f"{13 * fontscale:.0f}px"
+    for ax in (*fig.xaxis, *fig.yaxis):
+        ax.axis_label_text_font_size = f"{13 * fontscale:.0f}px"
+        ax.major_label_text_font_size = f"{11 * fontscale:.0f}px"
+    for lg in fig.legend:
+        lg.label_text_font_size = f"{13 * fontscale:.0f}px"
+
+
+def _log_positive(a) -> np.ndarray:
+    """``a`` as floats with values a log axis cannot show (zero, negative) replaced by NaN."""
+    a = np.asarray(a, float)
+    return np.where(a > 0, a, np.nan)
+
+
+class VelocityFigure:
+    """Eastward and northward velocity of one track against time, its windows shaded and the current one marked."""
+
+    def __init__(self, colours: dict, fontscale: float = 1.0):
+        from bokeh.plotting import figure
+
+        self.lines = ColumnDataSource({"time": [], "u": [], "v": []})
+        self.windows = ColumnDataSource({"x0": [], "x1": []})
+        self.current = ColumnDataSource({"x0": [], "x1": []})
+        fig = figure(x_axis_type="datetime", height=int(230 * min(fontscale, 1.4)), sizing_mode="stretch_width",
+                     tools=TOOLS, x_axis_label="time (UTC)", y_axis_label="velocity (m/s)",
+                     x_range=DataRange1d(range_padding=0), y_range=DataRange1d())
+        fig.vstrip(x0="x0", x1="x1", source=self.windows, color="#c9d3e6", alpha=0.25)
+        fig.vstrip(x0="x0", x1="x1", source=self.current, color="#f2c14e", alpha=0.45)
+        u = fig.line("time", "u", source=self.lines, color="#33658a", line_width=1.2 * fontscale)
+        v = fig.line("time", "v", source=self.lines, color=colours["cw"], line_width=1.2 * fontscale)
+        fig.x_range.renderers = fig.y_range.renderers = [u, v]  # the window shading does not widen the axes
+        fig.add_layout(Legend(items=[LegendItem(label="u (east)", renderers=[u]),
+                                     LegendItem(label="v (north)", renderers=[v])],
+                              location="top_left", click_policy="hide", background_fill_alpha=0.7))
+        scale_fonts(fig, fontscale)
+        self.figure = fig
+
+    def show(self, title: str, velocity: pd.DataFrame, windows: list, current) -> None:
+        """Draw ``velocity`` (rows with ``time``, ``u``, ``v``), the spans of ``windows`` and the ``current`` one
+        (Windows, or None)."""
+        self.lines.data = {"time": velocity["time"].to_numpy(), "u": velocity["u"].to_numpy(float),
+                           "v": velocity["v"].to_numpy(float)}
+        self.windows.data = {"x0": np.array([w.start for w in windows], "datetime64[ns]"),
+                             "x1": np.array([w.end for w in windows], "datetime64[ns]")}
+        self.current.data = ({"x0": np.array([current.start], "datetime64[ns]"),
+                              "x1": np.array([current.end], "datetime64[ns]")} if current is not None
+                             else {"x0": [], "x1": []})
+        self.figure.title.text = title
+
+
+class RotarySpectrumFigure:
+    """The rotary spectra of one window in two log-log panels, clockwise (frequency axis reversed, on the left)
+    and counterclockwise: periodogram, multitaper estimate with its confidence band, the fitted model inside and
+    beyond the fitted band, the position-noise floor, the edge of the fitted band, the local inertial frequency and
+    the main tidal frequencies."""
+
+    #: the legend's entries (counterclockwise panel), in order
+    LEGEND = ("periodogram", "multitaper", "fitted model", "model beyond fitted band", "position-noise floor")
+
+    def __init__(self, colours: dict, ink: str, tides: dict, fontscale: float = 1.0):
+        from bokeh.plotting import figure
+
+        self.tides = tides
+        self.y_range = Range1d(1e-8, 1.0)  # shared: the two panels compare powers
+        self.sources: dict = {}
+        self.legend_items: dict = {}
+        self.inertial_labels: dict = {}
+        figs = []
+        for side in ("cw", "ccw"):
+            name = "clockwise" if side == "cw" else "counterclockwise"
+            fig = figure(x_axis_type="log", y_axis_type="log", height=int(330 * min(fontscale, 1.3)),
+                         sizing_mode="stretch_width", min_width=300, tools=TOOLS, title=name,
+                         x_axis_label=f"{name} frequency (cpd)", y_axis_label="(m/s)²/cpd",
+                         x_range=Range1d(*((10.0, 1e-2) if side == "cw" else (1e-2, 10.0))),
+                         y_range=self.y_range)
+            src = {k: ColumnDataSource({"f": [], "y": []}) for k in ("pg", "mt", "model", "beyond", "floor")}
+            src["band"] = ColumnDataSource({"f": [], "lo": [], "hi": []})
+            src["edge"] = ColumnDataSource({"f": []})
+            src["inertial"] = ColumnDataSource({"f": []})
+            src["tides"] = ColumnDataSource({"f": [], "y": [], "name": []})
+            fig.varea("f", "lo", "hi", source=src["band"], color=colours[side], alpha=0.18)
+            r = {"periodogram": fig.line("f", "y", source=src["pg"], color="#b8b8b8", line_width=0.6),
+                 "multitaper": fig.line("f", "y", source=src["mt"], color=colours[side], line_width=1.6 * fontscale),
+                 "fitted model": fig.line("f", "y", source=src["model"], color=ink, line_width=2.2 * fontscale,
+                                          line_dash="dashed"),
+                 "model beyond fitted band": fig.line("f", "y", source=src["beyond"], color=ink,
+                                                      line_width=1.2 * fontscale, line_dash="dotted"),
+                 "position-noise floor": fig.line("f", "y", source=src["floor"], color="#8a8a8a", line_width=1.5,
+                                                  line_dash="dashdot")}
+            fig.vspan("f", source=src["edge"], color="#888888", line_width=1)
+            fig.vspan("f", source=src["inertial"], color=colours["inertial"], line_width=1.5, line_dash="dotdash")
+            fig.vspan("f", source=src["tides"], color=colours["tide"], line_width=0.8, line_dash="dotted")
+            fig.text("f", "y", text="name", source=src["tides"], text_color=colours["tide"],
+                     text_font_size=f"{int(8 * fontscale)}pt", text_baseline="bottom")
+            label = Label(x=1.0, y=1.0, text=" f", text_align="left", text_baseline="top", visible=False,
+                          text_color=colours["inertial"], text_font_size=f"{int(10 * fontscale)}pt")
+            fig.add_layout(label)
+            if side == "ccw":
+                items = {k: LegendItem(label=k, renderers=[v]) for k, v in r.items()}
+                fig.add_layout(Legend(items=list(items.values()), location="bottom_left", click_policy="hide",
+                                      background_fill_alpha=0.55))
+                self.legend_items = items
+            scale_fonts(fig, fontscale)
+            self.sources[side] = src
+            self.inertial_labels[side] = label
+            figs.append(fig)
+        self.figures = figs
+        self.layout = row(*figs, sizing_mode="stretch_width")
+
+    def show(self, window, fit) -> None:
+        """Draw the spectra of ``window`` (a Window) and, when ``fit`` (its FitResult) has finite estimates, the
+        fitted model."""
+        from driftspec.analysis.spectral.periodogram import multitaper_spectrum, rotary_periodogram
+
+        mt = multitaper_spectrum(window.z, window.dt_seconds, time_bandwidth=3)
+        pg = rotary_periodogram(window.z, window.dt_seconds)
+        has_fit = fit is not None and fit.family is not None and np.all(np.isfinite(fit.theta))
+        if has_fit:
+            ff, ee, inb = fit.expected_spectrum()
+            edge = fit.prepared.freq_cpd[fit.prepared.band].max() if fit.prepared is not None else 0.0
+        pos = mt.lower[mt.lower > 0]
+        low = float(pos.min()) if pos.size else 1e-8
+        top = float(np.nanmax(mt.upper))
+        fc = window.inertial_frequency_cpd
+        any_floor = False
+        for (side, src), fig in zip(self.sources.items(), self.figures):
+            sign = -1 if side == "cw" else 1
+            sel = np.sign(mt.freq_cpd) == sign
+            f = np.abs(mt.freq_cpd[sel])
+            o = np.argsort(f)
+            data = {"band": {"f": f[o], "lo": _log_positive(mt.lower[sel][o]), "hi": _log_positive(mt.upper[sel][o])},
+                    "mt": {"f": f[o], "y": _log_positive(mt.power[sel][o])}}
+            ps = np.sign(pg.freq_cpd) == sign
+            fp = np.abs(pg.freq_cpd[ps])
+            op = np.argsort(fp)
+            data["pg"] = {"f": fp[op], "y": _log_positive(pg.power[ps][op])}
+            empty = {"f": np.zeros(0), "y": np.zeros(0)}
+            data["model"] = data["beyond"] = data["floor"] = empty
+            data["edge"] = {"f": np.zeros(0)}
+            if has_fit:
+                s = np.sign(ff) == sign
+                fa = np.abs(ff[s])
+                om = np.argsort(fa)
+                e_side, in_side = ee[s][om], inb[s][om]
+                data["model"] = {"f": fa[om], "y": np.where(in_side, e_side, np.nan)}
+                data["beyond"] = {"f": fa[om], "y": np.where(in_side, np.nan, e_side)}
+                floor = fit.noise_floor(fa[om] * sign)
+                if np.any(floor > 0):
+                    any_floor = True
+                    data["floor"] = {"f": fa[om][floor > 0], "y": floor[floor > 0]}
+                data["edge"] = {"f": np.array([edge], float)}
+            inertial_here = np.sign(fc) == sign and abs(fc) > 0
+            data["inertial"] = {"f": np.array([abs(fc)] if inertial_here else [], float)}
+            label = self.inertial_labels[side]
+            label.update(x=abs(fc) if inertial_here else 1.0, y=top, visible=bool(inertial_here))
+            data["tides"] = {"f": np.array(list(self.tides.values()), float),
+                             "y": np.full(len(self.tides), low), "name": list(self.tides)}
+            for k, d in data.items():
+                src[k].data = d
+            positive = f[o][f[o] > 0]
+            if positive.size:  # the clockwise axis runs from high to low frequency (start > end)
+                lo, hi = float(positive.min()), float(positive.max())
+                a, b = (hi, lo) if side == "cw" else (lo, hi)
+                fig.x_range.update(start=a, end=b, reset_start=a, reset_end=b)
+        ylim = (low / 5 if pos.size else 1e-8, top * 3)
+        self.y_range.update(start=ylim[0], end=ylim[1], reset_start=ylim[0], reset_end=ylim[1])
+        for k in ("fitted model", "model beyond fitted band"):
+            self.legend_items[k].visible = bool(has_fit)
+        self.legend_items["position-noise floor"].visible = any_floor
+
+
+class ComplementaryFigure:
+    """The complementary (relation) spectrum of an anisotropic fit: observed and fitted ``|J(f) J(-f)|``."""
+
+    def __init__(self, colours: dict, fontscale: float = 1.0):
+        from bokeh.plotting import figure
+
+        self.observed = ColumnDataSource({"f": [], "y": []})
+        self.model = ColumnDataSource({"f": [], "y": []})
+        fig = figure(x_axis_type="log", y_axis_type="log", height=int(280 * min(fontscale, 1.3)),
+                     sizing_mode="stretch_width", min_width=260, tools=TOOLS, title="complementary",
+                     x_axis_label="frequency |f| (cpd)", y_axis_label="(m/s)²/cpd")
+        o = fig.line("f", "y", source=self.observed, color="#7d7d7d", line_width=0.8)
+        m = fig.line("f", "y", source=self.model, color=colours["inertial"], line_width=2.2 * fontscale,
+                     line_dash="dashed")
+        fig.add_layout(Legend(items=[LegendItem(label="|J(f) J(−f)| observed", renderers=[o]),
+                                     LegendItem(label="fitted model (expected)", renderers=[m])],
+                              location="bottom_left", click_policy="hide", background_fill_alpha=0.55))
+        scale_fonts(fig, fontscale)
+        self.figure = fig
+
+    def show(self, f, observed, model, anisotropy: float, pvalue: float) -> None:
+        ok = observed > 0
+        self.observed.data = {"f": f[ok], "y": observed[ok]}
+        self.model.data = {"f": f, "y": _log_positive(model)}
+        self.figure.title.text = f"complementary (ρ {anisotropy:.2f}, p {pvalue:.2g})"
+
+
+class TrackMapFigure:
+    """All tracks as a raster (the mean of a value per screen pixel, computed with datashader), over filled land,
+    shoreline and graticule, with degree labels; the selected track, the box-selected region and a model variance
+    ellipse on top. An invisible, thinned copy of the samples carries the hover (track, longitude, latitude) and
+    the box selection."""
+
+    def __init__(self, *, extent, frame_width: int, frame_height: int, colours: dict, land_xy, grid_xy,
+                 grid_labels, ticks, picker: dict, clabel: str):
+        from bokeh.models import (
+            BoxSelectTool,
+            ColorBar,
+            EqHistColorMapper,
+            FixedTicker,
+            HoverTool,
+            TapTool,
+            WheelZoomTool,
+        )
+        from bokeh.plotting import figure
+        from colorcet import fire
+
+        (x0, x1), (y0, y1) = extent
+        wheel = WheelZoomTool()
+        fig = figure(frame_width=frame_width, frame_height=frame_height, x_range=Range1d(x0, x1),
+                     y_range=Range1d(y0, y1), title="All tracks", background_fill_color="#eef2f5",
+                     tools=["pan", wheel, "box_zoom", TapTool(), "reset", "save"], active_scroll=wheel)
+        fig.grid.visible = False  # the graticule is the grid
+        if len(land_xy):
+            fig.patch(land_xy[:, 0], land_xy[:, 1], fill_color=colours["land"], line_color=colours["coast"],
+                      line_width=0.7)  # every island one glyph: parts separated by NaN rows
+        self.raster = ColumnDataSource({"image": [], "x": [], "y": [], "dw": [], "dh": []})
+        self.mapper = EqHistColorMapper(palette=list(fire), nan_color="rgba(0, 0, 0, 0)")
+        fig.image("image", "x", "y", "dw", "dh", source=self.raster, color_mapper=self.mapper)
+        self.colorbar = ColorBar(color_mapper=self.mapper, title=clabel, title_standoff=8, width=16)
+        fig.add_layout(self.colorbar, "right")
+        if len(grid_xy):
+            fig.line(grid_xy[:, 0], grid_xy[:, 1], color=colours["grid"], line_width=0.6, line_dash="dashed",
+                     alpha=0.8)
+        if grid_labels:
+            lx, ly, lt = zip(*grid_labels)
+            fig.text(list(lx), list(ly), text=list(lt), text_color="#3a4450", text_font_size="9pt",
+                     text_align="left", text_baseline="bottom")
+        pick = fig.scatter("x", "y", source=ColumnDataSource(picker), size=4, alpha=0, nonselection_alpha=0,
+                           selection_alpha=0)
+        fig.add_tools(HoverTool(renderers=[pick], tooltips=[("track", "@track"), ("longitude", "@lon{0.00}°"),
+                                                            ("latitude", "@lat{0.00}°")]),
+                      BoxSelectTool(renderers=[pick]))
+        self.selected = ColumnDataSource({"x": [], "y": []})
+        fig.line("x", "y", source=self.selected, color=colours["track"], line_width=2.5)
+        self.region = ColumnDataSource({"left": [], "right": [], "bottom": [], "top": []})
+        fig.quad("left", "right", "top", "bottom", source=self.region, fill_alpha=0, line_color="#2b5fd9",
+                 line_width=2)
+        self.ellipse = ColumnDataSource({k: [] for k in ("x", "y", "sd_major", "sd_minor", "angle", "rho",
+                                                         "pvalue")})
+        self.ellipse_line = fig.line("x", "y", source=self.ellipse, color=colours["inertial"], line_width=3)
+        fig.add_tools(HoverTool(renderers=[self.ellipse_line], tooltips=[
+            ("model std. dev. along the axis", "@sd_major{0.000} m/s"), ("across", "@sd_minor{0.000} m/s"),
+            ("axis", "@angle{0.0}° from east"), ("anisotropy ρ", "@rho{0.000}"),
+            ("isotropy p-value", "@pvalue{0.0000}")]))
+        self.ellipse_text = ColumnDataSource({"x": [], "y": [], "text": []})
+        fig.text("x", "y", text="text", source=self.ellipse_text, text_color=colours["inertial"],
+                 text_font_size="10pt", text_align="left", text_baseline="bottom")
+        self.ellipse_item = LegendItem(label="model variance ellipse", renderers=[self.ellipse_line],
+                                       visible=False)
+        fig.add_layout(Legend(items=[self.ellipse_item], location="bottom_left"))
+        xt, yt = ticks
+        if xt:
+            fig.xaxis.ticker = FixedTicker(ticks=list(xt))
+            fig.xaxis.major_label_overrides = {float(k): v for k, v in xt.items()}
+            fig.yaxis.ticker = FixedTicker(ticks=list(yt))
+            fig.yaxis.major_label_overrides = {float(k): v for k, v in yt.items()}
+            fig.xaxis.axis_label, fig.yaxis.axis_label = "longitude", "latitude"
+        else:  # a polar view: the labels sit on the graticule lines
+            fig.xaxis.visible = fig.yaxis.visible = False
+        self.figure = fig
+
+    def show_raster(self, image, x_range, y_range, clabel: str) -> None:
+        """The raster (rows from south to north) covering ``x_range`` x ``y_range`` (projected metres)."""
+        (x0, x1), (y0, y1) = x_range, y_range
+        self.raster.data = {"image": [np.asarray(image, np.float32)], "x": [x0], "y": [y0], "dw": [x1 - x0],
+                            "dh": [y1 - y0]}
+        self.colorbar.title = clabel
+
+    def show_track(self, x, y) -> None:
+        self.selected.data = {"x": np.asarray(x, float), "y": np.asarray(y, float)}
+
+    def show_region(self, box) -> None:
+        """``box``: (x0, y0, x1, y1) projected, or None."""
+        self.region.data = ({"left": [], "right": [], "bottom": [], "top": []} if box is None else
+                            {"left": [min(box[0], box[2])], "right": [max(box[0], box[2])],
+                             "bottom": [min(box[1], box[3])], "top": [max(box[1], box[3])]})
+
+    def show_ellipse(self, ring=None, values=None, text="", solid=True) -> None:
+        """A model variance ellipse (``ring``: (m, 2) projected) with its numbers (``values``: sd_major, sd_minor,
+        angle, rho, pvalue) in its hover and ``text`` beside it; nothing when ``ring`` is None."""
+        if ring is None:
+            self.ellipse.data = {k: [] for k in self.ellipse.data}
+            self.ellipse_text.data = {"x": [], "y": [], "text": []}
+            self.ellipse_item.visible = False
+            return
+        n = len(ring)
+        self.ellipse.data = {"x": ring[:, 0], "y": ring[:, 1], **{k: np.full(n, float(v)) for k, v in values.items()}}
+        self.ellipse_line.glyph.line_dash = "solid" if solid else "dashed"
+        self.ellipse_text.data = {"x": [float(ring[:, 0].max())], "y": [float(ring[:, 1].max())], "text": [text]}
+        self.ellipse_item.visible = True
