@@ -240,7 +240,7 @@ def test_first_look_is_full_and_the_fit_equals_the_command_line(server, served_d
     labels = _wait_for(lambda: _axis_labels(page), lambda v: sum("°" in x for x in v) >= 4)
     assert sum("°" in x for x in labels) >= 4
     page.screenshot(path=str(artifacts_dir / "dashboard-parameter-map.png"), full_page=True)
-    assert page.console_errors == [], page.console_errors
+    assert page.console_errors == [], (page.console_errors, page.outside)
     assert page.outside == [], page.outside  # nothing is fetched from outside the machine
 
 
@@ -291,7 +291,7 @@ def test_box_select_sets_the_region_and_the_link_restores_it(server, browser, pa
     finally:
         ctx.close()
     page.screenshot(path=str(artifacts_dir / "dashboard-region.png"), full_page=True)
-    assert page.console_errors == [], page.console_errors
+    assert page.console_errors == [], (page.console_errors, page.outside)
 
 
 def test_rapid_changes_end_on_the_current_settings(server, page, artifacts_dir):
@@ -311,7 +311,7 @@ def test_rapid_changes_end_on_the_current_settings(server, page, artifacts_dir):
     fits = _wait_for(lambda: _table_values(page), lambda v: "matern_alpha" in v)
     assert "inertial_variance" not in fits  # the table is the current model's
     page.screenshot(path=str(artifacts_dir / "dashboard-after-rapid-changes.png"), full_page=True)
-    assert page.console_errors == [], page.console_errors
+    assert page.console_errors == [], (page.console_errors, page.outside)
 
 
 @pytest.mark.xfail(reason="known shortfall (issue 15 stays open): long jobs now run at background priority, but "
@@ -377,4 +377,4 @@ def test_maps_show_degrees_graticule_and_land(server, page, artifacts_dir, name,
     _wait_for(lambda: page.locator("canvas").count(), lambda c: c >= 5)
     time.sleep(2)
     page.screenshot(path=str(artifacts_dir / f"dashboard-parameter-map-{name.split('.')[0]}.png"), full_page=True)
-    assert page.console_errors == [], page.console_errors
+    assert page.console_errors == [], (page.console_errors, page.outside)
