@@ -709,30 +709,6 @@ def bin_variance_ellipses(vel: pd.DataFrame, lon_edges, lat_edges) -> pd.DataFra
 
 
 # ====================================================================== views
-def _on_server() -> bool:
-    """Whether the page is being built for a server session. There plots load after the page (quick to open); in
-    a notebook they are drawn with the cell, so that Panel inlines their style sheets (offline notebooks)."""
-    doc = pn.state.curdoc
-    return doc is not None and getattr(doc, "session_context", None) is not None
-
-
-#: a still "drawing ..." note instead of Panel's spinning loading indicator on panels drawn after the page has
-#: loaded: the spinner is an animated image that the browser redraws many times a second for as long as the page
-#: waits, which on a busy server with many pages opening costs more browser time than drawing the page itself
-STILL_LOADING_CSS = """
-:host(.pn-loading):before, .pn-loading:before {
-  -webkit-mask-image: none !important; mask-image: none !important; background-color: transparent !important;
-  content: 'drawing \\2026'; width: auto !important; height: auto !important; color: #5a6270; font-size: 1.1em;
-}
-"""
-
-
-def deferred(obj, **params):
-    """``obj`` (a function or method) drawn after the page has loaded on a server, with a still loading note."""
-    on_server = _on_server()
-    return pn.panel(obj, defer_load=on_server, stylesheets=[STILL_LOADING_CSS] if on_server else [], **params)
-
-
 class View(pn.viewable.Viewer):
     """A panel of the page drawing from one Explorer."""
 
