@@ -160,6 +160,17 @@ def _hermite(x, step, f, df):
     return ((c3[i] * t + c2[i]) * t + c1[i]) * t + c0[i]
 
 
+def _fix_error_sd(family, extra, n_fixes) -> np.ndarray:
+    """Each fix's position error standard deviation per component (m) as ``family`` has it at its extra parameters
+    ``extra``: the given errors times the fitted scale, one fitted white noise, or none."""
+    op = family.operator
+    if op.noise == "fixed":
+        return op.sigma_used * (extra[-1] if family._scaled else 1.0)
+    if op.noise == "fitted":
+        return np.full(n_fixes, extra[0])
+    return np.zeros(n_fixes)
+
+
 def irregular_periodogram_covariance(family, theta, prep, context) -> np.ndarray:
     """``cov(I_j, I_k)`` over the band (band x band, ((m/s)^2 per cpd)^2) of a window of velocities made from
     irregular fixes (``family``: an :class:`~driftspec.analysis.spectral.irregular.IrregularlyObserved`), in closed
@@ -217,12 +228,7 @@ def irregular_periodogram_covariance(family, theta, prep, context) -> np.ndarray
     m[below] = v
     m[below[1], below[0]] = np.conj(v)
     d = m[1:, :-1] - m[:-1, :-1] - m[1:, 1:] + m[:-1, 1:]  # cov of the displacements, (m/s)^2 day^2
-    if op.noise == "fixed":
-        sigma = op.sigma_used * (extra[-1] if family._scaled else 1.0)
-    elif op.noise == "fitted":
-        sigma = np.full(s.size, extra[0])
-    else:
-        sigma = np.zeros(s.size)
+    sigma = _fix_error_sd(family, extra, s.size)
     nv = 2.0 * sigma**2 / SECONDS_PER_DAY**2  # each fix's error variance, ((m/s) day)^2
     k = np.arange(s.size - 1)
     d[k, k] += nv[:-1] + nv[1:]
@@ -293,12 +299,7 @@ def irregular_velocities(family, theta, prep, context, rng, n_sim: int, improper
     np.cumsum(0.5 * (v[:, 1:] + v[:, :-1]), axis=1, dtype=complex, out=x[:, 1:])
     x *= dt_f * SECONDS_PER_DAY  # m, by the trapezoid rule
     pos = _interp_rows(x, s / dt_f)
-    if op.noise == "fixed":
-        sigma = op.sigma_used * (extra[-1] if family._scaled else 1.0)
-    elif op.noise == "fitted":
-        sigma = np.full(s.size, extra[0])
-    else:
-        sigma = np.zeros(s.size)
+    sigma = _fix_error_sd(family, extra, s.size)
     pos = pos + sigma * (rng.standard_normal(pos.shape) + 1j * rng.standard_normal(pos.shape))
     return (op.weights @ pos.T).T / SECONDS_PER_DAY  # m/s on the grid (zero rows where invalid)
 
