@@ -191,6 +191,22 @@ def lag_truncated_lorentzian_jacobian(var, gam, df, max_lag_days):
     return s, jac
 
 
+def cut_density_change(component, theta, freq_cpd, context, max_lag_days):
+    """For a damped oscillation (:class:`Inertial`, :class:`InertialFollowing`): how its density and derivatives
+    change when its autocovariance is cut at ``max_lag_days`` (:func:`lag_truncated_lorentzian_jacobian` less the
+    plain Lorentzian), as ``(dS, dJ)``; ``None`` for any other component."""
+    if not isinstance(component, (Inertial, InertialFollowing)):
+        return None
+    var, centre, gam = theta
+    if isinstance(component, InertialFollowing):
+        fc = context.inertial_frequency_cpd if context is not None else None
+        centre = centre + (fc if fc is not None else 0.0)
+    df = np.asarray(freq_cpd, float) - centre
+    s_plain, j_plain = _lorentzian_jacobian(var, gam, df)
+    s_cut, j_cut = lag_truncated_lorentzian_jacobian(var, gam, df, max_lag_days)
+    return s_cut - s_plain, j_cut - j_plain
+
+
 def modulation_sequence(latitude_series, dt_days) -> np.ndarray:
     """``exp(i phase_t)`` with ``phase`` the running integral of ``2 pi f_inertial(latitude_t)``."""
     lat = np.asarray(latitude_series, float)

@@ -113,7 +113,7 @@ from threadpoolctl import ThreadpoolController
 
 from ..conventions import SECONDS_PER_DAY
 from ..models.base import FitContext, ModelFamily, Parameter
-from ..models.inertial import Inertial, InertialFollowing, _lorentzian_jacobian, lag_truncated_lorentzian_jacobian
+from ..models.inertial import Inertial, cut_density_change
 from ..models.observation import PositionNoise
 from .periodogram import masked_taper
 
@@ -380,7 +380,7 @@ class IrregularObservation:
         reach = tspan + 2.0 / transition_cpd  # the kernel's reach in lag, with the partition's
         cut = 1.0 / d1 - reach
         # cutting at L keeps the integral only when L >= reach (the cut-off autocovariance never meets the kernel);
-        # with the fine step's floor this holds for every window at oversample 2 and more
+        # with the steps' 30-day floor this holds for every window at the default oversample of 4
         self._truncation_lag_days = cut if cut >= reach else None
         kernels = [self._kernel_columns(d1, np.arange(-q1, q1 + 1)[keep], w_fine)]
         nodes_all = [fine]
@@ -523,22 +523,15 @@ class IrregularObservation:
         if self._truncation_lag_days is None:
             return dens, jac
         fine = slice(0, self._fine_count)
-        fc = context.inertial_frequency_cpd if context is not None and context.inertial_frequency_cpd is not None \
-            else 0.0
         theta = np.asarray(theta, float)
         for comp, sl in family.components():
-            if not isinstance(comp, (Inertial, InertialFollowing)):
+            change = cut_density_change(comp, theta[sl], self.nodes_cpd[fine], context, self._truncation_lag_days)
+            if change is None:
                 continue
-            var, centre, gam = theta[sl]
-            if isinstance(comp, InertialFollowing):
-                centre = centre + fc
-            df = self.nodes_cpd[fine] - centre
-            s_plain, j_plain = _lorentzian_jacobian(var, gam, df)
-            s_cut, j_cut = lag_truncated_lorentzian_jacobian(var, gam, df, self._truncation_lag_days)
             dens = dens.copy() if jac is None else dens
-            dens[fine] += s_cut - s_plain
+            dens[fine] += change[0]
             if jac is not None:
-                jac[sl, fine] += j_cut - j_plain
+                jac[sl, fine] += change[1]
         return dens, jac
 
     def _kernel_integral(self, family, theta, context, jacobian):
