@@ -79,26 +79,29 @@ def served_dir(demo_dir, tmp_path_factory):
 
 
 @pytest.fixture(scope="module")
-def server(served_dir):
+def server(served_dir, artifacts_dir):
+    """`driftspec serve` on the served folder: its URL. Everything the server prints goes to
+    ``dashboard-server.log`` among the test artifacts (a pipe nobody reads would fill and stop the server)."""
     _browser_or_skip()
     port = _free_port()
+    log_path = artifacts_dir / "dashboard-server.log"
+    log = open(log_path, "w")  # noqa: SIM115 - closed below
     proc = subprocess.Popen([sys.executable, "-m", "driftspec.app.cli", "serve", str(served_dir / "fixes.parquet"),
-                             "--port", str(port)], stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+                             "--port", str(port)], stdout=log, stderr=subprocess.STDOUT, text=True)
     url = None
     deadline = time.time() + 180
-    lines = []
     while time.time() < deadline:
-        line = proc.stdout.readline()
-        lines.append(line)
-        m = re.search(r"dashboard at (http://\S+)", line)
+        m = re.search(r"dashboard at (http://\S+)", log_path.read_text())
         if m:
             url = m.group(1)
             break
         if proc.poll() is not None:
             break
+        time.sleep(0.2)
     if url is None:
         proc.kill()
-        pytest.fail("server did not start:\n" + "".join(lines))
+        log.close()
+        pytest.fail("server did not start:\n" + log_path.read_text())
     for _ in range(100):
         try:
             socket.create_connection(("127.0.0.1", port), timeout=0.5).close()
@@ -111,6 +114,7 @@ def server(served_dir):
         proc.wait(20)
     except subprocess.TimeoutExpired:
         proc.kill()
+    log.close()
 
 
 @pytest.fixture(scope="module")
@@ -368,7 +372,7 @@ def test_bad_links_and_files_give_one_line_messages(server, page):
 def test_maps_show_degrees_graticule_and_land(server, page, artifacts_dir, name, hemisphere):
     _open(page, f"{server}?{urlencode({'data': name})}")
     if name == "coast.parquet":  # Mercator: degrees on both axes
-        # the map is drawn after the page has loaded (in the server's thread pool): wait for its axes
+        # wait for the map's axes
         labels = _wait_for(lambda: _axis_labels(page), lambda v: len(v) > 0, timeout=90)
         assert any(re.fullmatch(r"\d+°W", x) for x in labels) and any(re.fullmatch(r"\d+°N", x) for x in labels)
     page.screenshot(path=str(artifacts_dir / f"dashboard-map-{name.split('.')[0]}.png"),
