@@ -1069,11 +1069,18 @@ class TrackMap(LiveView):
 
 
 class Summary(View):
-    """One line saying what is selected (also what a browser test reads)."""
+    """One line saying what is selected (also what a browser test reads), its text updated in place."""
 
-    @param.depends("state.track", "state.window", "state.window_days", "state.overlap", "state.model",
-                   "state.estimator", "state.region")
-    def line(self):
+    def __init__(self, **params):
+        super().__init__(**params)
+        self._pane = pn.pane.Markdown(self.text(), css_classes=["ds-summary"], sizing_mode="stretch_width")
+        self.state.param.watch(self._update, ["track", "window", "window_days", "overlap", "model", "estimator",
+                                              "region"])
+
+    def _update(self, *_):
+        self._pane.object = self.text()
+
+    def text(self) -> str:
         ex, st = self.ex, self.state
         ws = ex.windows()
         cur = ex.current()
@@ -1082,13 +1089,11 @@ class Summary(View):
         if st.region:
             region = (f" · region {st.region[1]:.1f}..{st.region[3]:.1f}°N, {st.region[0]:.1f}..{st.region[2]:.1f}°E"
                       f" ({len(ex.tracks_in_region())} tracks)")
-        return pn.pane.Markdown(
-            f"**Track {st.track}** · window {min(st.window, max(len(ws) - 1, 0)) + 1} of {len(ws)}{when} · "
-            f"{len(ws)} windows of {st.window_days:g} days · model {st.model} · {st.estimator} estimator" + region,
-            css_classes=["ds-summary"], sizing_mode="stretch_width")
+        return (f"**Track {st.track}** · window {min(st.window, max(len(ws) - 1, 0)) + 1} of {len(ws)}{when} · "
+                f"{len(ws)} windows of {st.window_days:g} days · model {st.model} · {st.estimator} estimator" + region)
 
     def __panel__(self):
-        return pn.panel(self.line, sizing_mode="stretch_width", defer_load=False)
+        return self._pane
 
 
 class VelocityView(LiveView):
@@ -1115,10 +1120,16 @@ class SpectrumView(LiveView):
     def __init__(self, **params):
         self._note = pn.pane.Markdown("No window of this length with enough valid samples on this track.",
                                       visible=False)
-        self._comp_pane = pn.pane.Bokeh(sizing_mode="stretch_width", visible=False)
+        self._comp_pane = pn.pane.Bokeh(sizing_mode="stretch_width")
+        # the plots are shown and hidden through plain columns around them: setting ``visible`` on a Bokeh pane
+        # makes Panel copy the plot's properties back into the pane, which fails on the style sheets the page gave
+        # the plot (a TypeError that stopped the redraw half way, once per page)
+        self._box = pn.Column(sizing_mode="stretch_width")
+        self._comp_box = pn.Column(self._comp_pane, sizing_mode="stretch_width", visible=False)
         self._comp = None
         self._spectra_of = None  # the window whose spectra the plot shows
         super().__init__(**params)
+        self._box.append(self._pane)
 
     def _watch(self):
         return [(self.ex, ["current_window", "current_fit", "current_anisotropic"]), (self.state, ["anisotropic"])]
@@ -1132,7 +1143,7 @@ class SpectrumView(LiveView):
     def _draw(self):
         w, res = self.ex.current_window, self.ex.current_fit
         self._note.visible = w is None
-        self._pane.visible = w is not None
+        self._box.visible = w is not None
         if w is not None:
             self._fig.show(w, res)
         a = self.ex.current_anisotropic
@@ -1145,56 +1156,84 @@ class SpectrumView(LiveView):
                 self._comp_pane.object = self._comp.figure
             else:
                 self._comp.show(*complementary_curves(a), a.params["anisotropy"], a.isotropy_pvalue)
-        self._comp_pane.visible = bool(shown)
+        self._comp_box.visible = bool(shown)
 
     def _extra_panes(self):
         return [self._comp_pane]
 
     def __panel__(self):
-        return pn.Column(self._note, self._pane, self._comp_pane, sizing_mode="stretch_width")
+        return pn.Column(self._note, self._box, self._comp_box, sizing_mode="stretch_width")
+
+
+#: how the fit tables show numbers: as Python prints them, all digits
+PLAIN_NUMBERS = {"value": {"type": "plaintext"}, "std. error": {"type": "plaintext"}}
 
 
 class FitTable(View):
-    """Parameters of the current window's fit, with status, goodness of fit and timing."""
+    """Parameters of the current window's fit, with status, goodness of fit and timing; under them, with the
+    anisotropic setting, the anisotropic fit's test and diffusivity tensor.
 
-    @param.depends("ex.current_fit", "ex.current_window")
-    def table(self):
+    The page holds one status text and one table of each kind, and a new fit puts new text and rows into them:
+    no new panes for the browser to build and lay out at every change."""
+
+    def __init__(self, **params):
+        super().__init__(**params)
+        self.info = pn.pane.Markdown("", css_classes=["ds-fitinfo"], sizing_mode="stretch_width")
+        self.params_table = pn.widgets.Tabulator(
+            pd.DataFrame(columns=["parameter", "value", "std. error", "unit"]), show_index=False, disabled=True,
+            layout="fit_data_fill", formatters=PLAIN_NUMBERS, sizing_mode="stretch_width", name="fit-table",
+            visible=False)
+        self.anisotropic_info = pn.pane.Markdown("", css_classes=["ds-aniso-info"], sizing_mode="stretch_width",
+                                                 visible=False)
+        self.anisotropic_table = pn.widgets.Tabulator(
+            pd.DataFrame(columns=["quantity", "value", "std. error", "unit"]), show_index=False, disabled=True,
+            layout="fit_data_fill", formatters=PLAIN_NUMBERS, sizing_mode="stretch_width",
+            name="anisotropic-fit-table", visible=False)
+        self.ex.param.watch(self._update, ["current_fit", "current_window", "current_anisotropic"])
+        self.state.param.watch(self._update, ["anisotropic", "estimator"])
+        self._update()
+
+    def _update(self, *_):
         ex = self.ex
         w, res = ex.current_window, ex.current_fit
         if w is None:
-            return pn.pane.Markdown("No window to fit.")
-        if res is None:
+            self.info.object = "No window to fit."
+        elif res is None:
             slow = " (the exact estimator takes minutes; *Cancel* stops it)" if self.state.estimator == "exact" \
                 else ""
-            return pn.pane.Markdown(f"Fitting window {w.start:%Y-%m-%d} → {w.end:%Y-%m-%d}{slow} …",
-                                    css_classes=["ds-fitinfo"])
-        rows = [{"parameter": p.name, "value": res.params[p.name], "std. error": res.stderr[p.name],
-                 "unit": p.unit} for p in res.family.parameters] if res.family is not None else []
-        rows.append({"parameter": "diffusivity", "value": res.diffusivity, "std. error": res.diffusivity_se,
-                     "unit": "m2 s-1"})
-        table = pn.widgets.Tabulator(pd.DataFrame(rows), show_index=False, disabled=True, layout="fit_data_fill",
-                                     formatters={"value": {"type": "plaintext"}, "std. error": {"type": "plaintext"}},
-                                     sizing_mode="stretch_width", name="fit-table")
-        colour = "#1f7a4a" if res.ok else "#b5522b"
-        info = pn.pane.Markdown(
-            f"<span style='color:{colour}'>&#9679;</span> **status** `{res.status}` {res.message}  \n"
-            f"**goodness of fit** p = {res.gof_pvalue:.3f} · log L = {res.loglik:.1f} · AIC = {res.aic:.1f}  \n"
-            f"window {w.start:%Y-%m-%d} → {w.end:%Y-%m-%d} · {res.n_valid}/{res.n_samples} valid · "
-            f"{res.n_freq} frequencies fitted · local f = {w.inertial_frequency_cpd:.3f} cpd · "
-            f"{res.stderr_method or 'no'} standard errors · refit {ex.refit_ms:.0f} ms",
-            css_classes=["ds-fitinfo"])
-        return pn.Column(info, table, *self._anisotropic(), sizing_mode="stretch_width")
+            self.info.object = f"Fitting window {w.start:%Y-%m-%d} → {w.end:%Y-%m-%d}{slow} …"
+        else:
+            rows = [{"parameter": p.name, "value": res.params[p.name], "std. error": res.stderr[p.name],
+                     "unit": p.unit} for p in res.family.parameters] if res.family is not None else []
+            rows.append({"parameter": "diffusivity", "value": res.diffusivity, "std. error": res.diffusivity_se,
+                         "unit": "m2 s-1"})
+            self.params_table.value = pd.DataFrame(rows)
+            colour = "#1f7a4a" if res.ok else "#b5522b"
+            self.info.object = (
+                f"<span style='color:{colour}'>&#9679;</span> **status** `{res.status}` {res.message}  \n"
+                f"**goodness of fit** p = {res.gof_pvalue:.3f} · log L = {res.loglik:.1f} · AIC = {res.aic:.1f}  \n"
+                f"window {w.start:%Y-%m-%d} → {w.end:%Y-%m-%d} · {res.n_valid}/{res.n_samples} valid · "
+                f"{res.n_freq} frequencies fitted · local f = {w.inertial_frequency_cpd:.3f} cpd · "
+                f"{res.stderr_method or 'no'} standard errors · refit {ex.refit_ms:.0f} ms")
+        self.params_table.visible = w is not None and res is not None
+        text, rows = self._anisotropic() if w is not None and res is not None else (None, None)
+        self.anisotropic_info.visible = text is not None
+        if text is not None:
+            self.anisotropic_info.object = text
+        self.anisotropic_table.visible = rows is not None
+        if rows is not None:
+            self.anisotropic_table.value = pd.DataFrame(rows)
 
     def _anisotropic(self):
-        """The anisotropic fit's rows: anisotropy and angle, the isotropy test, the diffusivity tensor."""
+        """The anisotropic fit's status text and rows (anisotropy and angle, the isotropy test, the diffusivity
+        tensor): ``(text or None, rows or None)``."""
         st, a = self.state, self.ex.current_anisotropic
         if st.anisotropic and st.estimator != "debiased":
-            return [pn.pane.Markdown("Anisotropic fits use the debiased estimator: choose it to fit one.",
-                                     css_classes=["ds-aniso-info"])]
+            return "Anisotropic fits use the debiased estimator: choose it to fit one.", None
         if not st.anisotropic or a is None:
-            return []
+            return None, None
         if a.family is None or not a.params or not np.all(np.isfinite(list(a.params.values()))):
-            return [pn.pane.Markdown(f"**anisotropic fit** `{a.status}` {a.message}", css_classes=["ds-aniso-info"])]
+            return f"**anisotropic fit** `{a.status}` {a.message}", None
         k = a.tensor
         rows = [{"quantity": n, "value": a.params[n], "std. error": a.stderr.get(n, np.nan), "unit": a.units.get(n, "")}
                 for n in ("anisotropy", "anisotropy_angle_deg")]
@@ -1208,19 +1247,16 @@ class FitTable(View):
                   "unit": "m2 s-1"},
                  {"quantity": "diffusivity_angle_deg", "value": a.diffusivity_angle_deg,
                   "std. error": a.diffusivity_angle_deg_se, "unit": "degree"}]
-        table = pn.widgets.Tabulator(pd.DataFrame(rows), show_index=False, disabled=True, layout="fit_data_fill",
-                                     formatters={"value": {"type": "plaintext"}, "std. error": {"type": "plaintext"}},
-                                     sizing_mode="stretch_width", name="anisotropic-fit-table")
         chosen = getattr(a, "selected", False)
-        info = pn.pane.Markdown(
-            f"**anisotropic fit** `{a.status}` · isotropy p = {a.isotropy_pvalue:.3g} "
-            f"({'rejected at 1 %: the anisotropic model is selected' if chosen else 'not rejected at 1 %'}) · "
-            f"ρ = {a.params['anisotropy']:.3f} along {a.params['anisotropy_angle_deg']:.1f}° · AIC {a.aic:.1f} "
-            f"(isotropic {a.aic_isotropic:.1f})", css_classes=["ds-aniso-info"])
-        return [info, table]
+        text = (f"**anisotropic fit** `{a.status}` · isotropy p = {a.isotropy_pvalue:.3g} "
+                f"({'rejected at 1 %: the anisotropic model is selected' if chosen else 'not rejected at 1 %'}) · "
+                f"ρ = {a.params['anisotropy']:.3f} along {a.params['anisotropy_angle_deg']:.1f}° · AIC {a.aic:.1f} "
+                f"(isotropic {a.aic_isotropic:.1f})")
+        return text, rows
 
     def __panel__(self):
-        return pn.Column(self.table, sizing_mode="stretch_width")
+        return pn.Column(self.info, self.params_table, self.anisotropic_info, self.anisotropic_table,
+                         sizing_mode="stretch_width")
 
 
 class RegionFit(View):
@@ -1253,8 +1289,7 @@ class RegionFit(View):
         rows = [{"parameter": k, "value": v, "std. error": r.stderr.get(k, np.nan), "unit": r.units.get(k, "")}
                 for k, v in r.params.items()]
         table = pn.widgets.Tabulator(pd.DataFrame(rows), show_index=False, disabled=True, layout="fit_data_fill",
-                                     formatters={"value": {"type": "plaintext"}, "std. error": {"type": "plaintext"}},
-                                     sizing_mode="stretch_width", name="region-fit-table",
+                                     formatters=PLAIN_NUMBERS, sizing_mode="stretch_width", name="region-fit-table",
                                      css_classes=["ds-region-table"])
         return pn.Column(info, table, sizing_mode="stretch_width")
 

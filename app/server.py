@@ -98,9 +98,14 @@ def _query() -> dict:
 
 
 def configure_panel() -> None:
-    """Server settings: plots are drawn after their page has loaded, in a pool of threads, so that one
-    session's drawing never holds up another session's page (Panel's "Enable Automatic Threading")."""
-    pn.config.nthreads = 4
+    """Server settings: resources served inline, plots on canvases.
+
+    Every change to a page's document runs on the server's event loop: fits run in worker processes
+    (:mod:`driftspec.app.jobs`) and report there. Panel's automatic threading (``config.nthreads``) stays off:
+    with it, a browser's changes were applied in threads while fit results were applied on the loop, and two
+    updates of one pane at once could send a reference to a plot the browser was never sent ("reference ...
+    isn't known" in the browser's console, after rapid changes of window length and model)."""
+    pn.config.nthreads = 0
     pn.config.inline = True  # every resource from this server: the page works with no network
     # plots drawn on 2-D canvases, not WebGL: they are small (hundreds to thousands of points; the map is one
     # raster image), which a canvas draws at once, while WebGL on a machine without a usable GPU runs in software

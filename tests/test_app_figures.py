@@ -234,8 +234,7 @@ def test_anisotropic_fit_table_shows_the_test_and_the_tensor(explorer, anisotrop
 
     ex = explorer
     w, a = anisotropic_fit
-    col = FitTable(ex=ex).table()
-    shown = next(o for o in col if getattr(o, "name", "") == "anisotropic-fit-table").value.set_index("quantity")
+    shown = FitTable(ex=ex).anisotropic_table.value.set_index("quantity")  # the Tabulator on the page
     # the same window fitted here directly, from the isotropic fit the dashboard shows
     direct = fit_anisotropic(w.z, w.dt_seconds / 86400, base_fit=ex.current_fit)
     assert shown.loc["isotropy p-value", "value"] == pytest.approx(direct.isotropy_pvalue, rel=1e-9)
