@@ -1,6 +1,8 @@
 """Static figures and map geometry of the app: projections against cartopy's own transforms, degree ticks at
 the projected positions of their degrees, and the quick-look PNG in a mid-latitude and a polar extent."""
 
+import re
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -324,3 +326,24 @@ def test_parameter_map_variance_ellipses_are_the_bins_sample_covariance(explorer
         r = np.hypot(path["x"] - path["x"][:-1].mean(), path["y"] - path["y"][:-1].mean())
         assert r.max() / r.min() == pytest.approx(path["sd_major"] / path["sd_minor"], rel=1e-2)
     ex._set(all_fits=None)
+
+
+def test_map_readout_names_the_fix_nearest_the_pointer(explorer):
+    """The readout under the map: the fix nearest the pointer (found here by brute force over every plotted fix, not
+    the map's k-d tree), its track, time and position; the same pane is given the new text."""
+    from driftspec.app.dashboard import TrackMap
+
+    view = TrackMap(ex=explorer)
+    pane = view._readout
+    pts = explorer.data.points
+    k = len(pts) // 3
+    x, y = float(pts["x"].iloc[k]) + 1.0, float(pts["y"].iloc[k]) - 1.0  # a metre off a plotted fix
+    view.param.update(pointer_x=x, pointer_y=y)
+    nearest = int(np.argmin(np.hypot(pts["x"].to_numpy() - x, pts["y"].to_numpy() - y)))
+    p = pts.iloc[nearest]
+    text = pane.object
+    assert view._readout is pane
+    assert f"**{explorer.track_ids[int(p['track_code'])]}**" in text
+    assert pd.Timestamp(int(p["t_ns"])).strftime("%Y-%m-%d %H:%M") in text
+    lat = re.search(r"(\d+\.\d+)°([NS])", text)
+    assert float(lat.group(1)) * (1 if lat.group(2) == "N" else -1) == pytest.approx(p["lat"], abs=0.006)
