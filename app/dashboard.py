@@ -65,6 +65,9 @@ CAUTION = (
 COLOURS = {"cw": "#b5522b", "ccw": "#1f7a7a", "model": "#20203a", "band": "#9aa0b4", "track": "#ff2d7a",
            "tide": "#7a6a00", "inertial": "#6a2fb5", "land": "#d9d4c7", "coast": "#6b6b6b", "grid": "#8c96a0"}
 MIN_COVERAGE = 0.5
+#: the controls' column, in the page's sidebar and beside the dashboard in a notebook (its settings are 285 px wide
+#: with their margins inside)
+SIDEBAR_WIDTH = 320
 #: the track map's frame, screen pixels
 MAP_HEIGHT = 480
 MAP_WIDTH = int(MAP_HEIGHT * MAP_RATIO)
@@ -590,7 +593,7 @@ class Explorer(param.Parameterized):
     def panel(self):
         """The whole dashboard as one Panel layout (for notebooks)."""
         self.start()
-        return pn.Row(pn.Column(Controls(ex=self), width=300), self.main_area(), sizing_mode="stretch_width")
+        return pn.Row(pn.Column(Controls(ex=self), width=SIDEBAR_WIDTH), self.main_area(), sizing_mode="stretch_width")
 
     def main_area(self):
         bar = pn.indicators.Progress(value=self.param.progress, max=100, sizing_mode="stretch_width", height=14,
@@ -600,8 +603,11 @@ class Explorer(param.Parameterized):
         cancel = pn.widgets.Button(name="Cancel", button_type="warning", width=90)
         cancel.on_click(self.cancel)
         explore = pn.Column(TrackMap(ex=self), Summary(ex=self), VelocityView(ex=self),
-                            pn.Row(SpectrumView(ex=self), pn.Column(FitTable(ex=self), RegionFit(ex=self), width=470),
-                                   sizing_mode="stretch_width"),
+                            # the fit under the spectra, not beside them: two spectra need about 660 px side by
+                            # side, and beside them the table covered the counterclockwise one on a laptop screen or
+                            # in a notebook's output
+                            SpectrumView(ex=self), pn.Column(FitTable(ex=self), RegionFit(ex=self), max_width=900,
+                                                             sizing_mode="stretch_width"),
                             sizing_mode="stretch_width", name="Explore")
         tabs = pn.Tabs(explore, ("Track summary", TrackSummary(ex=self)), ("Parameter map", ParameterMap(ex=self)),
                        ("Dispersion", DispersionView(ex=self)), ("About", about()), dynamic=True,
@@ -614,7 +620,7 @@ class Explorer(param.Parameterized):
         dark = self.state.theme == "dark"
         tpl = OfflineTemplate(
             title=self.title, sidebar=[Controls(ex=self)], main=[self.main_area()],
-            header_background="#0d1620" if dark else "#1d2b3a", sidebar_width=320,
+            header_background="#0d1620" if dark else "#1d2b3a", sidebar_width=SIDEBAR_WIDTH,
             theme="dark" if dark else "default", raw_css=[PRESENTATION_CSS],
             # no header busy spinner: Panel's busy state is one for the whole server, so every open page's spinner
             # turned (an animation redrawn by the browser many times a second) and was switched on and off whenever
@@ -1035,7 +1041,8 @@ class SpectrumView(LiveView):
         return [self._comp_pane]
 
     def __panel__(self):
-        return pn.Column(self._note, self._box, self._comp_box, sizing_mode="stretch_width")
+        return pn.Column(self._note, self._box, self._comp_box, sizing_mode="stretch_width",
+                         css_classes=["ds-spectra"])
 
 
 #: how the fit tables show numbers: as Python prints them, all digits

@@ -270,9 +270,10 @@ def main():
         first, done, peak = pages(a.sessions)
         print(f"first render of the demo page in Chromium: median {statistics.median(first):.1f} s "
               f"(runs {', '.join(f'{x:.1f}' for x in first)})  target < 5 s")
-        print(f"{a.sessions} sessions opened together: all rendered after {max(done):.1f} s (median "
-              f"{statistics.median(done):.1f} s)  target < 20 s; server peak memory {peak:.0f} MB "
-              f"(server and fit workers)")
+        if done:  # --sessions 0 skips the concurrent sessions
+            print(f"{a.sessions} sessions opened together: all rendered after {max(done):.1f} s (median "
+                  f"{statistics.median(done):.1f} s)  target < 20 s; server peak memory {peak:.0f} MB "
+                  f"(server and fit workers)")
         if a.page_cpu:
             t_render, until, settle = page_cpu()
             print(f"one more page: rendered after {t_render:.1f} s; CPU seconds until then {until}, in the 10 s "
