@@ -29,6 +29,7 @@ import numpy as np
 import pandas as pd
 import panel as pn
 import param
+from bokeh.models.widgets.tables import HTMLTemplateFormatter
 
 from driftspec.analysis.conventions import tidal_frequencies_cpd
 from driftspec.analysis.fitting import FitSpec, fit_window
@@ -1045,8 +1046,14 @@ class SpectrumView(LiveView):
                          css_classes=["ds-spectra"])
 
 
-#: how the fit tables show numbers: as Python prints them, all digits
-PLAIN_NUMBERS = {"value": {"type": "plaintext"}, "std. error": {"type": "plaintext"}}
+#: significant digits of the numbers in the fit tables (readable on a shared screen; the table keeps every digit,
+#: the browser rounds them for display)
+TABLE_DIGITS = 5
+_ROUNDED = HTMLTemplateFormatter(
+    template=f"<%= (value === null || value === undefined || !isFinite(value)) ? '–' : "
+             f"Number(Number(value).toPrecision({TABLE_DIGITS})) %>")
+#: how the fit tables show numbers: to ``TABLE_DIGITS`` significant digits, "–" where there is none
+PLAIN_NUMBERS = {"value": _ROUNDED, "std. error": _ROUNDED}
 
 
 class FitTable(View):
@@ -1061,7 +1068,8 @@ class FitTable(View):
         self.info = pn.pane.Markdown("", css_classes=["ds-fitinfo"], sizing_mode="stretch_width")
         self.params_table = pn.widgets.Tabulator(
             pd.DataFrame(columns=["parameter", "value", "std. error", "unit"]), show_index=False, disabled=True,
-            layout="fit_data_fill", formatters=PLAIN_NUMBERS, sizing_mode="stretch_width", name="fit-table",
+            layout="fit_data_fill", formatters=PLAIN_NUMBERS, sizing_mode="stretch_width",
+            name="fit-table",
             visible=False)
         self.anisotropic_info = pn.pane.Markdown("", css_classes=["ds-aniso-info"], sizing_mode="stretch_width",
                                                  visible=False)

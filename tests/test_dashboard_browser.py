@@ -16,8 +16,11 @@ import sys
 import time
 from urllib.parse import urlencode
 
+import numpy as np
 import pytest
 from conftest import chromium_path
+
+from driftspec.app.dashboard import TABLE_DIGITS
 
 pytestmark = pytest.mark.browser
 CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking",
@@ -190,8 +193,8 @@ def _table_values(page):
             cells = [c.strip() for c in row.locator(".tabulator-cell").all_inner_texts()]
             if cells and cells[0].isdigit():  # the row index column
                 cells = cells[1:]
-            if len(cells) >= 3:
-                out[cells[0]] = (float(cells[1]), float(cells[2]))
+            if len(cells) >= 3:  # "–" where there is no number
+                out[cells[0]] = tuple(np.nan if c == "–" else float(c) for c in cells[1:3])
     except Exception:  # noqa: BLE001 - the table is being redrawn; the caller reads again
         return {}
     return out
@@ -227,10 +230,11 @@ def test_first_look_is_full_and_the_fit_equals_the_command_line(server, served_d
     assert main(["fit", str(served_dir / "one.parquet"), "--out", str(out), *CLI_DEFAULTS, "--workers", "1",
                  "--no-progress"]) == 0
     row = read_table(out).sort_values("window_start").iloc[1]
+    digits = TABLE_DIGITS  # the page shows each number to this many significant digits
     for name, (value, se) in shown.items():
         if name in row:
-            assert value == pytest.approx(row[name], rel=1e-9), name
-            assert se == pytest.approx(row[name + "_se"], rel=1e-6, nan_ok=True), name
+            assert value == pytest.approx(float(f"{row[name]:.{digits}g}"), rel=1e-12), name
+            assert se == pytest.approx(float(f"{row[name + '_se']:.{digits}g}"), rel=1e-12, nan_ok=True), name
     assert {"matern_alpha", "matern_damping", "diffusivity"} <= set(shown)
     # the first look: the track summary and the parameter map fill without pressing anything
     page.get_by_text("Track summary", exact=True).click()
