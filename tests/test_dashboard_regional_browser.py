@@ -11,9 +11,12 @@ import shutil
 import time
 from urllib.parse import urlencode
 
+import numpy as np
 import pytest
 import test_dashboard_browser as base
 from test_dashboard_browser import _map_box, _moved, _open, _text, _wait_for
+
+from driftspec.app.dashboard import TABLE_DIGITS
 
 # the browser tests' fixtures, found by name (``server`` starts `driftspec serve` on this module's ``served_dir``)
 browser, page, server = base.browser, base.page, base.server
@@ -68,6 +71,16 @@ def _tables(pg):
     except Exception:  # noqa: BLE001 - a table is being redrawn; the caller reads again
         return []
     return out
+
+
+def _number(cell: str) -> float:
+    """A fit table's cell as a number ("–" where it shows none)."""
+    return np.nan if cell == "–" else float(cell)
+
+
+def _rounded(x) -> float:
+    """``x`` to the significant digits the fit tables show."""
+    return float(f"{x:.{TABLE_DIGITS}g}")
 
 
 def _table_with(pg, name):
@@ -141,9 +154,9 @@ def test_a_box_selected_region_gets_its_pooled_fit(server, page, windows):
     assert float(het.group(2)) == pytest.approx(direct.heterogeneity_df, rel=1e-5)
     assert float(het.group(3)) == pytest.approx(direct.heterogeneity_pvalue, rel=1e-2)
     for name, value in direct.params.items():
-        shown, se = (float(c) for c in table[name][:2])
-        assert shown == pytest.approx(value, rel=1e-6, nan_ok=True), name
-        assert se == pytest.approx(direct.stderr[name], rel=1e-6, nan_ok=True), name
+        shown, se = (_number(c) for c in table[name][:2])
+        assert shown == pytest.approx(_rounded(value), rel=1e-12, nan_ok=True), name
+        assert se == pytest.approx(_rounded(direct.stderr[name]), rel=1e-12, nan_ok=True), name
     page.get_by_text("Pooled fit of the region").first.scroll_into_view_if_needed()
     page.screenshot(path=f"{SCREENSHOTS}/region-fit.png")
     assert page.console_errors == [], page.console_errors
@@ -157,14 +170,14 @@ def test_pooled_map_and_anisotropy_on_the_page(server, page, windows):
     _open(page, f"{server}?{urlencode(q)}", table=False)
     aniso = _wait_for(lambda: _table_with(page, "isotropy p-value"), lambda t: t is not None, timeout=120)
     assert aniso is not None and {"anisotropy", "anisotropy_angle_deg", "diffusivity K_uv"} <= set(aniso)
-    p_shown = float(aniso["isotropy p-value"][0])
+    p_shown = _number(aniso["isotropy p-value"][0])
     assert 0 <= p_shown <= 1
     titles = _wait_for(lambda: _titles(page), lambda t: any(x.startswith("complementary") for x in t))
     assert any(x.startswith("complementary") for x in titles), titles
     # the track map's ellipse: its numbers are those of the table
     drawn = _wait_for(lambda: [c for c in _bokeh_columns(page, "pvalue") if c.get("rho")], bool)
-    assert drawn and drawn[0]["rho"][0] == pytest.approx(float(aniso["anisotropy"][0]), rel=1e-9)
-    assert drawn[0]["pvalue"][0] == pytest.approx(p_shown, rel=1e-9)
+    assert drawn and _rounded(drawn[0]["rho"][0]) == pytest.approx(_number(aniso["anisotropy"][0]), rel=1e-12)
+    assert _rounded(drawn[0]["pvalue"][0]) == pytest.approx(p_shown, rel=1e-12)
     page.screenshot(path=f"{SCREENSHOTS}/anisotropy-map.png")
     page.get_by_text("anisotropic fit", exact=True).first.scroll_into_view_if_needed()
     time.sleep(0.5)
