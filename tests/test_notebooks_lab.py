@@ -257,9 +257,16 @@ def _check_dashboard(page, st):
     # other model's (the table adds the diffusivity derived from them)
     fitted = set(ast.literal_eval(re.search(r"\[.*\]", _printed(st, -1)).group(0)))
     cells = page.locator('.jp-OutputArea-output .tabulator-cell[tabulator-field="parameter"]')
-    deadline = time.time() + 60
-    shown = set(cells.all_inner_texts())
+    info = page.locator(".jp-OutputArea-output .ds-fitinfo")  # the table is under the spectra: scroll to it, as a
+    deadline = time.time() + 60                                # reader would (JupyterLab draws what is in view)
+
+    def read():
+        if info.count():
+            info.first.scroll_into_view_if_needed(timeout=10_000)
+        return set(cells.all_inner_texts())
+
+    shown = read()
     while (not fitted <= shown or shown - fitted - {"diffusivity"}) and time.time() < deadline:
         time.sleep(0.5)
-        shown = set(cells.all_inner_texts())
+        shown = read()
     assert fitted and fitted <= shown and not shown - fitted - {"diffusivity"}, (sorted(fitted), sorted(shown))
