@@ -155,3 +155,41 @@ def test_spectral_density_derivatives_against_scipy_differentiate(name, theta, f
         ref = derivative(along, np.full(f.shape, x0), initial_step=1e-3,
                          tolerances={"atol": 1e-12 * np.abs(s).max(), "rtol": 1e-9})
         np.testing.assert_allclose(jac[j], ref.df, rtol=1e-6, atol=1e-6 * np.abs(ref.df).max(), err_msg=par.name)
+
+
+@pytest.mark.parametrize("name, wrap, theta", [
+    ("matern", None, [0.02, 1.3, 0.8]),
+    ("inertial", None, [0.01, -1.1, 0.3]),
+    ("matern+inertial", None, [0.02, 0.9, 0.05, 0.01, -1.0, 0.3]),
+    ("follow-latitude", None, [0.02, 1.2, 1.0, 0.01, 0.05, 0.3]),
+    ("matern+inertial", "differenced+noise", [0.02, 2.2, 3.0, 0.005, 0.7, 0.02, 40.0]),
+    ("matern+inertial", "anisotropic", [0.02, 1.2, 1.0, 0.01, -1.0, 0.3, 0.4, 25.0]),
+])
+def test_zero_frequency_gradient_against_scipy_differentiate(name, wrap, theta):
+    # the diffusivity's delta-method gradient: the families' exact d S(0) / dx (x = log value for scale parameters)
+    # against scipy.differentiate.derivative of S(0) itself (adaptive finite differences, scipy >= 1.15)
+    from scipy.differentiate import derivative
+
+    from driftspec.analysis.models.anisotropic import anisotropic
+    from driftspec.analysis.models.observation import observed
+
+    fam = get_family("matern+inertial", "follow-latitude") if name == "follow-latitude" else get_family(name)
+    if wrap == "anisotropic":
+        fam = anisotropic(fam)
+    elif wrap:
+        fam = observed(fam, wrap)
+    ctx = FitContext(dt_days=1 / 24, inertial_frequency_cpd=-1.3)
+    theta = np.asarray(theta, float)
+    s0, grad = fam._zero_frequency_density_jacobian(theta, ctx)
+    assert s0 == pytest.approx(fam.zero_frequency_density(theta, ctx), rel=1e-13)
+    for j, par in enumerate(fam.parameters):
+        def along(x, j=j, par=par):
+            out = np.empty(x.shape)
+            for idx in np.ndindex(*x.shape):
+                th = theta.copy()
+                th[j] = np.exp(x[idx]) if par.scale == "log" else x[idx]
+                out[idx] = fam._zero_frequency_density(th, ctx)
+            return out
+        x0 = np.log(theta[j]) if par.scale == "log" else theta[j]
+        ref = derivative(along, np.array([x0]), initial_step=1e-3, tolerances={"atol": 1e-12 * s0, "rtol": 1e-9})
+        assert grad[j] == pytest.approx(ref.df[0], rel=1e-6, abs=1e-9 * s0), par.name

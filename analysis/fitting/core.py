@@ -345,13 +345,18 @@ def _set_covariance(result: FitResult, stderr: str) -> None:
 
 
 def _diffusivity_and_gradient(problem: Problem, xf):
-    """``kappa = S(0) / 4`` in m^2/s and its gradient in the free coordinates (one-sided differences that step
-    into the bounds, so every evaluation is a valid parameter set)."""
+    """``kappa = S(0) / 4`` in m^2/s and its gradient in the free coordinates: the family's exact gradient of
+    ``S(0)`` where it has one, else one-sided differences that step into the bounds (so every evaluation is a valid
+    parameter set)."""
     family, context = problem.family, problem.context
-    family.check_theta(problem.theta(xf))
+    theta = family.check_theta(problem.theta(xf))
+    to_kappa = SECONDS_PER_DAY / 4.0
+    exact = family._zero_frequency_density_jacobian(theta, context)
+    if exact is not None:
+        return float(exact[0]) * to_kappa, np.asarray(exact[1], float)[problem.free] * to_kappa
 
     def kappa(x):  # the steps stay inside the bounds: no check per step
-        return float(family._zero_frequency_density(problem.theta(x), context)) * SECONDS_PER_DAY / 4.0
+        return float(family._zero_frequency_density(problem.theta(x), context)) * to_kappa
 
     k0 = kappa(xf)
     lo, hi = problem.x_lo[problem.free], problem.x_hi[problem.free]

@@ -51,7 +51,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .base import FitContext, ModelFamily, Parameter
+from .base import FitContext, ModelFamily, Parameter, leading_zero_frequency_jacobian
 
 #: the two parameters an anisotropic family adds after its base family's
 ANISOTROPY_PARAMETERS = (
@@ -126,6 +126,9 @@ class Anisotropic(ModelFamily):
 
     def _zero_frequency_density(self, theta, context):
         return self.base.zero_frequency_density(theta[: self.n_base], context)
+
+    def _zero_frequency_density_jacobian(self, theta, context):
+        return leading_zero_frequency_jacobian(self.base, theta, context)
 
     def _initial_guess(self, freq_cpd, power, context):
         return np.concatenate([self.base.initial_guess(freq_cpd, power, context), [0.0, 0.0]])

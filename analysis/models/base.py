@@ -103,6 +103,12 @@ class ModelFamily:
         """``R`` and ``dR/dx_j`` for the optimiser coordinates ``x`` (``log`` or the value, per parameter)."""
         return self._autocovariance_jacobian(self.check_theta(theta), np.asarray(lags_days, float), context)
 
+    def autocovariance_basis(self, theta, lags_days, context: FitContext | None = None):
+        """``(B, M)`` with ``[R; dR/dx] = M @ B``: the numbers of :meth:`autocovariance_jacobian` in fewer rows
+        ``B`` and a constant matrix ``M`` (``None`` for the identity), so that a linear map of the rows (an FFT,
+        an average over lags) runs over fewer of them."""
+        return self._autocovariance_basis(self.check_theta(theta), np.asarray(lags_days, float), context)
+
     def spectral_density(self, theta, freq_cpd, context: FitContext | None = None) -> np.ndarray:
         """Two-sided density in (m/s)^2 per cpd at ``freq_cpd`` (positive = counterclockwise)."""
         return self._spectral_density(self.check_theta(theta), np.asarray(freq_cpd, float), context)
@@ -166,6 +172,12 @@ class ModelFamily:
                 / (2 * step)
         return r, jac
 
+    def _autocovariance_basis(self, theta, lags_days, context):
+        """Default: the rows of ``_autocovariance_jacobian`` themselves; families whose derivative rows repeat
+        (the log-variance row is ``R``) or are proportional override with fewer."""
+        r, jac = self._autocovariance_jacobian(theta, lags_days, context)
+        return np.vstack([r[None, :], jac]), None
+
     def _spectral_density_jacobian(self, theta, freq_cpd, context):
         """Default: ``S`` and central finite differences of ``_spectral_density`` in the optimiser coordinates
         (step 1e-5, which may leave the bounds by that much); families override with exact ones."""
@@ -178,6 +190,15 @@ class ModelFamily:
 
     def _zero_frequency_density(self, theta, context):
         return float(np.real(self._spectral_density(theta, np.array([0.0]), context))[0])
+
+    def _zero_frequency_density_jacobian(self, theta, context):
+        """``(S(0), dS(0)/dx)`` in the optimiser coordinates, or ``None`` where the family has none (the diffusivity's
+        gradient is then differenced). Default: the density's Jacobian at ``f = 0``, for a family whose ``S(0)`` is
+        its density there; a family that overrides ``_zero_frequency_density`` overrides this too or gets ``None``."""
+        if type(self)._zero_frequency_density is not ModelFamily._zero_frequency_density:
+            return None
+        s, jac = self._spectral_density_jacobian(theta, np.zeros(1), context)
+        return float(np.real(s[0])), np.real(jac[:, 0])
 
     def _derived(self, theta, context):
         return {}
@@ -259,6 +280,17 @@ class SumFamily(ModelFamily):
         theta = np.asarray(theta, float)
         return sum(p._zero_frequency_density(theta[s], context) for p, s in self.components())
 
+    def _zero_frequency_density_jacobian(self, theta, context):
+        theta = np.asarray(theta, float)
+        total, grad = 0.0, np.zeros(len(theta))
+        for p, s in self.components():
+            part = p._zero_frequency_density_jacobian(theta[s], context)
+            if part is None:
+                return None
+            total += part[0]
+            grad[s] = part[1]
+        return total, grad
+
     def bounds(self, context):
         return [b for p in self.parts for b in p.bounds(context)]
 
@@ -282,3 +314,14 @@ class SumFamily(ModelFamily):
         for p, s in self.components():
             out.update(p.derived(theta[s], context))
         return out
+
+
+def leading_zero_frequency_jacobian(base: ModelFamily, theta, context):
+    """For a family whose ``S(0)`` is ``base``'s at the leading parameters of ``theta`` (observation and anisotropy
+    wrappers): ``base``'s ``(S(0), gradient)`` with zeros for the other parameters, or ``None``."""
+    theta = np.asarray(theta, float)
+    p = len(base.parameters)
+    out = base._zero_frequency_density_jacobian(theta[:p], context)
+    if out is None:
+        return None
+    return out[0], np.concatenate([out[1], np.zeros(len(theta) - p)])

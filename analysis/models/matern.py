@@ -119,6 +119,10 @@ def matern_correlation(nu: float, x: np.ndarray, derivatives: bool = False):
     return val, d_nu, d_u
 
 
+#: ``[R; dR/dlog var; dR/dalpha; dR/dlog lambda]`` from the basis rows ``(R, dR/dnu, dR/dlog lambda)``
+_MATERN_MIX = np.array([[1.0, 0, 0], [1.0, 0, 0], [0, 1.0, 0], [0, 0, 1.0]])
+
+
 class Matern(ModelFamily):
     """Matérn background: ``matern_variance``, ``matern_alpha``, ``matern_damping``."""
 
@@ -143,6 +147,13 @@ class Matern(ModelFamily):
         jac[0], jac[1], jac[2] = r, d_nu, d_u
         jac[1:] *= var
         return r, jac
+
+    def _autocovariance_basis(self, theta, lags_days, context=None):
+        # rows R, dR/dnu, dR/dlog(lambda); the log-variance row repeats R
+        var, alpha, lam = theta
+        b = np.vstack(matern_correlation(alpha - 0.5, lam * np.abs(lags_days), derivatives=True))
+        b *= var
+        return b, _MATERN_MIX
 
     @staticmethod
     def _norm(var, alpha, lam):
@@ -198,6 +209,12 @@ class Matern(ModelFamily):
             lam = num / max(s0, 1e-12)
         lam = float(np.clip(lam, 0.02, 20.0))
         return np.array([var, alpha, lam])
+
+    def _zero_frequency_density_jacobian(self, theta, context=None):
+        # S(0) = var 2 sqrt(pi) Gamma(alpha) / (Gamma(alpha - 1/2) lambda)
+        s0 = self._zero_frequency_density(theta, context)
+        alpha = theta[1]
+        return s0, np.array([s0, s0 * (digamma(alpha) - digamma(alpha - 0.5)), -s0])
 
     def _derived(self, theta, context=None):
         var, alpha, lam = theta

@@ -57,7 +57,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..conventions import SECONDS_PER_DAY
-from .base import FitContext, ModelFamily, Parameter
+from .base import FitContext, ModelFamily, Parameter, leading_zero_frequency_jacobian
 
 OBSERVATIONS = ("none", "differenced", "differenced+noise")
 _GL_NODES, _GL_WEIGHTS = np.polynomial.legendre.leggauss(16)
@@ -162,29 +162,31 @@ class _AveragedComponent(ModelFamily):
 
     def _raw(self, theta, grid, ctx, jac):
         """Base autocovariance at the grid's signed lags (R(-x) = conj R(x)), shifted to the window's mean
-        inertial frequency for a modulated component."""
-        if jac:
+        inertial frequency for a modulated component: rows ``R`` (``jac`` false), ``R`` and its derivatives
+        (``jac`` true) or the base's basis rows (``jac == "basis"``; see ``autocovariance_basis``), with the
+        matrix that mixes them (``None`` for the identity)."""
+        mix = None
+        if jac == "basis":
+            stack, mix = self.base._autocovariance_basis(theta, grid.abs_days, ctx)
+            if mix is not None and np.iscomplexobj(mix):  # conj(M B) is not M conj(B): the full rows instead
+                stack, mix = mix @ stack, None
+        elif jac:
             r, j = self.base._autocovariance_jacobian(theta, grid.abs_days, ctx)
+            stack = np.concatenate([r[None, :], j], axis=0)
         else:
-            r, j = self.base._autocovariance(theta, grid.abs_days, ctx), None
-        if grid.negative is not None:
-            r = np.where(grid.negative, np.conj(r), r)
-            if j is not None:
-                j = np.where(grid.negative[None, :], np.conj(j), j)
+            stack = self.base._autocovariance(theta, grid.abs_days, ctx)[None, :]
+        if grid.negative is not None and np.iscomplexobj(stack):
+            stack = np.where(grid.negative[None, :], np.conj(stack), stack)
         if self.modulated and ctx.inertial_frequency_cpd is not None:
-            rot = grid.rotation(ctx.inertial_frequency_cpd)
-            r = r * rot
-            if j is not None:
-                j = j * rot
-        return r, j
+            stack = stack * grid.rotation(ctx.inertial_frequency_cpd)
+        return stack, mix
 
     def _apply(self, theta, lags_days, ctx, jac):
         n = len(lags_days)
         h = self.op.half_width
         grid = self._grid(n, ctx.dt_days)
-        r_all, j_all = self._raw(theta, grid, ctx, jac)
+        stack, mix = self._raw(theta, grid, ctx, jac)
         a, b = grid.n_int, grid.n_int + grid.n_half
-        stack = np.concatenate([r_all[None, :], j_all], axis=0) if jac else r_all[None, :]
         v_int, v_half, v_near = stack[:, :a], stack[:, a:b], stack[:, b:]
         out = np.empty((stack.shape[0], n), stack.dtype)  # real for a real autocovariance
         n_mid = grid.n_mid
@@ -202,6 +204,8 @@ class _AveragedComponent(ModelFamily):
         out[:, grid.near] = (v_near.reshape(stack.shape[0], grid.near.size, -1) * grid.near_weights).sum(axis=2)
         if self.modulated and ctx.inertial_frequency_cpd is not None:
             out *= np.conj(grid.rotation(ctx.inertial_frequency_cpd, lags_only=True))[None, :]
+        if jac == "basis":
+            return out, mix
         return out[0], (out[1:] if jac else None)
 
     def _grid(self, n, dt):
@@ -240,12 +244,18 @@ class _AveragedComponent(ModelFamily):
     def _autocovariance_jacobian(self, theta, lags_days, context):
         return self._apply(np.asarray(theta, float), np.asarray(lags_days, float), context, True)
 
+    def _autocovariance_basis(self, theta, lags_days, context):
+        return self._apply(np.asarray(theta, float), np.asarray(lags_days, float), context, "basis")
+
     def _spectral_density(self, theta, freq_cpd, context):
         return self.base.spectral_density(theta, freq_cpd, context) * self.op.power_response(
             freq_cpd, context.dt_days)
 
     def _zero_frequency_density(self, theta, context):
         return self.base.zero_frequency_density(theta, context)
+
+    def _zero_frequency_density_jacobian(self, theta, context):
+        return self.base._zero_frequency_density_jacobian(theta, context)
 
     def _initial_guess(self, freq_cpd, power, context):
         return self.base.initial_guess(freq_cpd, power, context)
@@ -284,6 +294,9 @@ class PositionNoise(ModelFamily):
 
     def _zero_frequency_density(self, theta, context):
         return 0.0
+
+    def _zero_frequency_density_jacobian(self, theta, context):
+        return 0.0, np.zeros(len(theta))
 
     def _initial_guess(self, freq_cpd, power, context):
         # the noise floor from the top of the band, where the ocean spectrum has fallen off
@@ -339,6 +352,9 @@ class ObservedFamily(ModelFamily):
 
     def _zero_frequency_density(self, theta, context):
         return self.base.zero_frequency_density(np.asarray(theta, float)[: len(self.base.parameters)], context)
+
+    def _zero_frequency_density_jacobian(self, theta, context):
+        return leading_zero_frequency_jacobian(self.base, theta, context)
 
     def bounds(self, context):
         b = self.base.bounds(context)

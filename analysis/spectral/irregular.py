@@ -112,7 +112,7 @@ from scipy.interpolate import BSpline, make_interp_spline
 from threadpoolctl import ThreadpoolController
 
 from ..conventions import SECONDS_PER_DAY
-from ..models.base import FitContext, ModelFamily, Parameter
+from ..models.base import FitContext, ModelFamily, Parameter, leading_zero_frequency_jacobian
 from ..models.inertial import Inertial, cut_density_change
 from ..models.observation import PositionNoise
 from .periodogram import masked_taper
@@ -681,6 +681,9 @@ class IrregularlyObserved(ModelFamily):
 
     def _zero_frequency_density(self, theta, context):
         return self.base._zero_frequency_density(theta[: self._p], context)
+
+    def _zero_frequency_density_jacobian(self, theta, context):
+        return leading_zero_frequency_jacobian(self.base, theta, context)
 
     def _derived(self, theta, context):
         return self.base._derived(theta[: self._p], context)

@@ -165,30 +165,29 @@ def expected_in_band(family: ModelFamily, theta, prep: PreparedWindow, context: 
     if hasattr(family, "expected_in_band"):  # a family observed through its own operator (irregular fixes)
         return family.expected_in_band(theta, prep, context)
     theta = np.asarray(theta, float)
-    n, nb = prep.n, prep.band_index.size
+    nb = prep.band_index.size
     e = np.zeros(nb)
     de = np.empty((len(theta), nb))
     for comp, sl in family.components():
-        r, jac = comp.autocovariance_jacobian(theta[sl], prep.lags_days, context)
-        q = sl.stop - sl.start
+        basis, mix = comp.autocovariance_basis(theta[sl], prep.lags_days, context)
         weights = prep.modulated_weights if comp.modulated else prep.lag_weights
+        if mix is not None and np.iscomplexobj(mix) and prep.real_valued:
+            basis, mix = mix @ basis, None  # the real part is taken of the rows: a complex mix must come first
         if comp.modulated and prep.real_valued:
-            rows = np.real(weights * np.vstack([r, jac]))
+            rows = np.real(weights * basis)
             spec = scipy.fft.rfft(rows, axis=-1).real[:, prep.band_fold]
         elif prep.real_valued or (comp.real_autocovariance and not comp.modulated):
-            rows = np.empty((1 + q, n))
-            rows[0] = np.real(r)
-            rows[1:] = np.real(jac)
-            rows *= weights
+            rows = np.real(basis) * weights
             spec = scipy.fft.rfft(rows, axis=-1).real[:, prep.band_fold]
         else:
-            rows = np.empty((1 + q, n), dtype=complex)
-            rows[0] = r
-            rows[1:] = jac
-            rows *= weights
-            spec = scipy.fft.fft(rows, axis=-1)[:, prep.band_index].real
+            rows = basis * weights
+            spec = scipy.fft.fft(rows, axis=-1)[:, prep.band_index]
         spec *= 2.0
-        spec -= rows[:, :1].real
+        spec -= rows[:, :1]
+        if mix is not None:
+            spec = mix @ spec
+        if np.iscomplexobj(spec):
+            spec = spec.real
         e += spec[0]
         de[sl] = spec[1:]
     e *= prep.dt_days
