@@ -133,6 +133,7 @@ class Explorer(param.Parameterized):
     def __init__(self, velocities, fits: pd.DataFrame | None = None, state: ExplorerState | None = None,
                  title: str = "driftspec", first_look: bool = False, **params):
         super().__init__(**params)
+        self.closed = False  # the page was closed: nothing is drawn any more
         self.state = state or ExplorerState()
         self.title = title
         self.data = velocities if isinstance(velocities, TrackData) else TrackData(velocities)
@@ -160,7 +161,6 @@ class Explorer(param.Parameterized):
         self.state.param.watch(self._on_settings, ["track", "window", *FIT_PARAMS])
         self.state.param.watch(self._on_pooling, ["region", "map_values", "bin_deg"])
         self._started = False
-        self.closed = False  # the page was closed: nothing is drawn any more
 
     def _set(self, **values):
         if self.closed:

@@ -347,3 +347,22 @@ def test_map_readout_names_the_fix_nearest_the_pointer(explorer):
     assert pd.Timestamp(int(p["t_ns"])).strftime("%Y-%m-%d %H:%M") in text
     lat = re.search(r"(\d+\.\d+)°([NS])", text)
     assert float(lat.group(1)) * (1 if lat.group(2) == "N" else -1) == pytest.approx(p["lat"], abs=0.006)
+
+
+def test_a_fits_table_given_at_start_is_the_explorers(demo_dir):
+    # `driftspec serve FIXES --fits FITS`: the table's rows, made here by the batch module's window_rows on windows
+    # cut here, are the explorer's fits of every window (this constructor raised AttributeError before)
+    from driftspec.analysis.fitting.batch import window_rows
+    from driftspec.analysis.tracks.pipeline import load_velocities
+    from driftspec.analysis.tracks.windows import iter_windows
+    from driftspec.app.dashboard import MIN_COVERAGE, Explorer
+    from driftspec.app.state import ExplorerState
+
+    vel, _, _ = load_velocities(str(demo_dir / "fixes.parquet"))
+    first = vel[vel["id"] == sorted(vel["id"].unique())[0]]
+    spec = _cli_spec()
+    fits = pd.DataFrame([r for w in list(iter_windows(first, 30.0, 0.5, MIN_COVERAGE))[:2] for r in window_rows(w, spec)])
+    ex = Explorer(vel, fits=fits, state=ExplorerState(window_days=30, overlap=0.5))
+    ex._cancel.set()
+    assert len(ex.all_fits) == len(fits) >= 2
+    np.testing.assert_array_equal(ex.all_fits["matern_alpha"].to_numpy(), fits["matern_alpha"].to_numpy())
