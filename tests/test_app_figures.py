@@ -361,7 +361,8 @@ def test_a_fits_table_given_at_start_is_the_explorers(demo_dir):
     vel, _, _ = load_velocities(str(demo_dir / "fixes.parquet"))
     first = vel[vel["id"] == sorted(vel["id"].unique())[0]]
     spec = _cli_spec()
-    fits = pd.DataFrame([r for w in list(iter_windows(first, 30.0, 0.5, MIN_COVERAGE))[:2] for r in window_rows(w, spec)])
+    windows = list(iter_windows(first, 30.0, 0.5, MIN_COVERAGE))[:2]
+    fits = pd.DataFrame([r for w in windows for r in window_rows(w, spec)])
     ex = Explorer(vel, fits=fits, state=ExplorerState(window_days=30, overlap=0.5))
     ex._cancel.set()
     assert len(ex.all_fits) == len(fits) >= 2
