@@ -184,6 +184,37 @@ def test_information_matches_finite_difference_hessian():
     np.testing.assert_allclose(info, hess, rtol=1e-3, atol=1e-3 * np.max(np.abs(hess)))
 
 
+def test_information_at_a_bound_differences_into_the_bounds():
+    # a fit that ends with the Matérn slope on its lower bound (seen on demo windows): the information is still
+    # computed (it raised before, stepping outside the bounds) and matches the dense scipy density's second
+    # differences, forward in the slope and central in the rest (step 1e-3, error O(step) in the slope)
+    fam = get_family("matern+inertial")
+    prep, ctx = _window("matern+inertial", 240, seed=9)
+    theta = np.array(THETAS["matern+inertial"], float)
+    ka = fam.names.index("matern_alpha")
+    theta[ka] = fam.parameters[ka].lower
+    info = exact_observed_information(fam, theta, prep, ctx)
+    p, h = theta.size, 1e-3
+
+    def f(t):
+        return dense_reference(fam, t, prep, ctx)
+
+    def d(t, i):  # first difference in coordinate i: forward for the slope, central otherwise
+        if i == ka:
+            return (f(_shift(fam, t, i, h)) - f(t)) / h
+        return (f(_shift(fam, t, i, h)) - f(_shift(fam, t, i, -h))) / (2 * h)
+
+    hess = np.empty((p, p))
+    for i in range(p):
+        for j in range(p):
+            if j == ka:
+                hess[i, j] = (d(_shift(fam, theta, j, h), i) - d(theta, i)) / h
+            else:
+                hess[i, j] = (d(_shift(fam, theta, j, h), i) - d(_shift(fam, theta, j, -h), i)) / (2 * h)
+    hess = 0.5 * (hess + hess.T)
+    np.testing.assert_allclose(info, hess, rtol=2e-2, atol=2e-2 * np.max(np.abs(hess)))
+
+
 def test_bad_input_is_a_clear_value_error():
     fam = get_family("matern+inertial")
     prep, ctx = _window("matern+inertial", 100, seed=1)

@@ -438,13 +438,15 @@ def exact_observed_information(family: ModelFamily, theta, prep: PreparedWindow,
     Notes
     -----
     Central differences of the analytic gradient :func:`exact_negloglik_grad`: ``2 p`` gradient evaluations
-    (error ``O(step^2)``), not the ``O(p^2)`` likelihood evaluations of a finite-difference Hessian.
+    (error ``O(step^2)``), not the ``O(p^2)`` likelihood evaluations of a finite-difference Hessian. A parameter
+    within a step of its bound is differenced one-sidedly, into the bounds.
     """
     theta = _check(family, theta, prep)
     if not step > 0:
         raise ValueError("step must be positive")
     p = theta.size
     hess = np.empty((p, p))
+    g0 = None
     for j, par in enumerate(family.parameters):
         tp, tm = theta.copy(), theta.copy()
         if par.scale == "log":
@@ -455,6 +457,16 @@ def exact_observed_information(family: ModelFamily, theta, prep: PreparedWindow,
             h = step * max(1.0, abs(theta[j]))
             tp[j] += h
             tm[j] -= h
+        # at a bound the difference is one-sided, into the parameter space (error O(step))
+        below, above = tm[j] < par.lower, tp[j] > par.upper
+        if below or above:
+            if g0 is None:
+                g0 = exact_negloglik_grad(family, theta, prep, context)[1]
+            if below:
+                hess[:, j] = (exact_negloglik_grad(family, tp, prep, context)[1] - g0) / h
+            else:
+                hess[:, j] = (g0 - exact_negloglik_grad(family, tm, prep, context)[1]) / h
+            continue
         gp = exact_negloglik_grad(family, tp, prep, context)[1]
         gm = exact_negloglik_grad(family, tm, prep, context)[1]
         hess[:, j] = (gp - gm) / (2 * h)
