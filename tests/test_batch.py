@@ -62,6 +62,23 @@ def test_dask_local_cluster_gives_same_table(windows, serial, tmp_path):
     _same(got, serial)
 
 
+@pytest.mark.parametrize("suffix", [".parquet", ".csv"])
+def test_a_run_without_resume_replaces_the_old_table(windows, serial, tmp_path, suffix):
+    # an old table from other windows and settings at the same path: a fresh run writes exactly its own rows (the
+    # serial fixture's, made in another folder), also when it was interrupted and then resumed
+    out = tmp_path / f"fits{suffix}"
+    cols = ["track_id", "window_start", "model", "status", "loglik", "matern_alpha", "diffusivity"]
+    mine = serial.iloc[:24][cols]  # the first 12 windows' two candidates
+    run_fits(windows[12:], out, FitSpec(models=("matern",), band=3.0), workers=1, progress=False)
+    got = run_fits(windows[:12], out, OPTS, workers=1, chunk_size=5, progress=False)
+    _same(got[cols], mine)
+    _same(read_table(out)[cols], mine)
+    run_fits(windows[12:], out, FitSpec(models=("matern",), band=3.0), workers=1, progress=False)
+    assert run_fits(windows[:12], out, OPTS, workers=1, chunk_size=5, progress=False, stop_after_chunks=1) is None
+    got = run_fits(windows[:12], out, OPTS, workers=1, chunk_size=5, progress=False, resume=True)
+    _same(got[cols], mine)
+
+
 def test_interrupted_run_resumes_to_same_table(windows, serial, tmp_path):
     out = tmp_path / "fits.csv"
     assert run_fits(windows, out, OPTS, workers=1, chunk_size=5, progress=False, stop_after_chunks=2) is None

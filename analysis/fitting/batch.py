@@ -31,6 +31,8 @@ from .spec import FitSpec
 KEY = ["track_id", "window_start", "model"]
 #: where a run keeps its settings: a file in the parts folder, a key in the Parquet metadata
 SETTINGS_FILE = "settings.json"
+#: marks parts that replace the table at ``out`` (a run without resume): the old rows are not merged into them
+REPLACES_FILE = "replaces-output"
 SETTINGS_KEY = "driftspec_run_settings"
 WINDOW_COLUMNS = ["track_id", "window_start", "window_end", "lat", "lon", "n_samples", "coverage",
                   "inertial_frequency_local", "max_freq"]
@@ -100,10 +102,10 @@ def _parts_dir(out: Path) -> Path:
     return out.with_name(out.name + ".partial")
 
 
-def done_keys(out: Path) -> set:
-    """Keys (track_id, window_start, model) already fitted in ``out`` or its parts."""
+def done_keys(out: Path, include_out: bool = True) -> set:
+    """Keys (track_id, window_start, model) already fitted in ``out`` (unless not ``include_out``) or its parts."""
     frames = []
-    if out.exists():
+    if include_out and out.exists():
         frames.append(read_table(out)[KEY])
     parts = _parts_dir(out)
     if parts.exists():
@@ -197,10 +199,15 @@ def run_fits(windows: Iterable[Window], out, spec: FitSpec, *, workers: int = 1,
                        if before.get(group, {}).get(k) != settings[group].get(k)]
             raise ValueError(f"cannot resume {out}: it was fitted with other settings ({', '.join(changed)}); "
                              "rerun without --resume, or with the same settings")
-    skip = done_keys(out) if resume else set()
+    # a run without resume replaces the table at `out` (its rows are never merged in); so does the resume of such a
+    # run that was interrupted
+    replace = not resume or (parts / REPLACES_FILE).exists()
+    skip = done_keys(out, include_out=not replace) if resume else set()
     if not resume and parts.exists():
         shutil.rmtree(parts)
     parts.mkdir(parents=True, exist_ok=True)
+    if replace:
+        (parts / REPLACES_FILE).write_text("")
     (parts / SETTINGS_FILE).write_text(json.dumps(settings, sort_keys=True))
     existing = sorted(parts.glob("part-*.parquet"))
     next_part = 1 + max((int(p.stem.split("-")[1]) for p in existing), default=0)
@@ -245,7 +252,7 @@ def run_fits(windows: Iterable[Window], out, spec: FitSpec, *, workers: int = 1,
         bar.close()
     if stopped:
         return None
-    return combine(out, units, settings)
+    return combine(out, units, settings, include_out=not replace)
 
 
 def _run_pool(chunks, spec, workers, save, bar, stop_after_chunks, written) -> bool:
@@ -315,11 +322,12 @@ def _run_dask(chunks, spec, address, save, bar, stop_after_chunks, written) -> b
             cluster.close()
 
 
-def combine(out: Path, units: dict | None = None, settings: dict | None = None) -> pd.DataFrame:
-    """Merge ``out`` and its parts into one sorted table at ``out`` (with ``settings`` in its metadata, or beside
-    a CSV); remove the parts."""
+def combine(out: Path, units: dict | None = None, settings: dict | None = None,
+            include_out: bool = True) -> pd.DataFrame:
+    """Merge ``out`` (unless not ``include_out``: the parts then replace it) and its parts into one sorted table at
+    ``out`` (with ``settings`` in its metadata, or beside a CSV); remove the parts."""
     parts = _parts_dir(out)
-    frames = [read_table(out)] if out.exists() else []
+    frames = [read_table(out)] if include_out and out.exists() else []
     frames += [pd.read_parquet(p) for p in sorted(parts.glob("part-*.parquet"))] if parts.exists() else []
     frames = [f for f in frames if len(f)]
     df = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame(columns=KEY)
