@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import os
 import sys
 from pathlib import Path
@@ -15,9 +16,38 @@ from pathlib import Path
 EXIT_BAD_INPUT = 2
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse with a one-line error (the usage block is one ``--help`` away) and exit status 2."""
+
+    def error(self, message):
+        self.exit(EXIT_BAD_INPUT, f"{self.prog}: {message} (see {self.prog} --help)\n")
+
+
+def _positive(text: str) -> float:
+    """An argparse type: a finite number above zero."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number: {text!r}") from None
+    if not (math.isfinite(value) and value > 0):
+        raise argparse.ArgumentTypeError(f"must be a positive number, got {text}")
+    return value
+
+
+def _port(text: str) -> int:
+    """An argparse type: a TCP port number."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a port number: {text!r}") from None
+    if not 0 <= value <= 65535:
+        raise argparse.ArgumentTypeError(f"a port number is 0 to 65535, got {value}")
+    return value
+
+
 def _add_prep_options(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("quality control and gridding")
-    g.add_argument("--max-speed", type=float, default=3.0, metavar="M_S",
+    g.add_argument("--max-speed", type=_positive, default=3.0, metavar="M_S",
                    help="speed-spike ceiling, m/s (default 3, common practice for surface drifters)")
     g.add_argument("--step", default="1h", help="regular grid step (default 1h)")
     g.add_argument("--split-gap", default="3D", help="split tracks at gaps longer than this (default 3D)")
@@ -89,7 +119,7 @@ def _add_run_options(p: argparse.ArgumentParser, resume_help: str) -> None:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="driftspec",
         description="Rotary spectra, debiased-Whittle model fits and regional maps for drifting-float "
                     "trajectories. A statistical description of past currents, not a drift forecast.",
@@ -107,7 +137,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("input", help="CSV, Parquet or CF trajectory netCDF")
     p.add_argument("--out", type=Path, required=True, help="cleaned fixes (.parquet, .csv or .nc)")
     p.add_argument("--report", type=Path, help="QC report (JSON)")
-    p.add_argument("--max-speed", type=float, default=3.0, metavar="M_S",
+    p.add_argument("--max-speed", type=_positive, default=3.0, metavar="M_S",
                    help="speed-spike ceiling, m/s (default 3)")
 
     p = sub.add_parser("fit", help="fit a model to every window of every track")
@@ -138,7 +168,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("map", help="grid fitted parameters into latitude-longitude bins (CF netCDF)")
     p.add_argument("fits", help="fits table from 'driftspec fit'")
     p.add_argument("--param", action="append", help="column to grid (repeatable; default: all parameters)")
-    p.add_argument("--bin-deg", type=float, default=2.0)
+    p.add_argument("--bin-deg", type=_positive, default=2.0)
     p.add_argument("--stat", choices=["median", "mean"], default="median")
     p.add_argument("--out", type=Path, required=True, help="output netCDF")
     p.add_argument("--png", type=Path, help="also write a quick-look map")
@@ -147,7 +177,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("input", help="CSV, Parquet or CF trajectory netCDF")
     p.add_argument("--out", type=Path, required=True, help="pooled map (.nc)")
     _add_window_options(p, default_days=None)
-    p.add_argument("--bin-deg", type=float, required=True, help="bin size, degrees")
+    p.add_argument("--bin-deg", type=_positive, required=True, help="bin size, degrees")
     p.add_argument("--region", help="LON0,LAT0,LON1,LAT1 (default: everywhere; negative numbers need --region=...)")
     p.add_argument("--model", default="matern+inertial", help="the model family pooled (default %(default)s)")
     p.add_argument("--share", choices=["shape", "all"], default="shape",
@@ -176,7 +206,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("serve", help="open the dashboard in a browser (default: the bundled demo data)")
     p.add_argument("input", nargs="?", help="fixes to explore (default: demo data)")
     p.add_argument("--fits", help="fits table to map")
-    p.add_argument("--port", type=int, default=5006)
+    p.add_argument("--port", type=_port, default=5006)
     p.add_argument("--address", default="127.0.0.1")
     p.add_argument("--show", action="store_true", help="open a browser window")
     p.add_argument("--allow-origin", action="append", default=[],

@@ -139,6 +139,10 @@ def test_killed_fit_resumes_to_the_same_table(tmp_path, demo_dir):
     (["--step", "soon"], "--step must be a positive duration"),
     (["--bootstrap", "-2"], "bootstrap"),
     (["--position-noise", "30", "--observation", "none"], "position noise value"),
+    (["--window-days", "abc"], "--window-days: invalid float value"),  # argparse's own checks: one line too
+    (["--estimator", "mle"], "--estimator: invalid choice"),
+    (["--max-speed", "-1"], "--max-speed: must be a positive number"),
+    (["--dask", "tcp://127.0.0.1:1"], "cannot reach the Dask scheduler"),  # a port nothing listens on
 ])
 def test_invalid_fit_options_are_one_line_exit_2_and_write_nothing(tmp_path, demo_dir, extra, needle):
     out = tmp_path / "fits.parquet"
@@ -147,6 +151,19 @@ def test_invalid_fit_options_are_one_line_exit_2_and_write_nothing(tmp_path, dem
     assert needle in r.stderr and "Traceback" not in r.stderr
     assert len(r.stderr.strip().splitlines()) == 1
     assert list(tmp_path.iterdir()) == []  # neither the table nor a .partial folder
+
+
+@pytest.mark.parametrize("args, needle", [
+    (["map", "F", "--bin-deg", "0", "--out", "m.png"], "--bin-deg: must be a positive number"),
+    (["qc", "F", "--max-speed", "-1", "--out", "q.parquet"], "--max-speed: must be a positive number"),
+    (["serve", "F", "--port", "99999"], "--port: a port number is 0 to 65535"),
+    (["nosuchcommand"], "invalid choice"),
+])
+def test_invalid_options_of_other_commands_are_one_line_exit_2(tmp_path, demo_dir, args, needle):
+    r = run(*[str(demo_dir / "fixes.parquet") if a == "F" else a for a in args], cwd=tmp_path)
+    assert r.returncode == 2 and needle in r.stderr and "Traceback" not in r.stderr, r.stderr[-1500:]
+    assert len(r.stderr.strip().splitlines()) == 1
+    assert list(tmp_path.iterdir()) == []
 
 
 def test_unwritable_output_folder_is_one_line_exit_2(tmp_path, demo_dir):

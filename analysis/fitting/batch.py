@@ -31,6 +31,8 @@ from .spec import FitSpec
 KEY = ["track_id", "window_start", "model"]
 #: where a run keeps its settings: a file in the parts folder, a key in the Parquet metadata
 SETTINGS_FILE = "settings.json"
+#: how long ``--dask ADDRESS`` waits for the scheduler before giving up with a one-line message
+DASK_CONNECT_TIMEOUT_S = 10.0
 #: marks parts that replace the table at ``out`` (a run without resume): the old rows are not merged into them
 REPLACES_FILE = "replaces-output"
 SETTINGS_KEY = "driftspec_run_settings"
@@ -245,6 +247,10 @@ def run_fits(windows: Iterable[Window], out, spec: FitSpec, *, workers: int = 1,
                 if stop_after_chunks and written >= stop_after_chunks:
                     stopped = True
                     break
+    except ValueError:  # nothing to resume from a run that wrote nothing (an unreachable scheduler)
+        if written == 0 and not resume:
+            shutil.rmtree(parts, ignore_errors=True)
+        raise
     finally:
         if not stopped and bar.total is not None and bar.n != bar.total:
             bar.total = bar.n  # the total was an estimate
@@ -290,7 +296,11 @@ def _run_dask(chunks, spec, address, save, bar, stop_after_chunks, written) -> b
                                processes=True, dashboard_address=None)
         client = Client(cluster)
     else:
-        client = Client(address)
+        try:
+            client = Client(address, timeout=DASK_CONNECT_TIMEOUT_S)
+        except (OSError, TimeoutError) as exc:
+            raise ValueError(f"cannot reach the Dask scheduler at {address} within {DASK_CONNECT_TIMEOUT_S:g} s "
+                             f"({type(exc).__name__})") from None
     try:
         n_workers = max(1, len(client.scheduler_info().get("workers", {})))
         sizes = {}
