@@ -282,6 +282,10 @@ def _windowing(args) -> dict:
             raise SystemExit(f"driftspec: {flag} must be a positive duration such as 1h or 3D, got {text!r}")
     if args.window_days * 86400 < 2 * pd.Timedelta(args.step).total_seconds():
         raise SystemExit(f"driftspec: --window-days {args.window_days:g} is shorter than two grid steps ({args.step})")
+    nyquist = 0.5 * 86400 / pd.Timedelta(args.step).total_seconds()
+    if getattr(args, "max_freq", None) is not None and args.max_freq > nyquist * (1 + 1e-9):
+        raise SystemExit(f"driftspec: --max-freq {args.max_freq:g} cpd is above the grid's Nyquist frequency "
+                         f"({nyquist:g} cpd for --step {args.step})")
     return {"window_days": args.window_days, "overlap": args.overlap, "min_coverage": args.min_coverage,
             **_prep_options(args).to_dict()}
 

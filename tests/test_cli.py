@@ -136,6 +136,7 @@ def test_killed_fit_resumes_to_the_same_table(tmp_path, demo_dir):
     (["--workers", "-3"], "--workers must be at least 1"),
     (["--min-coverage", "0"], "--min-coverage"),
     (["--max-freq", "-1"], "band"),
+    (["--max-freq", "50"], "above the grid's Nyquist frequency (12 cpd for --step 1h)"),
     (["--step", "soon"], "--step must be a positive duration"),
     (["--bootstrap", "-2"], "bootstrap"),
     (["--position-noise", "30", "--observation", "none"], "position noise value"),
