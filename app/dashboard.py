@@ -1401,6 +1401,12 @@ class Controls(View):
 
     def __panel__(self):
         ex, st = self.ex, self.state
+        shown = st.param.max_freq.precedence
+
+        def band_slider(*_):  # the fixed band's slider only while the automatic band is off
+            st.param.max_freq.precedence = -1 if st.auto_band else shown
+        band_slider()
+        st.param.watch(band_slider, ["auto_band"])
         analysis = pn.Param(st, parameters=list(ANALYSIS), widgets=widgets_for("analysis"), show_name=False,
                             width=285)
         track = pn.widgets.Select(name="Track", options=ex.track_ids, value=st.track or None)

@@ -189,8 +189,10 @@ class RotarySpectrumFigure:
             data["inertial"] = {"f": np.array([abs(fc)] if inertial_here else [], float)}
             label = self.inertial_labels[side]
             label.update(x=abs(fc) if inertial_here else 1.0, y=top, visible=bool(inertial_here))
-            data["tides"] = {"f": np.array(list(self.tides.values()), float),
-                             "y": np.full(len(self.tides), low), "name": list(self.tides)}
+            # the labels of neighbouring lines (K1 and O1, M2 and S2 are 0.07 cpd apart) on alternate heights
+            tf = np.array(list(self.tides.values()), float)
+            rank = np.argsort(np.argsort(tf))
+            data["tides"] = {"f": tf, "y": low * np.where(rank % 2 == 1, 4.0, 1.0), "name": list(self.tides)}
             for k, d in data.items():
                 src[k].data = d
             positive = f[o][f[o] > 0]
@@ -253,7 +255,8 @@ class TrackMapFigure:
         from colorcet import fire
 
         (x0, x1), (y0, y1) = extent
-        wheel = WheelZoomTool()
+        # the wheel zooms the map with Ctrl held; without it the wheel scrolls the page (a shared screen, a notebook)
+        wheel = WheelZoomTool(modifiers={"ctrl": True})
         fig = figure(frame_width=frame_width, frame_height=frame_height, x_range=Range1d(x0, x1),
                      y_range=Range1d(y0, y1), title="All tracks", background_fill_color="#eef2f5",
                      tools=["pan", wheel, "box_zoom", TapTool(), "reset", "save"], active_scroll=wheel)

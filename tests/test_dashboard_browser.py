@@ -414,3 +414,47 @@ def test_maps_show_degrees_graticule_and_land(server, page, artifacts_dir, name,
     time.sleep(2)
     page.screenshot(path=str(artifacts_dir / f"dashboard-parameter-map-{name.split('.')[0]}.png"), full_page=True)
     assert page.console_errors == [], (page.console_errors, page.outside)
+
+
+def _map_x_range(page):
+    """The track map's x range (BokehJS model of the page)."""
+    return page.evaluate("""() => {
+        for (const doc of window.Bokeh.documents)
+            for (const m of doc.all_models)
+                if (m.title && m.title.text === 'All tracks') return [m.x_range.start, m.x_range.end];
+        return null;
+    }""")
+
+
+def _checkbox(page, label):
+    """The checkbox whose label is ``label`` (each lives in its own shadow root, beside its text)."""
+    boxes = page.locator("input[type=checkbox]")
+    for i in range(boxes.count()):
+        if boxes.nth(i).evaluate("e => e.getRootNode().textContent").endswith(label):
+            return boxes.nth(i)
+    raise AssertionError(f"no checkbox {label!r}")
+
+
+def test_the_wheel_scrolls_the_page_and_ctrl_wheel_zooms_the_map(server, page):
+    # a shared screen or a notebook: the wheel over the map must scroll the page, not zoom (Ctrl+wheel zooms)
+    _open(page, server)
+    before = _map_x_range(page)
+    box = _map_box(page)
+    page.mouse.move(box["x"] + box["width"] / 2, box["y"] + box["height"] / 2)
+    page.mouse.wheel(0, 300)
+    moved = _wait_for(lambda: _map_box(page)["y"], lambda y: y < box["y"] - 100, timeout=10)
+    assert moved < box["y"] - 100 and _map_x_range(page) == before
+    box = _map_box(page)
+    page.mouse.move(box["x"] + box["width"] / 2, box["y"] + box["height"] / 2)
+    page.keyboard.down("Control")
+    page.mouse.wheel(0, -500)
+    page.keyboard.up("Control")
+    after = _wait_for(lambda: _map_x_range(page), lambda v: v != before, timeout=20)
+    assert after[1] - after[0] < 0.9 * (before[1] - before[0])  # zoomed in
+
+
+def test_the_fixed_band_slider_shows_only_without_the_automatic_band(server, page):
+    _open(page, server)
+    assert page.get_by_text("Max fitted frequency").count() == 0
+    _checkbox(page, "Automatic fitted band").click()
+    assert _wait_for(lambda: page.get_by_text("Max fitted frequency").count(), lambda c: c == 1, timeout=15) == 1
