@@ -28,8 +28,11 @@ class ExplorerState(param.Parameterized):
     overlap = param.Number(default=0.5, bounds=(0.0, 0.9), step=0.05, doc="Overlap of consecutive windows")
     model = param.Selector(default="matern+inertial", objects=list(FAMILIES), doc="Model family")
     estimator = param.Selector(default="debiased", objects=["debiased", "whittle", "exact"])
-    observation = param.Selector(default="differenced+noise", objects=["differenced+noise", "differenced", "none"],
-                                 doc="Observation model of the velocities (see the methods notes)")
+    observation = param.Selector(default="auto", objects=["auto", "irregular", "differenced+noise", "differenced",
+                                                          "none"],
+                                 doc="Observation model of the velocities (see the methods notes); auto, as "
+                                     "`driftspec fit` decides per window: the irregular fixes modelled exactly where "
+                                     "they are sparser than the grid, differenced+noise elsewhere")
     auto_band = param.Boolean(default=True, doc="Fit up to the window's default band (from its fix interval)")
     max_freq = param.Number(default=6.0, bounds=(0.25, 24.0), step=0.25,
                             doc="Highest fitted frequency magnitude, cpd (when the automatic band is off)")

@@ -120,7 +120,7 @@ def _cli_spec(**extra):
     """The dashboard's default settings as `driftspec fit` options would give them."""
     from driftspec.analysis.fitting import FitSpec
 
-    return FitSpec(models=("matern+inertial",), estimator="debiased", band="auto", observation="differenced+noise",
+    return FitSpec(models=("matern+inertial",), estimator="debiased", band="auto", observation="auto",
                    taper="none", inertial_frequency="free", **extra)
 
 

@@ -26,8 +26,8 @@ pytestmark = pytest.mark.browser
 CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking",
                  "--disable-component-update", "--disable-sync", "--no-first-run", "--disable-quic"]
 #: settings of `driftspec fit` equal to the dashboard's defaults
-CLI_DEFAULTS = ["--window-days", "30", "--model", "matern+inertial", "--observation", "differenced+noise",
-                "--estimator", "debiased", "--taper", "none", "--inertial-frequency", "free"]
+CLI_DEFAULTS = ["--window-days", "30", "--model", "matern+inertial", "--estimator", "debiased", "--taper", "none",
+                "--inertial-frequency", "free"]  # the observation model: both decide per window
 
 
 def _browser_or_skip():

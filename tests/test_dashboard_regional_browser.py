@@ -51,7 +51,7 @@ def _spec():
     from driftspec.analysis.fitting import FitSpec
 
     # the page's default settings, as `driftspec fit` options would give them
-    return FitSpec(models=("matern+inertial",), estimator="debiased", band="auto", observation="differenced+noise",
+    return FitSpec(models=("matern+inertial",), estimator="debiased", band="auto", observation="auto",
                    taper="none", inertial_frequency="free")
 
 

@@ -335,3 +335,25 @@ def test_bad_input_is_refused():
     obs = IrregularObservation(s, DT, 100, noise="none", quad_max_cpd=6.0)
     with pytest.raises(ValueError, match="theta must have 3 values"):
         obs.expected(get_family("matern"), [0.02, 1.2], CTX)
+
+
+def test_a_fit_through_irregular_fixes_draws_its_expected_periodogram_over_the_band(demo_dir):
+    # what the dashboard draws as the fitted model of a satellite-like demo window: finite over the fitted band (the
+    # operator covers only it), NaN beyond; and at the data's level there: periodogram over expectation is standard
+    # exponential at a fit, so its mean over the ~170 bins is 1 within a few tenths (sd 1 / sqrt(170) = 0.08, plus
+    # the correlation between neighbouring bins)
+    from driftspec.analysis.fitting import FitSpec, fit_window
+    from driftspec.analysis.tracks.pipeline import load_velocities
+    from driftspec.analysis.tracks.windows import iter_windows
+
+    vel, _, _ = load_velocities(str(demo_dir / "fixes.parquet"))
+    irregular = [w for tid, v in vel.groupby("id") for w in iter_windows(v, 30.0, 0.5, 0.5) if w.irregular][:3]
+    assert len(irregular) == 3
+    for w in irregular:
+        r = fit_window(w, FitSpec(models=("matern+inertial",), inertial_frequency="free"))[0]
+        assert r.observation == "irregular" and r.status == "ok", r.message
+        f, e, in_band = r.expected_spectrum()
+        assert np.all(np.isfinite(e[in_band]) & (e[in_band] > 0)) and not np.isfinite(e[~in_band]).any()
+        p = r.prepared
+        ratio = p.periodogram[np.argsort(p.freq_cpd, kind="stable")][in_band] / e[in_band]
+        assert 0.7 < ratio.mean() < 1.3, ratio.mean()

@@ -99,7 +99,8 @@ class FitResult:
         return np.array([self.params[n] for n in self.family.names], float)
 
     def expected_spectrum(self, freq_cpd=None):
-        """The fitted model's expected periodogram on the window's frequencies (sorted), for plotting.
+        """The fitted model's expected periodogram on the window's frequencies (sorted), for plotting (for a window
+        of irregular fixes over the fitted band only, NaN elsewhere).
 
         Returns ``(freq_cpd, expected, in_band)``. With ``freq_cpd`` given, returns the continuous
         spectral density there instead (``in_band`` then marks ``|f| <= max_freq``).
@@ -111,7 +112,11 @@ class FitResult:
             top = np.abs(self.prepared.freq_cpd[self.prepared.band]).max()
             return f, s, np.abs(f) <= top
         p = self.prepared
-        e = expected_periodogram(self.family, self.theta, p, self.context)
+        if hasattr(self.family, "expected_in_band"):  # seen through irregular fixes: its operator covers the band
+            e = np.full(p.n, np.nan)
+            e[p.band_index] = self.family.expected_in_band(self.theta, p, self.context, jacobian=False)
+        else:
+            e = expected_periodogram(self.family, self.theta, p, self.context)
         o = np.argsort(p.freq_cpd, kind="stable")
         return p.freq_cpd[o], e[o], p.band[o]
 
