@@ -64,11 +64,39 @@ def _fits(path: str):
     return read_table(path)
 
 
+def _may_hold_fixes(path: Path) -> bool:
+    """False for a CSV or Parquet table whose header lacks a track, time, latitude or longitude column (a demo's
+    truth table, a summary): the file selector does not offer what cannot open. Unreadable headers stay listed,
+    so that the page can say what is wrong with them."""
+    from driftspec.analysis.errors import InputError
+    from driftspec.analysis.io.columns import column_map
+
+    suffix = path.suffix.lower()
+    try:
+        if suffix == ".csv":
+            import pandas as pd
+
+            names = list(pd.read_csv(path, nrows=0).columns)
+        elif suffix in (".parquet", ".pq"):
+            import pyarrow.parquet as pq
+
+            names = pq.read_schema(path).names
+        else:
+            return True
+        column_map(names, path.name)
+    except InputError:
+        return False
+    except Exception:  # noqa: BLE001 -- damaged or empty: listed, and the page says why
+        return True
+    return True
+
+
 def data_files(data_dir: Path) -> list[str]:
     root = data_dir.resolve()
     return sorted(str(p.relative_to(data_dir)) for p in data_dir.rglob("*")
                   if p.suffix.lower() in DATA_SUFFIXES and p.is_file() and "fits" not in p.stem
-                  and p.resolve().is_relative_to(root))  # no links that lead outside the folder
+                  and p.resolve().is_relative_to(root)  # no links that lead outside the folder
+                  and _may_hold_fixes(p))
 
 
 def resolve_in(data_dir: Path, name: str) -> Path | None:

@@ -76,3 +76,19 @@ def test_server_options_after_args_are_refused_on_the_page(panel_serve, demo_dir
     port = panel_serve(str(demo_dir / "fixes.parquet"), "--port", "5999")
     status, html = _get(port)
     assert status == 200 and "<title>driftspec · cannot start</title>" in html
+
+
+def test_the_file_selector_offers_only_tables_of_fixes(tmp_path, demo_dir):
+    # a demo folder holds its truth table beside the fixes: listed, it only led to a "Cannot open" page
+    import shutil
+
+    import pandas as pd
+
+    from driftspec.app.server import data_files
+
+    shutil.copy(demo_dir / "fixes.parquet", tmp_path / "fixes.parquet")
+    pd.DataFrame({"id": ["a"], "release_lat": [10.0], "release_lon": [-140.0]}).to_csv(tmp_path / "truth.csv")
+    pd.DataFrame({"track": ["a"], "time": ["2031-01-01"], "latitude": [1.0], "longitude": [2.0]}).to_csv(
+        tmp_path / "few.csv", index=False)
+    (tmp_path / "damaged.parquet").write_bytes(b"not parquet")  # listed: the page says what is wrong with it
+    assert data_files(tmp_path) == ["damaged.parquet", "few.csv", "fixes.parquet"]
