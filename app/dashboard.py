@@ -43,6 +43,7 @@ from driftspec.analysis.tracks.windows import iter_windows
 from .geo import (
     bin_cells,
     bin_quads,
+    box_label,
     ellipse_ring,
     lat_label,
     lon_label,
@@ -967,8 +968,7 @@ class Summary(View):
         when = f" ({cur.start:%Y-%m-%d} to {cur.end:%Y-%m-%d})" if cur is not None else ""
         region = ""
         if st.region:
-            region = (f" · region {st.region[1]:.1f}..{st.region[3]:.1f}°N, {st.region[0]:.1f}..{st.region[2]:.1f}°E"
-                      f" ({len(ex.tracks_in_region())} tracks)")
+            region = f" · region {box_label(st.region)} ({len(ex.tracks_in_region())} tracks pass through it)"
         return (f"**Track {st.track}** · window {min(st.window, max(len(ws) - 1, 0)) + 1} of {len(ws)}{when} · "
                 f"{len(ws)} windows of {st.window_days:g} days · model {st.model} · {st.estimator} estimator" + region)
 
@@ -1158,7 +1158,7 @@ class RegionFit(View):
             return pn.pane.Markdown("Box-select a region on the map for one fit pooled over its windows.",
                                     css_classes=["ds-region-fit"])
         r = ex.region_fit
-        box = (f"{st.region[1]:.4f}..{st.region[3]:.4f}°N, {st.region[0]:.4f}..{st.region[2]:.4f}°E")
+        box = box_label(st.region, digits=4)
         if r is None:
             n = len(ex.region_windows())
             text = (f"Pooling the {n} windows of the region {box} …" if n else

@@ -110,6 +110,22 @@ def lat_label(lat: float) -> str:
     return f"{abs(lat):g}°{'N' if lat > 0 else 'S' if lat < 0 else ''}"
 
 
+def box_label(region, digits: int = 1) -> str:
+    """``(lon0, lat0, lon1, lat1)`` as ``"16.9°N..25.0°N, 150.3°W..140.0°W"`` (hemisphere letters, no signs)."""
+    def one(v, pos, neg):
+        v = round(float(v), digits)
+        return f"{abs(v):.{digits}f}°{pos if v > 0 else neg if v < 0 else ''}"
+
+    lon0, lat0, lon1, lat1 = (((v + 180) % 360) - 180 if k % 2 == 0 else v for k, v in enumerate(map(float, region)))
+    return f"{one(lat0, 'N', 'S')}..{one(lat1, 'N', 'S')}, {one(lon0, 'E', 'W')}..{one(lon1, 'E', 'W')}"
+
+
+def parse_degrees(text: str) -> float:
+    """``"150.3°W"`` -> -150.3 (the inverse of :func:`lon_label` and :func:`lat_label`)."""
+    value = float(text.rstrip("NSEW").rstrip("°"))
+    return -value if text.endswith(("S", "W")) else value
+
+
 def degree_ticks(proj: MapProjection, xlim, ylim, reach: float = 1.0) -> tuple[dict, dict]:
     """Axis ticks of a cylindrical view: ``{x_position: "150°W", ...}`` and ``{y_position: "30°N", ...}``
     at round degree values, spaced for the view ``xlim`` x ``ylim`` and extending ``reach`` view widths beyond

@@ -17,6 +17,7 @@ import test_dashboard_browser as base
 from test_dashboard_browser import _map_box, _moved, _open, _text, _wait_for
 
 from driftspec.app.dashboard import TABLE_DIGITS
+from driftspec.app.geo import parse_degrees
 
 # the browser tests' fixtures, found by name (``server`` starts `driftspec serve` on this module's ``served_dir``)
 browser, page, server = base.browser, base.page, base.server
@@ -140,8 +141,8 @@ def test_a_box_selected_region_gets_its_pooled_fit(server, page, windows):
     table = _wait_for(lambda: _table_with(page, "inertial_frequency_offset"), lambda t: t is not None, timeout=150)
     assert table is not None, _text(page, ".ds-region-fit")
     text = _text(page, ".ds-region-fit")
-    m = re.search(r"region ([-\d.]+)\.\.([-\d.]+)°N, ([-\d.]+)\.\.([-\d.]+)°E", text)
-    lat0, lat1, lon0, lon1 = (float(g) for g in m.groups())
+    m = re.search(r"region ([\d.]+°[NS]?)\.\.([\d.]+°[NS]?), ([\d.]+°[EW]?)\.\.([\d.]+°[EW]?)", text)
+    lat0, lat1, lon0, lon1 = (parse_degrees(g) for g in m.groups())  # hemisphere letters, as the page writes
     # the region's windows, chosen here: mean position inside the box
     mine = [w for w in windows if lat0 <= w.lat <= lat1 and lon0 <= w.lon <= lon1]
     direct = pool_fit(mine, _spec())
