@@ -89,3 +89,19 @@ def test_interrupted_run_resumes_to_same_table(windows, serial, tmp_path):
     _same(got, serial)
     cols = ["track_id", "window_start", "model", "status", "matern_alpha"]
     _same(back[cols], serial[cols])
+
+
+def test_every_numeric_column_of_the_table_has_units(serial, windows, tmp_path):
+    # the CF conventions ask for a units attribute on every dimensional variable; the table's numbers all carry one
+    # (a count or a ratio has units "1"), also for a run whose windows are fitted through irregular fixes
+    import pyarrow.parquet as pq
+
+    from driftspec.analysis.fitting.batch import column_units
+
+    spec = FitSpec()  # the command line's defaults: every candidate, the observation model per window
+    table = run_fits(windows[:6], tmp_path / "f.parquet", spec, workers=1, progress=False)
+    schema = pq.read_schema(tmp_path / "f.parquet")
+    numeric = [c for c in table.columns if pd.api.types.is_numeric_dtype(table[c]) and table[c].dtype != bool]
+    missing = [c for c in numeric if not (schema.field(c).metadata or {}).get(b"units")]
+    assert missing == [], missing
+    assert set(numeric) <= set(column_units(spec))

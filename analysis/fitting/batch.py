@@ -47,7 +47,7 @@ COLUMN_UNITS = {
     "anisotropy": "1", "anisotropy_angle_deg": "degree", "isotropy_pvalue": "1", "diffusivity_major": "m2 s-1",
     "diffusivity_minor": "m2 s-1", "diffusivity_angle_deg": "degree", "diffusivity_major_se": "m2 s-1",
     "diffusivity_minor_se": "m2 s-1", "diffusivity_angle_deg_se": "degree",
-    "gof_pvalue": "1",
+    "gof_pvalue": "1", "n_valid": "1", "n_freq": "1", "position_error_scale_se": "1", "position_noise_se": "m",
     "diffusivity": "m2 s-1", "diffusivity_se": "m2 s-1", "matern_timescale_days": "day",
     "inertial_efold_days": "day", "window_start": "UTC", "window_end": "UTC",
 }
