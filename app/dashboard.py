@@ -48,10 +48,18 @@ from .geo import (
     lat_label,
     lon_label,
     map_bin_edges,
+    position_labels,
     widen_to_ratio,
 )
 from .jobs import Job
-from .plots import ComplementaryFigure, RotarySpectrumFigure, TrackMapFigure, VelocityFigure, on_page
+from .plots import (
+    ComplementaryFigure,
+    RotarySpectrumFigure,
+    TrackMapFigure,
+    VelocityFigure,
+    on_page,
+    parameter_map_figure,
+)
 from .state import ANALYSIS, FIT_PARAMS, URL_PARAMS, ExplorerState, parse_query, widgets_for
 from .trackdata import MAP_RATIO, TrackData
 
@@ -118,6 +126,7 @@ class Explorer(param.Parameterized):
     all_fits = param.DataFrame(default=None, allow_None=True, constant=True,
                                doc="Fits of every window (first look, --fits, or Fit every window)")
     progress = param.Integer(default=0, bounds=(0, 100), constant=True)
+    busy = param.Boolean(default=False, constant=True, doc="A job is queued or running (progress bar and Cancel shown)")
     status_text = param.String(default="", constant=True)
     message = param.String(default="", constant=True, doc="One-line notice (e.g. rejected URL values)")
     refit_ms = param.Number(default=np.nan, constant=True, doc="Time from a change to its fit on screen, ms")
@@ -371,7 +380,7 @@ class Explorer(param.Parameterized):
             self._jobs[slot] = None
             return None
         job = Job(windows, key[-1], kind, doc=self.doc, on_update=self._on_job, label=label, key=key,
-                  own_process=self.state.estimator == "exact", background=slot == "all")
+                  own_process=self.state.estimator == "exact", background=slot == "all", cached=slot == "all")
         self._jobs[slot] = job
         self._job_started[slot] = time.perf_counter()
         return job.start()
@@ -483,7 +492,9 @@ class Explorer(param.Parameterized):
                                  self._jobs["track"])
                      if j is not None and j.n_total), None)
         pct = int(100 * lead.n_done / lead.n_total) if lead is not None and lead.status != "done" else 100
-        self._set(status_text=" · ".join(parts), progress=pct)
+        running = [j for j in (*self._jobs.values(), fl if not self._user_fits else None)
+                   if j is not None and j.status in ("queued", "running")]
+        self._set(status_text=" · ".join(parts), progress=pct, busy=bool(running))
 
     def fit_all(self, *_):
         ws = [w for tid in self.tracks_in_region() for w in self.windows(tid)]
@@ -599,10 +610,10 @@ class Explorer(param.Parameterized):
 
     def main_area(self):
         bar = pn.indicators.Progress(value=self.param.progress, max=100, sizing_mode="stretch_width", height=14,
-                                     name="progress")
+                                     name="progress", visible=self.param.busy)
         status = pn.pane.Markdown(self.param.status_text, css_classes=["ds-status"])
         notice = pn.pane.Markdown(self.param.message, css_classes=["ds-message"], styles={"color": "#b5522b"})
-        cancel = pn.widgets.Button(name="Cancel", button_type="warning", width=90)
+        cancel = pn.widgets.Button(name="Cancel", button_type="warning", width=90, visible=self.param.busy)
         cancel.on_click(self.cancel)
         explore = pn.Column(TrackMap(ex=self), Summary(ex=self), VelocityView(ex=self),
                             # the fit under the spectra, not beside them: two spectra need about 660 px side by
@@ -783,26 +794,6 @@ class LiveView(View):
 
     def __panel__(self):
         return self._pane
-
-
-def geography_layers(data: TrackData, labels: bool, view=None):
-    """Land, shoreline and graticule of a data set's map, and the axis options putting degrees on the axes
-    (cylindrical views) or labels on the graticule lines (polar views). ``view``: the (xlim, ylim) shown."""
-    land_xy, grid_xy = data.geography_xy
-    land_el = hv.Polygons([{"x": land_xy[:, 0], "y": land_xy[:, 1]}] if len(land_xy) else [],
-                          kdims=["x", "y"]).opts(color=COLOURS["land"], line_color=COLOURS["coast"], line_width=0.7)
-    grid = hv.Path([grid_xy], kdims=["x", "y"]).opts(color=COLOURS["grid"], line_width=0.6, line_dash="dashed",
-                                                      alpha=0.8)
-    layers = [land_el, grid]
-    xt, yt, keep = data.map_labels(view or data.extent)
-    if xt:
-        axis = dict(xticks=list(xt.items()), yticks=list(yt.items()), xlabel="longitude", ylabel="latitude")
-    else:
-        axis = dict(xaxis=None, yaxis=None)
-        if labels and keep:
-            layers.append(hv.Labels(keep, kdims=["x", "y"], vdims="text").opts(
-                text_color="#3a4450", text_font_size="9pt", text_align="left", text_baseline="bottom"))
-    return layers, axis
 
 
 #: the colour bar's title for each value the track map can show
@@ -1221,6 +1212,15 @@ class TrackSummary(View):
         return pn.Column(pn.panel(self.plot, lazy=True), sizing_mode="stretch_width")
 
 
+def _bin_columns(quads, lon_e, lat_e, i, j) -> dict:
+    """Outline (projected ``xs``, ``ys``), centre (``lon``, ``lat`` in degrees, longitude in -180..180) and its
+    label (``centre``) of the map bins at rows ``i`` and columns ``j``."""
+    lon = (0.5 * (lon_e[j] + lon_e[j + 1]) + 180) % 360 - 180
+    lat = 0.5 * (lat_e[i] + lat_e[i + 1])
+    return {"xs": [quads[a][c][:, 0] for a, c in zip(i, j)], "ys": [quads[a][c][:, 1] for a, c in zip(i, j)],
+            "lon": np.asarray(lon, float), "lat": np.asarray(lat, float), "centre": position_labels(lat, lon, 1)}
+
+
 class ParameterMap(View):
     """A fitted parameter in lon/lat bins over land and graticule: per bin the median of the windows' fits, or one
     fit pooled over the bin's windows (with its standard error and heterogeneity test in the hover); velocity
@@ -1246,19 +1246,15 @@ class ParameterMap(View):
         lat_e = np.r_[ds["lat_bnds"].values[:, 0], ds["lat_bnds"].values[-1, 1]]
         quads = bin_quads(data.proj, lon_e, lat_e)
         val, cnt = ds[p].values, ds["count"].values
-        polys = [{"x": quads[i][j][:, 0], "y": quads[i][j][:, 1], p: float(val[i, j]), "count": int(cnt[i, j]),
-                  "lon": float(0.5 * (lon_e[j] + lon_e[j + 1]) + 180) % 360 - 180,
-                  "lat": float(0.5 * (lat_e[i] + lat_e[i + 1]))}
-                 for i in range(val.shape[0]) for j in range(val.shape[1]) if cnt[i, j] > 0]
-        mesh = hv.Polygons(polys, kdims=["x", "y"], vdims=[hv.Dimension(p, label=f"median {p}"), "count", "lon",
-                                                            "lat"]).opts(
-            color=p, cmap="cividis", colorbar=True, line_width=0.2, line_color="white", tools=["hover"],
-            hover_tooltips=[("bin centre", "@lat{0.0}°N @lon{0.0}°E"), (f"median {p}", f"@{{{p}}}{{0.000}}"),
-                            ("ok fits", "@count")])
-        return mesh, lon_e, lat_e, quads, f"median {p} in {b:g}° bins ({int(cnt.sum())} ok fits)"
+        i, j = np.nonzero(cnt > 0)
+        bins = _bin_columns(quads, lon_e, lat_e, i, j)
+        bins.update({p: val[i, j].astype(float), "count": cnt[i, j].astype(int)})
+        tooltips = [("bin centre", "@centre"), (f"median {p}", f"@{{{p}}}{{0.000}}"), ("ok fits", "@count")]
+        title = f"median {p} in {b:g}° bins ({int(cnt.sum())} ok fits)"
+        return bins, f"median {p}", tooltips, lon_e, lat_e, quads, title
 
     def _pooled_layer(self, p, b):
-        ex, st, data = self.ex, self.state, self.ex.data
+        ex, st = self.ex, self.state
         pm = ex.pooled_map
         if pm is None or pm["key"] != ex.map_key():
             return pn.pane.Markdown("Pooling the windows of every bin under the current settings … (progress above)",
@@ -1273,34 +1269,32 @@ class ParameterMap(View):
                 f"The pooled fit shares {', '.join(shared) or 'no parameter (no bin could be fitted)'}; "
                 f"`{p}` is fitted per window. Choose a shared parameter to map.", css_classes=["ds-param-map"])
         lon_e, lat_e = pm["lon_edges"], pm["lat_edges"]
-        quads = bin_quads(data.proj, lon_e, lat_e)
-        polys = []
-        for (i, j), r in zip(pm["cells"], pm["results"]):
-            fitted = r.status in ("ok", "at_bound")
-            polys.append({"x": quads[i][j][:, 0], "y": quads[i][j][:, 1],
-                          p: float(r.params.get(p, np.nan)) if fitted else np.nan,
-                          "se": float(r.stderr.get(p, np.nan)) if fitted else np.nan,
-                          "n_windows": int(r.n_windows), "n_tracks": int(r.n_tracks),
-                          "het_stat": float(r.heterogeneity_statistic), "het_df": float(r.heterogeneity_df),
-                          "het_p": float(r.heterogeneity_pvalue), "status": r.status,
-                          "lon": float(0.5 * (lon_e[j] + lon_e[j + 1]) + 180) % 360 - 180,
-                          "lat": float(0.5 * (lat_e[i] + lat_e[i + 1]))})
-        vdims = [hv.Dimension(p, label=f"pooled {p}"), "se", "n_windows", "n_tracks", "het_stat", "het_df", "het_p",
-                 "status", "lon", "lat"]
-        mesh = hv.Polygons(polys, kdims=["x", "y"], vdims=vdims).opts(
-            color=p, cmap="cividis", colorbar=True, line_width=0.2, line_color="white", tools=["hover"],
-            clipping_colors={"NaN": "#c8c8c8"},
-            hover_tooltips=[("bin centre", "@lat{0.0}°N @lon{0.0}°E"), (f"pooled {p}", f"@{{{p}}}{{0.0000}}"),
-                            ("std. error", "@se{0.0000}"), ("windows / tracks", "@n_windows / @n_tracks"),
-                            ("heterogeneity", "statistic @het_stat{0.00}, df @het_df, p = @het_p{0.000}"),
-                            ("status", "@status")])
-        n_ok = sum(r.status == "ok" for r in pm["results"])
-        n_fit = sum(r.status in ("ok", "at_bound") for r in pm["results"])
-        return mesh, lon_e, lat_e, quads, (f"pooled {p} in {b:g}° bins: {n_fit} of {len(pm['cells'])} bins fitted "
-                                           f"({n_ok} ok), {st.window_days:g}-day windows")
+        quads = bin_quads(self.ex.data.proj, lon_e, lat_e)
+        results = pm["results"]
+        i, j = (np.array([c[k] for c in pm["cells"]], int) for k in (0, 1))
+        fitted = np.array([r.status in ("ok", "at_bound") for r in results], bool)
+        bins = _bin_columns(quads, lon_e, lat_e, i, j)
+        bins.update({
+            p: np.where(fitted, [float(r.params.get(p, np.nan)) for r in results], np.nan),
+            "se": np.where(fitted, [float(r.stderr.get(p, np.nan)) for r in results], np.nan),
+            "n_windows": np.array([int(r.n_windows) for r in results]),
+            "n_tracks": np.array([int(r.n_tracks) for r in results]),
+            "het_stat": np.array([float(r.heterogeneity_statistic) for r in results]),
+            "het_df": np.array([float(r.heterogeneity_df) for r in results]),
+            "het_p": np.array([float(r.heterogeneity_pvalue) for r in results]),
+            "status": [r.status for r in results]})
+        tooltips = [("bin centre", "@centre"), (f"pooled {p}", f"@{{{p}}}{{0.0000}}"), ("std. error", "@se{0.0000}"),
+                    ("windows / tracks", "@n_windows / @n_tracks"),
+                    ("heterogeneity", "statistic @het_stat{0.00}, df @het_df, p = @het_p{0.000}"),
+                    ("status", "@status")]
+        n_ok = sum(r.status == "ok" for r in results)
+        return bins, f"pooled {p}", tooltips, lon_e, lat_e, quads, (
+            f"pooled {p} in {b:g}° bins: {int(fitted.sum())} of {len(pm['cells'])} bins fitted ({n_ok} ok), "
+            f"{st.window_days:g}-day windows")
 
-    def _ellipses(self, lon_e, lat_e, quads):
-        """Velocity variance ellipses of the bins' samples, the largest spanning most of a bin."""
+    def _ellipses(self, lon_e, lat_e, quads) -> dict | None:
+        """Velocity variance ellipses of the bins' samples, the largest spanning most of a bin: columns ``xs``,
+        ``ys`` (one projected ring per bin), ``sd_major``, ``sd_minor`` (m/s), ``angle`` (degrees from east), ``n``."""
         data = self.ex.data
         e = bin_variance_ellipses(data.vel, lon_e, lat_e)
         if not len(e) or not np.isfinite(e["var_major"]).any():
@@ -1308,46 +1302,36 @@ class ParameterMap(View):
         sd_major, sd_minor = np.sqrt(e["var_major"].to_numpy()), np.sqrt(e["var_minor"].to_numpy())
         cell = min(min(np.ptp(q[:, 0]), np.ptp(q[:, 1])) for row in quads for q in row)
         scale = 0.45 * cell / np.nanmax(sd_major)  # projected m per (m/s)
-        paths = []
-        for k, r in e.iterrows():
-            i, j = int(r["iy"]), int(r["ix"])
-            lon = 0.5 * (lon_e[j] + lon_e[j + 1])
-            lat = 0.5 * (lat_e[i] + lat_e[i + 1])
-            ring = ellipse_ring(data.proj, lon, lat, scale * sd_major[k], scale * sd_minor[k],
-                                float(r["ellipse_angle_deg"]))
-            paths.append({"x": ring[:, 0], "y": ring[:, 1], "sd_major": sd_major[k], "sd_minor": sd_minor[k],
-                          "angle": float(r["ellipse_angle_deg"]), "n": int(r["n"])})
-        return hv.Path(paths, kdims=["x", "y"], vdims=["sd_major", "sd_minor", "angle", "n"],
-                       label="velocity variance ellipses").opts(
-            color=COLOURS["track"], line_width=1.4, tools=["hover"],
-            hover_tooltips=[("std. dev. along the major axis", "@sd_major{0.000} m/s"),
-                            ("across", "@sd_minor{0.000} m/s"), ("major axis", "@angle{0.0}° from east"),
-                            ("samples", "@n")])
+        iy, ix, angle = e["iy"].to_numpy(int), e["ix"].to_numpy(int), e["ellipse_angle_deg"].to_numpy(float)
+        rings = [ellipse_ring(data.proj, 0.5 * (lon_e[j] + lon_e[j + 1]), 0.5 * (lat_e[i] + lat_e[i + 1]),
+                              scale * a, scale * c, float(t))
+                 for i, j, a, c, t in zip(iy, ix, sd_major, sd_minor, angle)]
+        return {"xs": [r[:, 0] for r in rings], "ys": [r[:, 1] for r in rings], "sd_major": sd_major,
+                "sd_minor": sd_minor, "angle": angle, "n": e["n"].to_numpy(int)}
 
     @param.depends("ex.all_fits", "ex.pooled_map", "state.map_param", "state.bin_deg", "state.map_values",
                    "state.ellipses", "state.presentation")
     def plot(self):
+        """The map (a Bokeh figure: bins in the source named ``bins``, ellipses in ``ellipses``), or a message."""
         st, data = self.state, self.ex.data
         p, b = st.map_param, st.bin_deg
         layer = self._pooled_layer(p, b) if st.map_values == "pooled fit" else self._median_layer(p, b)
         if not isinstance(layer, tuple):
             return layer
-        mesh, lon_e, lat_e, quads, title = layer
-        layers = [mesh]
-        if st.ellipses:
-            ell = self._ellipses(lon_e, lat_e, quads)
-            if ell is not None:
-                layers.append(ell)
+        bins, value_label, tooltips, lon_e, lat_e, quads, title = layer
+        ellipses = self._ellipses(lon_e, lat_e, quads) if st.ellipses else None
         qx = np.concatenate([q[:, 0] for row in quads for q in row])
         qy = np.concatenate([q[:, 1] for row in quads for q in row])
         pad = 0.05 * max(np.ptp(qx), np.ptp(qy))
         (dx0, dx1), (dy0, dy1) = data.extent
         xlim, ylim = widen_to_ratio((min(qx.min() - pad, dx0), max(qx.max() + pad, dx1)),
                                     (min(qy.min() - pad, dy0), max(qy.max() + pad, dy1)), MAP_RATIO)
-        geo, axis = geography_layers(data, labels=True, view=(xlim, ylim))
-        return hv.Overlay([geo[0], *layers, *geo[1:]]).opts(hv.opts.Overlay(
-            frame_height=480, frame_width=int(480 * MAP_RATIO), fontscale=self.fontscale(), bgcolor="#eef2f5",
-            title=title, xlim=xlim, ylim=ylim, legend_position="bottom_left", **axis))
+        land_xy, grid_xy = data.geography_xy
+        xt, yt, grid_labels = data.map_labels((xlim, ylim))
+        return parameter_map_figure(
+            xlim=xlim, ylim=ylim, frame_width=int(480 * MAP_RATIO), frame_height=480, colours=COLOURS,
+            land_xy=land_xy, grid_xy=grid_xy, grid_labels=grid_labels, ticks=(xt, yt), bins=bins, value=p,
+            value_label=value_label, tooltips=tooltips, ellipses=ellipses, title=title, fontscale=self.fontscale())
 
     def __panel__(self):
         mp = pn.widgets.Select.from_param(self.state.param.map_param, name="Parameter")

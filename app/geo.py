@@ -110,6 +110,15 @@ def lat_label(lat: float) -> str:
     return f"{abs(lat):g}°{'N' if lat > 0 else 'S' if lat < 0 else ''}"
 
 
+def position_labels(lat, lon, digits: int = 2) -> list[str]:
+    """``"24.50°N 134.01°W"`` for each position (hemisphere letters, no signs), as the hovers show them."""
+    lat = np.round(np.asarray(lat, float), digits)
+    lon = np.round(((np.asarray(lon, float) + 180) % 360) - 180, digits)
+    ns = np.where(lat > 0, "N", np.where(lat < 0, "S", ""))
+    ew = np.where(lon > 0, "E", np.where(lon < 0, "W", ""))
+    return [f"{abs(a):.{digits}f}°{h} {abs(o):.{digits}f}°{v}" for a, h, o, v in zip(lat, ns, lon, ew)]
+
+
 def box_label(region, digits: int = 1) -> str:
     """``(lon0, lat0, lon1, lat1)`` as ``"16.9°N..25.0°N, 150.3°W..140.0°W"`` (hemisphere letters, no signs)."""
     def one(v, pos, neg):

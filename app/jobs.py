@@ -133,6 +133,9 @@ class Job(param.Parameterized):
         Run in a process of its own, terminated on cancel (the exact estimator), at background priority.
     background : bool
         Run in the lower-priority pool (long jobs nobody is waiting on window by window).
+    cached : bool
+        Read the rows from the on-disk cache when the same windows were fitted under the same settings by the
+        same code before, and write them there when done (:mod:`.fitcache`; ``"rows"`` jobs only).
     """
 
     label = param.String(default="", constant=True)
@@ -145,9 +148,10 @@ class Job(param.Parameterized):
     eta_s = param.Number(default=float("nan"), constant=True, doc="Estimated time left, s")
     message = param.String(default="", constant=True)
     result = param.Parameter(default=None, constant=True, doc="List of per-window outputs, in window order")
+    from_cache = param.Boolean(default=False, constant=True, doc="The result was read from the on-disk cache")
 
     def __init__(self, windows, spec_json: str, kind: str, doc=None, on_update=None, own_process=False,
-                 background=False, **params):
+                 background=False, cached=False, **params):
         super().__init__(**params)
         self._windows = list(windows)
         self._spec_json = spec_json
@@ -156,6 +160,7 @@ class Job(param.Parameterized):
         self._on_update = on_update
         self._own_process = own_process
         self._background = background
+        self._cached = cached and kind == "rows"
         self._cancelled = threading.Event()
         self._private_pool = None
         self._thread = threading.Thread(target=self._run, daemon=True, name=f"job-{self.label}")
@@ -195,6 +200,15 @@ class Job(param.Parameterized):
         t0 = time.perf_counter()
         out = [None] * len(self._windows)
         self._publish(status="running")
+        key = None
+        if self._cached:
+            from . import fitcache
+
+            key = fitcache.table_key(self._windows, self._spec_json)
+            rows = fitcache.load(key, len(self._windows))
+            if rows is not None and not self.cancelled:
+                self._publish(status="done", n_done=len(rows), result=rows, eta_s=0.0, from_cache=True)
+                return
         try:
             if self._own_process:
                 self._private_pool = multiprocessing.get_context("spawn").Pool(1, initializer=_warm_background)
@@ -231,5 +245,9 @@ class Job(param.Parameterized):
             self._publish(status="cancelled")
             return
         elapsed = time.perf_counter() - t0
+        if key is not None:
+            from . import fitcache
+
+            fitcache.store(key, out)
         self._publish(status="done", n_done=len(out), result=out, eta_s=0.0,
                       rate=len(out) / elapsed if elapsed > 0 else float("nan"))

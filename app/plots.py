@@ -1,10 +1,12 @@
-"""The dashboard's line plots drawn with Bokeh directly: the selected track's velocity, the current window's rotary
-spectra with the fitted model, and the complementary spectrum of an anisotropic fit.
+"""The dashboard's plots drawn with Bokeh directly: the track map, the selected track's velocity, the current window's
+rotary spectra with the fitted model, the complementary spectrum of an anisotropic fit, and the parameter map.
 
 Each plot is built once per page and then updated in place: a new track, window or fit puts new arrays into the
 plot's data sources, so the page receives a few arrays instead of a new plot to build and lay out. (Drawn through
 HoloViews, every update rebuilt the plot on the server, about 70 ms per layer, and the browser built its views
-and laid the page out again.) HoloViews still draws the datashaded map and the summary tabs.
+and laid the page out again.) The parameter map is drawn here too (a new figure when its settings change), one
+glyph per layer: through HoloViews, whose path elements build an object per geometry, 156 bins and 217 variance
+ellipses took 20 s of the server's only thread. HoloViews still draws the track summary and the dispersion tab.
 
 These classes only draw; the arrays come from :mod:`driftspec.analysis` (spectra, the fit's expected spectrum)
 and from :mod:`driftspec.app.dashboard` (``complementary_curves``).
@@ -278,8 +280,7 @@ class TrackMapFigure:
                      text_align="left", text_baseline="bottom")
         pick = fig.scatter("x", "y", source=ColumnDataSource(picker), size=4, alpha=0, nonselection_alpha=0,
                            selection_alpha=0)
-        fig.add_tools(HoverTool(renderers=[pick], tooltips=[("track", "@track"), ("longitude", "@lon{0.00}°"),
-                                                            ("latitude", "@lat{0.00}°")]),
+        fig.add_tools(HoverTool(renderers=[pick], tooltips=[("track", "@track"), ("position", "@position")]),
                       BoxSelectTool(renderers=[pick]))
         self.selected = ColumnDataSource({"x": [], "y": []})
         fig.line("x", "y", source=self.selected, color=colours["track"], line_width=2.5)
@@ -339,3 +340,62 @@ class TrackMapFigure:
         self.ellipse_line.glyph.line_dash = "solid" if solid else "dashed"
         self.ellipse_text.data = {"x": [float(ring[:, 0].max())], "y": [float(ring[:, 1].max())], "text": [text]}
         self.ellipse_item.visible = True
+
+
+def parameter_map_figure(*, xlim, ylim, frame_width: int, frame_height: int, colours: dict, land_xy, grid_xy,
+                         grid_labels, ticks, bins: dict, value: str, value_label: str, tooltips: list,
+                         ellipses: dict | None, title: str, fontscale: float = 1.0):
+    """A value per map bin over land and graticule, with degree labels, and the bins' velocity variance ellipses.
+
+    ``bins``: columns of one row per bin, ``xs`` and ``ys`` its outline (projected), ``value`` the value coloured
+    (NaN: grey), the rest shown by ``tooltips``. ``ellipses``: columns ``xs``, ``ys`` (one ring per bin),
+    ``sd_major``, ``sd_minor``, ``angle``, ``n``; or None. One glyph per layer: drawn through HoloViews, a map of
+    200 bins and their ellipses took 20 s on the server (a geometry object per bin), as one glyph 0.1 s."""
+    from bokeh.models import ColorBar, FixedTicker, HoverTool, LinearColorMapper, WheelZoomTool
+    from bokeh.palettes import cividis
+    from bokeh.plotting import figure
+
+    (x0, x1), (y0, y1) = xlim, ylim
+    wheel = WheelZoomTool(modifiers={"ctrl": True})
+    fig = figure(frame_width=frame_width, frame_height=frame_height, x_range=Range1d(x0, x1), y_range=Range1d(y0, y1),
+                 title=title, background_fill_color="#eef2f5", tools=["pan", wheel, "box_zoom", "reset", "save"],
+                 active_scroll=wheel)
+    fig.grid.visible = False
+    if len(land_xy):
+        fig.patch(land_xy[:, 0], land_xy[:, 1], fill_color=colours["land"], line_color=colours["coast"],
+                  line_width=0.7)
+    values = np.asarray(bins[value], float)
+    finite = values[np.isfinite(values)]
+    low, high = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
+    if high <= low:
+        low, high = low - 0.5, high + 0.5
+    mapper = LinearColorMapper(palette=cividis(256), low=low, high=high, nan_color="#c8c8c8")
+    cells = fig.patches("xs", "ys", source=ColumnDataSource(bins), fill_color={"field": value, "transform": mapper},
+                        line_color="white", line_width=0.2, name="bins")
+    fig.add_tools(HoverTool(renderers=[cells], tooltips=tooltips))
+    fig.add_layout(ColorBar(color_mapper=mapper, title=value_label, title_standoff=8, width=16), "right")
+    if ellipses is not None and len(ellipses["xs"]):
+        rings = fig.multi_line("xs", "ys", source=ColumnDataSource(ellipses), color=colours["track"], line_width=1.4,
+                               name="ellipses")
+        fig.add_tools(HoverTool(renderers=[rings], tooltips=[
+            ("std. dev. along the major axis", "@sd_major{0.000} m/s"), ("across", "@sd_minor{0.000} m/s"),
+            ("major axis", "@angle{0.0}° from east"), ("samples", "@n")]))
+        fig.add_layout(Legend(items=[LegendItem(label="velocity variance ellipses", renderers=[rings])],
+                              location="bottom_left"))
+    if len(grid_xy):
+        fig.line(grid_xy[:, 0], grid_xy[:, 1], color=colours["grid"], line_width=0.6, line_dash="dashed", alpha=0.8)
+    xt, yt = ticks
+    if xt:
+        fig.xaxis.ticker = FixedTicker(ticks=list(xt))
+        fig.xaxis.major_label_overrides = {float(k): v for k, v in xt.items()}
+        fig.yaxis.ticker = FixedTicker(ticks=list(yt))
+        fig.yaxis.major_label_overrides = {float(k): v for k, v in yt.items()}
+        fig.xaxis.axis_label, fig.yaxis.axis_label = "longitude", "latitude"
+    else:  # a polar view: the labels sit on the graticule lines
+        fig.xaxis.visible = fig.yaxis.visible = False
+        if grid_labels:
+            lx, ly, lt = zip(*grid_labels)
+            fig.text(list(lx), list(ly), text=list(lt), text_color="#3a4450", text_font_size="9pt",
+                     text_align="left", text_baseline="bottom")
+    scale_fonts(fig, fontscale)
+    return fig

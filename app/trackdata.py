@@ -23,6 +23,7 @@ from .geo import (
     label_points,
     land_polygons,
     lonlat_ranges,
+    position_labels,
     widen_to_ratio,
 )
 from .jobs import Job, call_in_session
@@ -99,11 +100,12 @@ class TrackData:
     @functools.cached_property
     def picker_columns(self) -> dict:
         """A thinned copy of the samples (at most about 5,000) carrying the map's hover and box selection:
-        projected ``x``, ``y``, ``lon``, ``lat`` (degrees) and ``track``."""
+        projected ``x``, ``y``, ``lon``, ``lat`` (degrees), ``position`` (their label) and ``track``."""
         p = self.points
         step = max(1, len(p) // 5000)
-        return {"x": p["x"].to_numpy()[::step], "y": p["y"].to_numpy()[::step], "lon": p["lon"].to_numpy()[::step],
-                "lat": p["lat"].to_numpy()[::step],
+        lon, lat = p["lon"].to_numpy()[::step], p["lat"].to_numpy()[::step]
+        return {"x": p["x"].to_numpy()[::step], "y": p["y"].to_numpy()[::step], "lon": lon, "lat": lat,
+                "position": position_labels(lat, lon),
                 "track": np.asarray(self.track_ids, dtype=object)[p["track_code"].to_numpy()[::step]]}
 
     def raster(self, value: str, x_range, y_range, width: int, height: int, dates=None) -> np.ndarray:
@@ -139,7 +141,7 @@ class TrackData:
             if self.first_look is None:
                 windows = [w for tid in self.track_ids for w in windows_of(tid)]
                 job = Job(windows, spec.to_json(), "rows", doc=None, on_update=self._notify, background=True,
-                          label="first look", key=("first look", spec.to_json()))
+                          cached=True, label="first look", key=("first look", spec.to_json()))
                 self.first_look = job.start()
             return self.first_look
 

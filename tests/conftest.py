@@ -8,6 +8,22 @@ import pytest
 ARTIFACTS = Path(__file__).resolve().parent.parent / "test-artifacts"
 
 
+@pytest.fixture(scope="session", autouse=True)
+def fits_cache_dir(tmp_path_factory):
+    """The dashboard's on-disk cache of fits tables in a fresh folder for this test run (servers started by the
+    tests inherit it), so that no test reads fits left by an earlier run."""
+    from driftspec.app.fitcache import CACHE_ENV
+
+    folder = tmp_path_factory.mktemp("fits-cache")
+    old = os.environ.get(CACHE_ENV)
+    os.environ[CACHE_ENV] = str(folder)
+    yield folder
+    if old is None:
+        os.environ.pop(CACHE_ENV, None)
+    else:
+        os.environ[CACHE_ENV] = old
+
+
 @pytest.fixture(scope="session")
 def artifacts_dir():
     ARTIFACTS.mkdir(exist_ok=True)

@@ -52,6 +52,20 @@ def test_degree_ticks_sit_at_their_degrees():
         assert pos == pytest.approx(proj.forward(np.array([proj.central_lon]), np.array([lat]))[1][0], abs=1e-3)
 
 
+def test_position_labels_use_hemisphere_letters_and_wrap_longitude(rng):
+    from driftspec.app.geo import parse_degrees, position_labels
+
+    # hover labels: no signs, longitudes east of 180°E wrap to the west (the ISO 6709 sign convention spelled with
+    # hemisphere letters)
+    assert position_labels([-24.5, 0.0, 10.0], [-134.014, 190.0, 0.0]) == [
+        "24.50°S 134.01°W", "0.00° 170.00°W", "10.00°N 0.00°"]
+    lat, lon = rng.uniform(-89, 89, 200), rng.uniform(-540, 540, 200)
+    for text, a, o in zip(position_labels(lat, lon, 4), lat, lon):
+        la, lo = text.split()
+        assert parse_degrees(la) == pytest.approx(a, abs=5e-5)
+        assert parse_degrees(lo) == pytest.approx((o + 180) % 360 - 180, abs=5e-5)
+
+
 def test_land_and_graticule_near_a_coast():
     # off Portugal: the shipped shoreline must give land east of 9.5 W at 40 N (outside knowledge: Iberia)
     from shapely.geometry import Point, Polygon
@@ -116,6 +130,12 @@ def _all_windows(ex):
             for w in iter_windows(v, st.window_days, st.overlap, MIN_COVERAGE)]
 
 
+def _rows(fig, name):
+    """The rows of the data source of the glyph ``name`` of a Bokeh figure, as dicts (what the page receives)."""
+    data = fig.select_one({"name": name}).data_source.data
+    return [dict(zip(data, values)) for values in zip(*data.values())]
+
+
 def _cli_spec(**extra):
     """The dashboard's default settings as `driftspec fit` options would give them."""
     from driftspec.analysis.fitting import FitSpec
@@ -131,8 +151,7 @@ def test_pooled_parameter_map_shows_pool_fit_of_each_bins_windows(explorer):
     ex = explorer
     ex.state.param.update(bin_deg=10.0, map_values="pooled fit", map_param="matern_alpha", ellipses=False)
     pm = ex.fit_pooled_map()
-    plot = ParameterMap(ex=ex).plot()
-    polys = plot.Polygons.II.data  # the bins drawn, with their hover values
+    polys = _rows(ParameterMap(ex=ex).plot(), "bins")  # the bins drawn, with their hover values
     assert len(polys) == len(pm["cells"]) >= 3
     lon_e, lat_e = pm["lon_edges"], pm["lat_edges"]
     assert np.allclose(np.diff(lon_e), 10.0) and np.allclose(np.diff(lat_e), 10.0)
@@ -300,9 +319,8 @@ def test_parameter_map_variance_ellipses_are_the_bins_sample_covariance(explorer
                          for w in _all_windows(ex)])
     ex._set(all_fits=fits)
     plot = ParameterMap(ex=ex).plot()
-    paths = plot.Path.Velocity_variance_ellipses.data
-    ds_edges = plot.Polygons.II.data
-    assert len(paths) >= 3 and ds_edges
+    paths = [{**r, "x": r["xs"], "y": r["ys"]} for r in _rows(plot, "ellipses")]
+    assert len(paths) >= 3 and _rows(plot, "bins")
     vel = ex.vel
     ok = vel["valid_velocity"].to_numpy(bool) & np.isfinite(vel["u"].to_numpy()) & np.isfinite(vel["v"].to_numpy())
     v = vel[ok]
