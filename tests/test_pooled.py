@@ -312,3 +312,67 @@ def test_simulated_amplitudes_are_reestimated_as_scipy_minimize_finds_them():
         # the first-order score at the fitted amplitudes is not that close: the check can tell them apart
         worst = max(worst, np.max(np.abs(shared @ ((1 - pg[s] / e) / e) - ref) / spread))
     assert worst > 0.1
+
+
+@pytest.fixture(scope="module")
+def irregular_demo_windows(demo_dir):
+    """Windows of satellite-like (irregular) fixes from the demo generator's drifters (positions read at irregular
+    times with per-fix errors)."""
+    from driftspec.analysis.tracks.pipeline import load_velocities
+    from driftspec.analysis.tracks.windows import iter_windows
+
+    vel, _, _ = load_velocities(str(demo_dir / "fixes.parquet"))
+    windows = [w for _, v in vel.groupby("id", sort=True) for w in iter_windows(v, 30.0, 0.5, 0.5)]
+    return [w for w in windows if w.irregular]
+
+
+def test_an_irregular_window_is_pooled_through_its_operator_as_fit_window_fits_it(irregular_demo_windows):
+    # an independent computation: fit_window's own optimiser, which fits such a window through the interpolation of
+    # its fixes (observation "irregular"); a pool of that one window maximises the same likelihood
+    spec = FitSpec(models=("matern+inertial",), inertial_frequency="free")
+    w = irregular_demo_windows[0]
+    single = fit_window(w, spec)[0]
+    assert single.observation == "irregular" and single.status == "ok", single.message
+    pooled = pool_fit([w], spec, share="all")
+    assert pooled.status == "ok", pooled.message
+    assert pooled.loglik == pytest.approx(single.loglik, abs=1e-3)
+    # the pool's model-based errors (128 drifters simulated from the fit through the window's fixes) against
+    # fit_window's sandwich, whose score covariance for such a window is in closed form
+    # (fitting/uncertainty.py::irregular_periodogram_covariance): equal up to the simulation's error (about 6 %)
+    sandwich = fit_window(w, spec.replace(stderr="sandwich"))[0]
+    assert pooled.stderr_method == "model"
+    for k in ("matern_alpha", "matern_damping", "inertial_damping"):
+        assert pooled.params[k] == pytest.approx(single.params[k], abs=0.02 * single.stderr[k])
+        assert 0.75 < pooled.stderr[k] / sandwich.stderr[k] < 1.33, (k, pooled.stderr[k], sandwich.stderr[k])
+    # the per-fix errors' fitted factor is the window's own column, not a position noise in metres
+    shape_only = pool_fit([w], spec)
+    assert "position_error_scale" in shape_only.windows and "position_noise" not in shape_only.windows
+    assert shape_only.windows["position_error_scale"].iloc[0] == pytest.approx(
+        single.params["position_error_scale"], rel=0.05)
+
+
+def test_drifters_of_irregular_fixes_are_simulated_with_their_expected_periodogram(irregular_demo_windows):
+    # the pooled fit's simulation of a drifter's windows of irregular fixes (velocity on a fine grid, integrated,
+    # read at the fixes with their errors, interpolated and differenced) against the kernel integral of the expected
+    # periodogram (spectral/irregular.py), a computation that shares nothing with it but the fixes' weights
+    from driftspec.analysis.regional.pooled import _irregular_draws, _Pool, _scoring
+
+    spec = FitSpec(models=("matern+inertial",), inertial_frequency="free")
+    track = irregular_demo_windows[0].track_id
+    mine = [w for w in irregular_demo_windows if w.track_id == track][:3]  # overlapping windows of one drifter
+    items = [prepare_pooled_window(w, spec) for w in mine]
+    assert all(it.fix_times_days is not None for it in items)
+    pool = _Pool(items, "shape")
+    s, a = _scoring(pool)[:2]  # at the pooled fit, where the fit simulates (at the bounds' corner of the start
+    thetas = pool.thetas(s, a)  # values, a flat spectrum, both simulators put 3 % more power than the kernel's tail)
+    reps = 1600
+    draws = list(_irregular_draws(pool, list(range(len(items))), s, a, reps, np.random.default_rng(3)))
+    for it, theta, pg in zip(items, thetas, draws):
+        p = it.problem
+        expected = p.family.expected_in_band(theta, p.prep, p.context, jacobian=False)
+        ratio = pg / expected
+        blocks = np.array_split(np.argsort(p.prep.freq_cpd[p.prep.band_index]), 12)  # adjacent ordinates
+        values = np.stack([ratio[:, b].mean(axis=1) for b in blocks], axis=1)
+        mean = values.mean(axis=0)
+        se = values.std(axis=0, ddof=1) / np.sqrt(reps)
+        assert np.all(np.abs(mean - 1) < 4.0 * se), (np.max(np.abs(mean - 1) / se), mean)

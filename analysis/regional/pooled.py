@@ -6,7 +6,9 @@ The debiased Whittle negative log-likelihood of a window is ``L_w = sum_k log E_
 band (:mod:`driftspec.analysis.spectral.likelihood`). A region's windows are fitted together by minimising the
 composite likelihood ``L = sum_w L_w``: every window keeps its own periodogram, band, observation model and
 latitude, resolved from the :class:`~driftspec.analysis.fitting.spec.FitSpec` exactly as
-:func:`~driftspec.analysis.fitting.core.fit_window` resolves them. Its parameters are
+:func:`~driftspec.analysis.fitting.core.fit_window` resolves them (a window of irregular fixes is seen through the
+interpolation of its own fixes, :class:`~driftspec.analysis.spectral.irregular.IrregularlyObserved`, and its noise
+level is the factor ``position_error_scale`` on its given fix errors where it has them). Its parameters are
 
 * **shared** (one value for the region): the shape of the spectrum -- Matérn slope ``matern_alpha`` and damping
   ``matern_damping``, inertial damping ``inertial_damping`` and the inertial frequency *through its latitude
@@ -14,8 +16,9 @@ latitude, resolved from the :class:`~driftspec.analysis.fitting.spec.FitSpec` ex
   frequency, positive = counterclockwise) and window ``w`` oscillates at ``f_local(lat_w) + offset``. With the
   latitude-following family (``inertial_frequency="follow-latitude"``) the frequency is not a parameter at all;
 * **nuisance** (one value per window, by default): the amplitudes -- ``matern_variance``, ``inertial_variance``
-  and ``position_noise``. ``share="all"`` shares those too. A parameter held fixed in some windows only (the
-  position noise with ``position_noise="input"``) is always per window.
+  and ``position_noise`` (or ``position_error_scale``; a slot that is one in some windows and the other in others
+  is per window even with ``share="all"``). ``share="all"`` shares those too. A parameter held fixed in some
+  windows only (the position noise with ``position_noise="input"``) is always per window.
 
 The optimiser
 -------------
@@ -51,7 +54,9 @@ Model-based score covariance (few drifters, and the heterogeneity check): each d
 over its whole span by circulant embedding (C. R. Dietrich, G. N. Newsam, SIAM J. Sci. Comput. 18, 1088-1107,
 1997), each window taking its samples, mask, taper and amplitudes, so the covariance of the windows' efficient
 scores includes their overlap, gaps and the leakage that correlates periodogram ordinates of steep spectra (which
-makes the inverse Fisher information too small: "The debiased Whittle likelihood", section 4).
+makes the inverse Fisher information too small: "The debiased Whittle likelihood", section 4). A drifter's windows of
+irregular fixes are simulated as the data were made: the velocity on a fine grid integrated to positions, read at
+the fixes with their errors, interpolated and differenced by each window's own operator (:func:`_irregular_draws`).
 
 Heterogeneity check
 -------------------
@@ -112,10 +117,11 @@ import scipy.stats
 import xarray as xr
 
 from ..conventions import SECONDS_PER_DAY
-from ..fitting.core import MIN_VALID_SAMPLES
+from ..fitting.core import MIN_VALID_SAMPLES, _irregularly_observed
 from ..fitting.estimators import Problem
 from ..fitting.spec import FitSpec
 from ..models import FitContext
+from ..spectral.irregular import ERROR_SCALE, IrregularlyObserved
 from ..spectral.likelihood import expected_in_band, prepare_window
 from .maps import add_anisotropy_variables, anisotropy_summary, cf_grid
 
@@ -141,7 +147,12 @@ def n_simulations(n_windows: int, n_tracks: int = 1) -> int:
 
 
 def _canonical(name: str) -> str:
-    return OFFSET if name in ("inertial_frequency", OFFSET) else name
+    """The pool's name of a family parameter: a constant inertial frequency is shared as its offset from the local
+    one, and a factor on given per-fix errors fills the position-noise slot of a window of irregular fixes (both
+    set the level of the noise floor, and its ``E[I]`` goes as the parameter squared)."""
+    if name in ("inertial_frequency", OFFSET):
+        return OFFSET
+    return "position_noise" if name == ERROR_SCALE.name else name
 
 
 def _default_model(spec: FitSpec):
@@ -152,11 +163,13 @@ def _default_model(spec: FitSpec):
     return models[0]
 
 
-def _family(spec: FitSpec, model, follow, cache: dict):
-    """``spec.family(model)``, with the inertial part following the latitude where the window's plan says so."""
-    if follow not in cache:
-        cache[follow] = spec.family(model) if follow is None else spec.family(model, follow)
-    return cache[follow]
+def _family(spec: FitSpec, model, follow, observation, cache: dict):
+    """``spec.family(model)`` seen through the window's observation model, with the inertial part following the
+    latitude where the window's plan says so (for irregular fixes the ocean family, which the window's operator
+    observes)."""
+    if (follow, observation) not in cache:
+        cache[follow, observation] = spec.family(model, follow, observation)
+    return cache[follow, observation]
 
 
 # ---------------------------------------------------------------------------------------------- preparation
@@ -170,6 +183,9 @@ class PooledWindow:
     start: pd.Timestamp | None
     lat: float
     lon: float
+    #: times (days after the window's start) of the fixes a window of irregular fixes interpolates (those its
+    #: operator uses); None for windows on a regular grid
+    fix_times_days: np.ndarray | None = None
 
 
 def prepare_pooled_window(window, spec: FitSpec, model=None, families: dict | None = None) -> PooledWindow | str:
@@ -178,8 +194,12 @@ def prepare_pooled_window(window, spec: FitSpec, model=None, families: dict | No
     ``families`` caches the model families between windows."""
     model = _default_model(spec) if model is None else model
     fix_days = window.fix_interval_s / SECONDS_PER_DAY if window.fix_interval_s else None
-    plan = spec.resolve(window.dt_seconds / SECONDS_PER_DAY, window.latitude, fix_days, window.position_error_m)
-    family = _family(spec, model, getattr(plan, "follow_latitude", None), {} if families is None else families)
+    plan = spec.resolve(window.dt_seconds / SECONDS_PER_DAY, window.latitude, fix_days, window.position_error_m,
+                        irregular=getattr(window, "irregular", False),
+                        fix_times_days=getattr(window, "fix_times_days", None),
+                        fix_error_m=getattr(window, "fix_error_m", None))
+    family = _family(spec, model, getattr(plan, "follow_latitude", None), plan.observation,
+                     {} if families is None else families)
     z = np.asarray(window.z)
     lat_series = plan.latitude_series
     if lat_series is None and family.modulated and plan.latitude is not None:
@@ -199,12 +219,21 @@ def prepare_pooled_window(window, spec: FitSpec, model=None, families: dict | No
                               modulated=family.modulated, latitude_series=lat_series)
     except ValueError as exc:
         return str(exc)
+    if plan.observation == "irregular":
+        try:
+            family = _irregularly_observed(family, prep, plan, context, spec.operator)
+        except ValueError as exc:
+            return f"irregular observation: {exc}"
+        fixed = {k: v for k, v in fixed.items() if k in family.names}
     if prep.band.sum() < max(2 * (len(family.names) - len(fixed)) + 2, 8):
         return f"{int(prep.band.sum())} frequencies in the fitted band"
     theta0 = family.initial_guess(prep.freq_cpd[prep.band], prep.periodogram[prep.band], context)
     problem = Problem.build(family, prep, context, theta0, fixed)
     start = getattr(window, "start", None)
-    return PooledWindow(problem, str(window.track_id), start, float(window.lat), float(window.lon))
+    fix_times = None
+    if isinstance(family, IrregularlyObserved):
+        fix_times = np.asarray(plan.fix_times_days, float)[family.operator.fix_index]
+    return PooledWindow(problem, str(window.track_id), start, float(window.lat), float(window.lon), fix_times)
 
 
 # ---------------------------------------------------------------------------------------------- result
@@ -299,7 +328,11 @@ class _Pool:
         self.perm = np.array([[c.index(n) for n in names] for c in canon], int)  # global -> family index
         free = np.array([it.problem.free[pm] for it, pm in zip(items, self.perm)])  # (W, K) global order
         always, never = free.all(axis=0), ~free.any(axis=0)
-        self.shared = [k for k, n in enumerate(names) if always[k] and (share == "all" or n not in NUISANCE)]
+        # a slot that is a position noise (m) in some windows and a factor on given errors in others: per window
+        mixed = [len({it.problem.family.names[pm[k]] for it, pm in zip(items, self.perm)}) > 1 and n != OFFSET
+                 for k, n in enumerate(names)]
+        self.shared = [k for k, n in enumerate(names)
+                       if always[k] and (share == "all" or n not in NUISANCE) and not mixed[k]]
         self.nuis = [k for k in range(len(names)) if k not in self.shared and not never[k]]
         self.fixed_a = ~free[:, self.nuis]  # (W, na): nuisance held fixed in a window
         fam0 = items[0].problem.family
@@ -555,7 +588,7 @@ def _circulant_draws(acov, n, rng, size):
 
 
 #: amplitudes re-estimated in each simulated window, and the power of the parameter ``E[I]`` is proportional to
-_AMPLITUDE_POWER = {"matern_variance": 1.0, "inertial_variance": 1.0, "position_noise": 2.0}
+_AMPLITUDE_POWER = {"matern_variance": 1.0, "inertial_variance": 1.0, "position_noise": 2.0}  # (pool names)
 #: largest standard error (of the log amplitude, from the window's Fisher information) of an amplitude re-estimated
 #: in simulated windows: a poorly determined one can swing by large factors and scale its component's scores with it
 AMPLITUDE_SE_MAX = 0.25
@@ -627,6 +660,158 @@ def _reprofiled_scores(pg, e, d_e, amap, n_iter: int = 2):
     return out
 
 
+def _periodograms(z, prep) -> np.ndarray:
+    """Periodograms over the fitted band of simulated windows ``z`` (n_sim, n), prepared as the data were: masked,
+    demeaned over the valid samples, tapered (``z`` is overwritten)."""
+    valid = prep.valid
+    z *= valid
+    z -= z.sum(axis=1, keepdims=True) / np.float32(max(prep.n_valid, 1))
+    z *= (prep.taper * valid).astype(np.float32)
+    return prep.dt_days * np.abs(scipy.fft.fft(z, axis=-1, overwrite_x=True)[:, prep.band_index]) ** 2
+
+
+def _window_offsets_days(items) -> np.ndarray:
+    """Start of each window (days after the first), or end to end when a start is unknown (no overlap)."""
+    starts = [it.start for it in items]
+    if any(t is None for t in starts):
+        return np.cumsum([0.0] + [it.problem.prep.n * it.problem.prep.dt_days for it in items[:-1]])
+    t0 = min(pd.Timestamp(t).value for t in starts)
+    return np.array([(pd.Timestamp(t).value - t0) / (SECONDS_PER_DAY * 1e9) for t in starts])
+
+
+def _regular_draws(pool: _Pool, ws, s, a, n_sim, rng):
+    """Simulated periodograms of one drifter's windows on a regular grid (one (n_sim, band) array per window, in
+    order): the drifter simulated once over its whole span, so that overlapping windows share samples."""
+    from ..models.inertial import modulation_sequence
+    from ..simulation.simulate import embedding_autocovariance
+
+    items = [pool.items[w] for w in ws]
+    dt_days = items[0].problem.prep.dt_days
+    starts = [it.start for it in items]
+    if any(t is None for t in starts) or any(abs(it.problem.prep.dt_days - dt_days) > 1e-9 * dt_days
+                                             for it in items):
+        offsets = np.cumsum([0] + [it.problem.prep.n for it in items[:-1]])  # unknown times: no overlap
+    else:
+        t0 = min(pd.Timestamp(t).value for t in starts)
+        step_ns = dt_days * SECONDS_PER_DAY * 1e9
+        offsets = np.array([round((pd.Timestamp(t).value - t0) / step_ns) for t in starts])
+    span = int(max(o + it.problem.prep.n for o, it in zip(offsets, items)))
+    ref = items[0].problem
+    theta_ref = ref.theta(pool.full_x(ws[0], s, a[ws[0]])[ref.free])
+    lat = None
+    comps = []
+    for comp, sl in ref.family.components():
+        r = embedding_autocovariance(
+            lambda lag, c=comp, q=theta_ref[sl], ctx=ref.context: c.autocovariance(q, lag, ctx), span, dt_days,
+            max_factor=2)
+        x = _circulant_draws(r, span, rng, n_sim)
+        if comp.modulated:
+            if lat is None:
+                lat = np.full(span, np.nan)
+                for o, it in zip(offsets, items):
+                    series = it.problem.context.latitude_series
+                    lat[o:o + it.problem.prep.n] = it.lat if series is None else series
+            x = x * modulation_sequence(lat, dt_days)
+        v_ref = float(np.real(comp.autocovariance(theta_ref[sl], np.zeros(1), ref.context))[0])
+        comps.append((comp, sl, x, v_ref))
+    for w, o, it in zip(ws, offsets, items):
+        p = it.problem
+        z = np.zeros((n_sim, p.prep.n), np.complex64)
+        for (_, _, x, v_ref), v_w in zip(comps, _component_variances(pool, w, s, a, p.family)):
+            if v_ref > 0:
+                z += np.float32(np.sqrt(max(v_w, 0.0) / v_ref)) * x[:, o:o + p.prep.n]
+        yield _periodograms(z, p.prep)
+
+
+def _component_variances(pool: _Pool, w, s, a, family) -> list[float]:
+    """Variance (lag-0 autocovariance) of each component of ``family`` (window ``w``'s own, whose components are
+    those of the drifter's reference window: the same model) at the window's fitted parameters."""
+    p = pool.items[w].problem
+    theta_w = p.theta(pool.full_x(w, s, a[w])[p.free])
+    return [float(np.real(comp.autocovariance(theta_w[sl], np.zeros(1), p.context))[0])
+            for comp, sl in family.components()]
+
+
+def _integrate(v, step_days) -> np.ndarray:
+    """Positions (m) from velocities ``v`` (n_sim, n; m/s) every ``step_days``, by the trapezoid rule, summed in
+    double precision (the constant of integration is free: each row of a window's operator sums to zero)."""
+    pos = np.zeros(v.shape, complex)
+    np.cumsum(0.5 * (v[:, 1:] + v[:, :-1]), axis=1, dtype=complex, out=pos[:, 1:])
+    pos *= step_days * SECONDS_PER_DAY
+    return pos
+
+
+def _irregular_draws(pool: _Pool, ws, s, a, n_sim, rng):
+    """Simulated periodograms of one drifter's windows of irregular fixes (one (n_sim, band) array per window, in
+    order), made as the data were and as the single-window sandwich makes them
+    (:func:`~driftspec.analysis.fitting.uncertainty.irregular_velocities`), but once over the drifter's whole span so
+    that overlapping windows share fixes: the ocean velocity on a grid three times finer than the windows' (damped
+    oscillations exactly by their recursion, the rest by circulant embedding), integrated to positions, read at each
+    window's fix times, plus white position noise of the window's fitted level (or its given per-fix errors times
+    the fitted factor), then each window's interpolation and difference operator ``W`` (the sparse matrix its
+    expected periodogram comes from), mask, demeaning and taper. An inertial oscillation turns at each window's mean
+    inertial frequency plus the shared offset, as the window's operator models it; each component is rescaled to
+    each window's amplitude."""
+    from ..fitting.uncertainty import _FINE_STEPS, _OSCILLATIONS, EMBEDDING_MAX_FACTOR, _fix_error_sd, ou_series
+    from ..models.inertial import modulation_sequence
+    from ..simulation.simulate import embedding_autocovariance
+
+    items = [pool.items[w] for w in ws]
+    dt_days = items[0].problem.prep.dt_days
+    offsets = _window_offsets_days(items)
+    fix_t = [o + it.fix_times_days for o, it in zip(offsets, items)]
+    lo = min(t.min() for t in fix_t) - dt_days
+    step = dt_days / _FINE_STEPS
+    n_fine = int(np.ceil((max(t.max() for t in fix_t) + dt_days - lo) / step)) + 2
+    ref = items[0].problem
+    theta_ref = ref.theta(pool.full_x(ws[0], s, a[ws[0]])[ref.free])
+    # an oscillation is drawn once, demodulated (at the shared offset from the local inertial frequency), and each
+    # window turns it at its own local inertial frequency before integrating: each window sees its own constant-
+    # frequency peak, as its operator models it, and overlapping windows share the oscillation's random phase and
+    # amplitude (a constant frequency is the window's local one plus the shared offset, as the pool shares it)
+    fc = [it.problem.context.inertial_frequency_cpd for it in items]
+    turned = all(f is not None and np.isfinite(f) for f in fc)
+    t_fine = lo + step * np.arange(n_fine)
+    comps = []  # (positions or None, demodulated velocity or None, variance at the reference)
+    for comp, sl in ref.family.base.components():
+        q = theta_ref[sl]
+        v_ref = float(np.real(comp.autocovariance(q, np.zeros(1), ref.context))[0])
+        if isinstance(comp, _OSCILLATIONS):  # exactly by its recursion (no embedding to outgrow)
+            var, f0, gamma = q
+            if turned:
+                offset = f0 if comp.modulated else f0 - fc[0]
+                comps.append((None, ou_series(var, 2j * np.pi * offset - gamma, n_fine, step, rng, n_sim), v_ref))
+                continue
+            x = ou_series(var, 2j * np.pi * f0 - gamma, n_fine, step, rng, n_sim)
+        else:
+            r = embedding_autocovariance(lambda lag, c=comp, q=q, ctx=ref.context: c.autocovariance(q, lag, ctx),
+                                         n_fine, step, max_factor=EMBEDDING_MAX_FACTOR)
+            x = _circulant_draws(r, n_fine, rng, n_sim)
+            if comp.modulated:
+                x = x * modulation_sequence(np.full(n_fine, items[0].lat), step)
+        comps.append((_integrate(x, step), None, v_ref))
+    for w, it, t, f_w in zip(ws, items, fix_t, fc):
+        p = it.problem
+        fam = p.family
+        u = (t - lo) / step
+        k = np.clip(np.floor(u).astype(int), 0, n_fine - 2)
+        frac = u - k
+        k0, k1 = int(k.min()), int(k.max()) + 2  # the window's stretch of the fine grid
+        x_fix = np.zeros((n_sim, t.size), complex)
+        for (pos, demod, v_ref), v_w in zip(comps, _component_variances(pool, w, s, a, fam.base)):
+            if v_ref <= 0:
+                continue
+            if pos is None:  # turned at this window's inertial frequency, then integrated over its stretch
+                pos = np.zeros((n_sim, n_fine), complex)
+                pos[:, k0:k1] = _integrate(demod[:, k0:k1] * np.exp(2j * np.pi * f_w * (t_fine[k0:k1] - lo)), step)
+            x_fix += np.sqrt(max(v_w, 0.0) / v_ref) * (pos[:, k] * (1 - frac) + pos[:, k + 1] * frac)
+        theta_w = p.theta(pool.full_x(w, s, a[w])[p.free])
+        sigma = _fix_error_sd(fam, theta_w[len(fam.base.parameters):], t.size)
+        x_fix += sigma * (rng.standard_normal(x_fix.shape) + 1j * rng.standard_normal(x_fix.shape))
+        z = np.ascontiguousarray((fam.operator.weights @ x_fix.T).T / SECONDS_PER_DAY, np.complex64)
+        yield _periodograms(z, p.prep)
+
+
 def _simulated_scores(pool: _Pool, s, a, st, dt, n_sim: int | None = None, act=None) -> dict:
     """The efficient scores of every window over ``n_sim`` drifters simulated from the fit: ``{track: (window
     indices, scores (n_sim, n_windows, p))}``.
@@ -638,10 +823,11 @@ def _simulated_scores(pool: _Pool, s, a, st, dt, n_sim: int | None = None, act=N
     (:func:`_reprofiled_scores`), so the scores vary as the data's efficient scores at the estimate do (the
     first-order efficient score at the fitted ``E[I]`` overstates the spread of windows whose amplitudes are poorly
     determined); otherwise, or where the amplitudes are not of that form, the first-order score.
-    """
-    from ..models.inertial import modulation_sequence
-    from ..simulation.simulate import embedding_autocovariance
 
+    A drifter's windows of irregular fixes are simulated as such (:func:`_irregular_draws`), apart from its windows on
+    a regular grid (:func:`_regular_draws`): where a drifter has both, the two kinds are drawn independently, so the
+    overlap between a window of each kind is not in the scores' covariance.
+    """
     n_sim = N_SIM if n_sim is None else n_sim
     layouts = {}  # windows whose amplitudes are re-estimated, by band size and amplitude layout
     by_track = {}
@@ -650,61 +836,27 @@ def _simulated_scores(pool: _Pool, s, a, st, dt, n_sim: int | None = None, act=N
     out = {}
     for track, ws in by_track.items():
         items = [pool.items[w] for w in ws]
-        dt_days = items[0].problem.prep.dt_days
-        starts = [it.start for it in items]
-        if any(t is None for t in starts) or any(abs(it.problem.prep.dt_days - dt_days) > 1e-9 * dt_days
-                                                 for it in items):
-            offsets = np.cumsum([0] + [it.problem.prep.n for it in items[:-1]])  # unknown times: no overlap
-        else:
-            t0 = min(pd.Timestamp(t).value for t in starts)
-            step_ns = dt_days * SECONDS_PER_DAY * 1e9
-            offsets = np.array([round((pd.Timestamp(t).value - t0) / step_ns) for t in starts])
-        span = int(max(o + it.problem.prep.n for o, it in zip(offsets, items)))
-        ref = items[0].problem
-        theta_ref = ref.theta(pool.full_x(ws[0], s, a[ws[0]])[ref.free])
         rng = np.random.default_rng(zlib.crc32(b"".join(it.problem.prep.periodogram[:8].tobytes() for it in items)))
-        lat = None
-        comps = []
-        for comp, sl in ref.family.components():
-            r = embedding_autocovariance(
-                lambda lag, c=comp, q=theta_ref[sl], ctx=ref.context: c.autocovariance(q, lag, ctx), span, dt_days,
-                max_factor=2)
-            x = _circulant_draws(r, span, rng, n_sim)
-            if comp.modulated:
-                if lat is None:
-                    lat = np.full(span, np.nan)
-                    for o, it in zip(offsets, items):
-                        series = it.problem.context.latitude_series
-                        lat[o:o + it.problem.prep.n] = it.lat if series is None else series
-                x = x * modulation_sequence(lat, dt_days)
-            v_ref = float(np.real(comp.autocovariance(theta_ref[sl], np.zeros(1), ref.context))[0])
-            comps.append((comp, sl, x, v_ref))
+        regular = [i for i, it in enumerate(items) if it.fix_times_days is None]
+        irregular = [i for i, it in enumerate(items) if it.fix_times_days is not None]
         scores = np.zeros((n_sim, len(ws), dt[ws[0]].shape[0]))
-        for i, (w, o, it) in enumerate(zip(ws, offsets, items)):
-            p = it.problem
-            theta_w = p.theta(pool.full_x(w, s, a[w])[p.free])
-            z = np.zeros((n_sim, p.prep.n), np.complex64)
-            for comp, sl, x, v_ref in comps:
-                if v_ref > 0:
-                    v_w = float(np.real(comp.autocovariance(theta_w[sl], np.zeros(1), p.context))[0])
-                    z += np.float32(np.sqrt(max(v_w, 0.0) / v_ref)) * x[:, o:o + p.prep.n]
-            valid = p.prep.valid
-            z *= valid
-            z -= z.sum(axis=1, keepdims=True) / np.float32(max(p.prep.n_valid, 1))
-            z *= (p.prep.taper * valid).astype(np.float32)
-            pg = dt_days * np.abs(scipy.fft.fft(z, axis=-1, overwrite_x=True)[:, p.prep.band_index]) ** 2
-            amap = _amplitude_map(pool, w, *act) if act is not None else None
-            if amap is not None:  # only well-determined amplitudes are re-estimated (else first order)
-                try:
-                    cov = np.linalg.inv(st["C"][w][np.ix_(amap[0], amap[0])])
-                    amap = amap if np.all(np.diag(cov) <= AMPLITUDE_SE_MAX ** 2) else None
-                except np.linalg.LinAlgError:
-                    amap = None
-            if amap is None:
-                scores[:, i] = (1.0 - pg / st["e"][w]) @ dt[w].T
-            else:  # re-estimated below, for windows of one layout at once
-                key = (pg.shape[1], tuple(amap[0]), tuple(amap[1]), tuple(amap[2]))
-                layouts.setdefault(key, []).append((track, i, w, pg))
+        for part, draws in ((regular, _regular_draws), (irregular, _irregular_draws)):
+            if not part:
+                continue
+            for i, pg in zip(part, draws(pool, [ws[i] for i in part], s, a, n_sim, rng)):
+                w = ws[i]
+                amap = _amplitude_map(pool, w, *act) if act is not None else None
+                if amap is not None:  # only well-determined amplitudes are re-estimated (else first order)
+                    try:
+                        cov = np.linalg.inv(st["C"][w][np.ix_(amap[0], amap[0])])
+                        amap = amap if np.all(np.diag(cov) <= AMPLITUDE_SE_MAX ** 2) else None
+                    except np.linalg.LinAlgError:
+                        amap = None
+                if amap is None:
+                    scores[:, i] = (1.0 - pg / st["e"][w]) @ dt[w].T
+                else:  # re-estimated below, for windows of one layout at once
+                    key = (pg.shape[1], tuple(amap[0]), tuple(amap[1]), tuple(amap[2]))
+                    layouts.setdefault(key, []).append((track, i, w, pg))
         out[track] = (ws, scores)
     ns = len(pool.shared)
     for (_, nuis_pos, power, owner), group in layouts.items():
@@ -935,7 +1087,8 @@ def _finish(pool: _Pool, s, a, val, st, success, message, n_iter, name, share, s
         fc = it.problem.context.inertial_frequency_cpd
         row = {"track_id": it.track_id, "window_start": it.start, "lat": it.lat, "lon": it.lon,
                "loglik": -float(st["values"][w])}
-        row.update({pool.names[k]: float(theta[k]) for k in pool.nuis})
+        own = it.problem.family.names
+        row.update({own[pool.perm[w][k]]: float(theta[k]) for k in pool.nuis})  # the window's own names
         if OFFSET in pool.names and fc is not None:
             row["inertial_frequency"] = float(fc + theta[pool.names.index(OFFSET)]) if \
                 it.problem.family.names[pool.perm[w][pool.names.index(OFFSET)]] == OFFSET else \
