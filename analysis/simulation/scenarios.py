@@ -92,7 +92,7 @@ def _track(rng, days, lat0, lon0, u_mean, v_mean, theta):
 
 
 def generate_scenario(kind: str = "satellite", n_tracks: int = 8, days: float = 60.0, seed: int = 0,
-                      start="2031-01-01", sampling: str | None = None):
+                      start="2031-01-01", sampling: str | None = None, shape: dict | None = None):
     """Simulate one scenario (see the module docstring).
 
     Parameters
@@ -108,6 +108,9 @@ def generate_scenario(kind: str = "satellite", n_tracks: int = 8, days: float = 
         Time of the first track's start (UTC); later tracks start within ten days.
     sampling : {"satellite", "hourly"}, optional
         Default ``satellite`` for ``kind="satellite"``, ``hourly`` otherwise.
+    shape : dict, optional
+        Values that replace the drawn ones in every track (e.g. ``{"matern_alpha": 1.3}``: a spectral shape shared
+        by all tracks, for studies of pooled fits); the draws are made anyway, so the rest is unchanged.
 
     Returns
     -------
@@ -156,6 +159,11 @@ def generate_scenario(kind: str = "satellite", n_tracks: int = 8, days: float = 
         theta = {"matern_variance": rng.uniform(0.01, 0.03), "matern_alpha": rng.uniform(1.2, 1.5),
                  "matern_damping": rng.uniform(0.5, 1.5), "inertial_variance": inertial_var,
                  "inertial_damping": 0.2}
+        if shape:
+            unknown = set(shape) - set(theta)
+            if unknown:
+                raise ValueError(f"shape: unknown parameters {sorted(unknown)}; choose from {sorted(theta)}")
+            theta.update({k: float(v) for k, v in shape.items()})
         t, lat, lon = _track(rng, days, lat0, lon0, u_mean, v_mean, theta)
         if sampling == "satellite":
             tf = satellite_fix_times(rng, days)
