@@ -351,13 +351,15 @@ def test_an_irregular_window_is_pooled_through_its_operator_as_fit_window_fits_i
         single.params["position_error_scale"], rel=0.05)
 
 
-def test_drifters_of_irregular_fixes_are_simulated_with_their_expected_periodogram(irregular_demo_windows):
+@pytest.mark.parametrize("fixed", [(), (("inertial_frequency", -0.9),)], ids=["free", "fixed frequency"])
+def test_drifters_of_irregular_fixes_are_simulated_with_their_expected_periodogram(irregular_demo_windows, fixed):
     # the pooled fit's simulation of a drifter's windows of irregular fixes (velocity on a fine grid, integrated,
     # read at the fixes with their errors, interpolated and differenced) against the kernel integral of the expected
-    # periodogram (spectral/irregular.py), a computation that shares nothing with it but the fixes' weights
+    # periodogram (spectral/irregular.py), a computation that shares nothing with it but the fixes' weights; with the
+    # inertial frequency free (each window's local one plus a shared offset) and held at one value in every window
     from driftspec.analysis.regional.pooled import _irregular_draws, _Pool, _scoring
 
-    spec = FitSpec(models=("matern+inertial",), inertial_frequency="free")
+    spec = FitSpec(models=("matern+inertial",), inertial_frequency="free", fixed=fixed)
     track = irregular_demo_windows[0].track_id
     mine = [w for w in irregular_demo_windows if w.track_id == track][:3]  # overlapping windows of one drifter
     items = [prepare_pooled_window(w, spec) for w in mine]
@@ -376,3 +378,29 @@ def test_drifters_of_irregular_fixes_are_simulated_with_their_expected_periodogr
         mean = values.mean(axis=0)
         se = values.std(axis=0, ddof=1) / np.sqrt(reps)
         assert np.all(np.abs(mean - 1) < 4.0 * se), (np.max(np.abs(mean - 1) / se), mean)
+
+
+def test_overlapping_windows_of_irregular_fixes_share_their_simulated_fixes(irregular_demo_windows):
+    # in the data, two overlapping windows of one drifter interpolate the same fixes, so their velocities agree where
+    # both are valid; the simulated drifters must too (one path, one error per fix), or the score covariance of
+    # overlapping windows comes out too small. A Matérn model with every parameter shared: nothing differs between
+    # the windows but their fixes and masks.
+    from driftspec.analysis.regional.pooled import _irregular_velocities, _Pool, _scoring
+
+    spec = FitSpec(models=("matern",))
+    by_track = {}
+    for w in irregular_demo_windows:
+        by_track.setdefault(w.track_id, []).append(w)
+    first, second = next(ws[:2] for ws in by_track.values() if len(ws) >= 2)
+    shift = round((second.start - first.start).total_seconds() / first.dt_seconds)
+    n = first.z.size
+    assert 0 < shift < n and second.z.size == n
+    items = [prepare_pooled_window(w, spec) for w in (first, second)]
+    pool = _Pool(items, "all")
+    s, a = _scoring(pool)[:2]
+    z0, z1 = _irregular_velocities(pool, [0, 1], s, a, 32, np.random.default_rng(5))
+    both = items[0].problem.prep.valid[shift:] & items[1].problem.prep.valid[:n - shift]
+    assert both.sum() > 100
+    assert np.allclose(first.z[shift:][both], second.z[:n - shift][both], rtol=1e-9)  # the data
+    np.testing.assert_allclose(z0[:, shift:][:, both], z1[:, :n - shift][:, both], rtol=2e-4, atol=1e-6)
+    assert np.abs(z0[:, shift:][:, both]).mean() > 0.01  # m/s: a real signal, not zeros

@@ -346,7 +346,9 @@ class _Pool:
                 if fam_names[self.perm[w][k]] == "inertial_frequency":
                     fc = it.problem.context.inertial_frequency_cpd
                     self.shift[w, j] = fc if fc is not None and np.isfinite(fc) else 0.0
-        self.shared_names = [names[k] for k in self.shared]
+        # reported under the windows' own name (a shared factor on given fix errors is not a noise in metres); the
+        # inertial frequency under the pool's (the offset)
+        self.shared_names = [names[k] if names[k] == OFFSET else fam0.names[self.perm[0][k]] for k in self.shared]
         lo = np.array([it.problem.x_lo[pm] for it, pm in zip(items, self.perm)])
         hi = np.array([it.problem.x_hi[pm] for it, pm in zip(items, self.perm)])
         self.s_lo = (lo[:, self.shared] - self.shift).max(axis=0)
@@ -671,10 +673,18 @@ def _periodograms(z, prep) -> np.ndarray:
 
 
 def _window_offsets_days(items) -> np.ndarray:
-    """Start of each window (days after the first), or end to end when a start is unknown (no overlap)."""
+    """Start of each window (days after the first); where a start is unknown, one after another, each past the last
+    fix of the one before (no overlap)."""
     starts = [it.start for it in items]
     if any(t is None for t in starts):
-        return np.cumsum([0.0] + [it.problem.prep.n * it.problem.prep.dt_days for it in items[:-1]])
+        out, t = [], 0.0
+        for it in items:
+            p = it.problem.prep
+            first, last = (0.0, p.n * p.dt_days) if it.fix_times_days is None else \
+                (min(0.0, float(it.fix_times_days.min())), max(p.n * p.dt_days, float(it.fix_times_days.max())))
+            out.append(t - first)
+            t += last - first + p.dt_days
+        return np.array(out)
     t0 = min(pd.Timestamp(t).value for t in starts)
     return np.array([(pd.Timestamp(t).value - t0) / (SECONDS_PER_DAY * 1e9) for t in starts])
 
@@ -743,15 +753,25 @@ def _integrate(v, step_days) -> np.ndarray:
 
 def _irregular_draws(pool: _Pool, ws, s, a, n_sim, rng):
     """Simulated periodograms of one drifter's windows of irregular fixes (one (n_sim, band) array per window, in
-    order), made as the data were and as the single-window sandwich makes them
+    order): :func:`_irregular_velocities`, prepared as the data were."""
+    for w, z in zip(ws, _irregular_velocities(pool, ws, s, a, n_sim, rng)):
+        yield _periodograms(z, pool.items[w].problem.prep)
+
+
+def _irregular_velocities(pool: _Pool, ws, s, a, n_sim, rng):
+    """Simulated velocity windows (n_sim, n; m/s, zero where invalid) of one drifter's windows of irregular fixes, in
+    order, made as the data were and as the single-window sandwich makes them
     (:func:`~driftspec.analysis.fitting.uncertainty.irregular_velocities`), but once over the drifter's whole span so
-    that overlapping windows share fixes: the ocean velocity on a grid three times finer than the windows' (damped
-    oscillations exactly by their recursion, the rest by circulant embedding), integrated to positions, read at each
-    window's fix times, plus white position noise of the window's fitted level (or its given per-fix errors times
-    the fitted factor), then each window's interpolation and difference operator ``W`` (the sparse matrix its
-    expected periodogram comes from), mask, demeaning and taper. An inertial oscillation turns at each window's mean
-    inertial frequency plus the shared offset, as the window's operator models it; each component is rescaled to
-    each window's amplitude."""
+    that overlapping windows share their fixes: the ocean velocity on a grid three times finer than the windows'
+    (damped oscillations exactly by their recursion, the rest by circulant embedding), integrated to positions, read
+    at each window's fix times, plus one position error per fix (the same in every window that uses the fix, scaled
+    to each window's fitted noise level or factor on the given errors), then each window's interpolation and
+    difference operator ``W`` (the sparse matrix its expected periodogram comes from).
+
+    An inertial oscillation is drawn once, without rotation, and each window turns it at its own fitted frequency
+    (its constant frequency, or its local inertial frequency plus the offset) before integrating: each window sees
+    the constant-frequency peak its operator models, and overlapping windows share the oscillation's random
+    amplitude and phase. Each component is rescaled to each window's amplitude."""
     from ..fitting.uncertainty import _FINE_STEPS, _OSCILLATIONS, EMBEDDING_MAX_FACTOR, _fix_error_sd, ou_series
     from ..models.inertial import modulation_sequence
     from ..simulation.simulate import embedding_autocovariance
@@ -763,53 +783,50 @@ def _irregular_draws(pool: _Pool, ws, s, a, n_sim, rng):
     lo = min(t.min() for t in fix_t) - dt_days
     step = dt_days / _FINE_STEPS
     n_fine = int(np.ceil((max(t.max() for t in fix_t) + dt_days - lo) / step)) + 2
+    t_fine = lo + step * np.arange(n_fine)
     ref = items[0].problem
     theta_ref = ref.theta(pool.full_x(ws[0], s, a[ws[0]])[ref.free])
-    # an oscillation is drawn once, demodulated (at the shared offset from the local inertial frequency), and each
-    # window turns it at its own local inertial frequency before integrating: each window sees its own constant-
-    # frequency peak, as its operator models it, and overlapping windows share the oscillation's random phase and
-    # amplitude (a constant frequency is the window's local one plus the shared offset, as the pool shares it)
-    fc = [it.problem.context.inertial_frequency_cpd for it in items]
-    turned = all(f is not None and np.isfinite(f) for f in fc)
-    t_fine = lo + step * np.arange(n_fine)
-    comps = []  # (positions or None, demodulated velocity or None, variance at the reference)
+    comps = []  # (positions, or the unrotated oscillation to turn per window; variance at the reference)
     for comp, sl in ref.family.base.components():
         q = theta_ref[sl]
         v_ref = float(np.real(comp.autocovariance(q, np.zeros(1), ref.context))[0])
         if isinstance(comp, _OSCILLATIONS):  # exactly by its recursion (no embedding to outgrow)
-            var, f0, gamma = q
-            if turned:
-                offset = f0 if comp.modulated else f0 - fc[0]
-                comps.append((None, ou_series(var, 2j * np.pi * offset - gamma, n_fine, step, rng, n_sim), v_ref))
-                continue
-            x = ou_series(var, 2j * np.pi * f0 - gamma, n_fine, step, rng, n_sim)
-        else:
-            r = embedding_autocovariance(lambda lag, c=comp, q=q, ctx=ref.context: c.autocovariance(q, lag, ctx),
-                                         n_fine, step, max_factor=EMBEDDING_MAX_FACTOR)
-            x = _circulant_draws(r, n_fine, rng, n_sim)
-            if comp.modulated:
-                x = x * modulation_sequence(np.full(n_fine, items[0].lat), step)
+            comps.append((None, ou_series(q[0], -q[2] + 0j, n_fine, step, rng, n_sim), v_ref))
+            continue
+        r = embedding_autocovariance(lambda lag, c=comp, q=q, ctx=ref.context: c.autocovariance(q, lag, ctx),
+                                     n_fine, step, max_factor=EMBEDDING_MAX_FACTOR)
+        x = _circulant_draws(r, n_fine, rng, n_sim)
+        if comp.modulated:
+            x = x * modulation_sequence(np.full(n_fine, items[0].lat), step)
         comps.append((_integrate(x, step), None, v_ref))
-    for w, it, t, f_w in zip(ws, items, fix_t, fc):
+    # one standard complex normal per distinct fix (times to the second), shared by the windows that use it
+    keys = [np.round(t * SECONDS_PER_DAY).astype(np.int64) for t in fix_t]
+    distinct, where = np.unique(np.concatenate(keys), return_inverse=True)
+    eps = rng.standard_normal((n_sim, distinct.size)) + 1j * rng.standard_normal((n_sim, distinct.size))
+    bounds = np.cumsum([0] + [k.size for k in keys])
+    for j, (w, it, t) in enumerate(zip(ws, items, fix_t)):
         p = it.problem
         fam = p.family
+        theta_w = p.theta(pool.full_x(w, s, a[w])[p.free])
         u = (t - lo) / step
         k = np.clip(np.floor(u).astype(int), 0, n_fine - 2)
         frac = u - k
         k0, k1 = int(k.min()), int(k.max()) + 2  # the window's stretch of the fine grid
         x_fix = np.zeros((n_sim, t.size), complex)
-        for (pos, demod, v_ref), v_w in zip(comps, _component_variances(pool, w, s, a, fam.base)):
+        own = fam.base.components()
+        for (pos, unrotated, v_ref), v_w, (comp, sl) in zip(comps, _component_variances(pool, w, s, a, fam.base), own):
             if v_ref <= 0:
                 continue
-            if pos is None:  # turned at this window's inertial frequency, then integrated over its stretch
+            if pos is None:  # turned at this window's own frequency, then integrated over its stretch
+                f_w = float(theta_w[sl][1])
+                if comp.modulated:
+                    f_w += p.context.inertial_frequency_cpd or 0.0
                 pos = np.zeros((n_sim, n_fine), complex)
-                pos[:, k0:k1] = _integrate(demod[:, k0:k1] * np.exp(2j * np.pi * f_w * (t_fine[k0:k1] - lo)), step)
+                pos[:, k0:k1] = _integrate(unrotated[:, k0:k1] * np.exp(2j * np.pi * f_w * (t_fine[k0:k1] - lo)), step)
             x_fix += np.sqrt(max(v_w, 0.0) / v_ref) * (pos[:, k] * (1 - frac) + pos[:, k + 1] * frac)
-        theta_w = p.theta(pool.full_x(w, s, a[w])[p.free])
         sigma = _fix_error_sd(fam, theta_w[len(fam.base.parameters):], t.size)
-        x_fix += sigma * (rng.standard_normal(x_fix.shape) + 1j * rng.standard_normal(x_fix.shape))
-        z = np.ascontiguousarray((fam.operator.weights @ x_fix.T).T / SECONDS_PER_DAY, np.complex64)
-        yield _periodograms(z, p.prep)
+        x_fix += sigma * eps[:, where[bounds[j]:bounds[j + 1]]]
+        yield np.ascontiguousarray((fam.operator.weights @ x_fix.T).T / SECONDS_PER_DAY, np.complex64)
 
 
 def _simulated_scores(pool: _Pool, s, a, st, dt, n_sim: int | None = None, act=None) -> dict:
