@@ -6,15 +6,19 @@ The key is a SHA-256 of everything the rows depend on: the pickled windows (samp
 fit specification's JSON, the source of the analysis package and the versions of the numerical libraries. Anything
 else misses the cache and is fitted as before. The cache lives in ``$DRIFTSPEC_CACHE_DIR`` if set (an empty value
 turns it off), else ``$XDG_CACHE_HOME/driftspec`` or ``~/.cache/driftspec``; deleting the folder is always safe.
-Tables are Parquet files, written to a temporary name and renamed, so a reader never sees half a file.
+Tables are Parquet files, written to a temporary name of their own and renamed, so a reader never sees half a file;
+the :data:`KEEP_TABLES` most recently used are kept.
 """
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import hashlib
 import os
 import pickle
+import tempfile
+import time
 from pathlib import Path
 
 import pandas as pd
@@ -23,6 +27,8 @@ import pandas as pd
 CACHE_ENV = "DRIFTSPEC_CACHE_DIR"
 #: the column that keeps each row's window (its position in the job's list of windows)
 WINDOW_COLUMN = "_window"
+#: tables kept (the most recently used; a table of the demo's 576 windows is about 0.2 MB)
+KEEP_TABLES = 32
 
 
 def cache_dir() -> Path | None:
@@ -70,11 +76,12 @@ def load(key: str, n_windows: int) -> list[list[dict]] | None:
     """The cached rows of ``n_windows`` windows, grouped by window as a job returns them, or None (no cache, not
     cached, or unreadable)."""
     path = _path(key)
-    if path is None or not path.exists():
-        return None
     try:
+        if path is None or not path.exists():
+            return None
         df = pd.read_parquet(path)
-    except Exception:  # noqa: BLE001 - a damaged cache file is refitted, never shown
+        os.utime(path)  # recently used: kept longest (see store)
+    except Exception:  # noqa: BLE001 - a damaged or unreadable cache file is refitted, never shown
         return None
     if WINDOW_COLUMN not in df:
         return None
@@ -94,11 +101,32 @@ def store(key: str, rows_by_window: list[list[dict]]) -> Path | None:
     if path is None:
         return None
     rows = [{**row, WINDOW_COLUMN: k} for k, group in enumerate(rows_by_window) for row in (group or [])]
+    tmp = None
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
-        tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+        os.close(fd)
         pd.DataFrame(rows).to_parquet(tmp, index=False)
         os.replace(tmp, path)
     except (OSError, ValueError, TypeError):
+        if tmp is not None:
+            with contextlib.suppress(OSError):
+                os.remove(tmp)
         return None
+    _prune(path.parent)
     return path
+
+
+def _prune(folder: Path, keep: int = KEEP_TABLES, stale_s: float = 3600.0) -> None:
+    """Keep the ``keep`` most recently used tables (every change to the analysis code or the settings makes a new
+    one) and remove temporary files older than ``stale_s`` (left by a process that stopped while writing)."""
+    now = time.time()
+    with contextlib.suppress(OSError):
+        tables = sorted(folder.glob("rows-*.parquet"), key=lambda f: f.stat().st_mtime, reverse=True)
+        for f in tables[keep:]:
+            with contextlib.suppress(OSError):
+                f.unlink()
+        for f in folder.glob(".rows-*.tmp"):
+            with contextlib.suppress(OSError):
+                if now - f.stat().st_mtime > stale_s:
+                    f.unlink()

@@ -200,12 +200,15 @@ class Job(param.Parameterized):
         t0 = time.perf_counter()
         out = [None] * len(self._windows)
         self._publish(status="running")
-        key = None
+        key = rows = None
         if self._cached:
             from . import fitcache
 
-            key = fitcache.table_key(self._windows, self._spec_json)
-            rows = fitcache.load(key, len(self._windows))
+            try:
+                key = fitcache.table_key(self._windows, self._spec_json)
+                rows = fitcache.load(key, len(self._windows))
+            except Exception:  # noqa: BLE001 - an unreadable cache is a miss: the windows are fitted
+                key = rows = None
             if rows is not None and not self.cancelled:
                 self._publish(status="done", n_done=len(rows), result=rows, eta_s=0.0, from_cache=True)
                 return

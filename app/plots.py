@@ -17,7 +17,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 from bokeh.layouts import row
-from bokeh.models import ColumnDataSource, DataRange1d, Label, Legend, LegendItem, Range1d
+from bokeh.models import ColorBar, ColumnDataSource, DataRange1d, Label, Legend, LegendItem, Range1d
 
 from .jobs import call_in_session
 
@@ -42,6 +42,9 @@ def scale_fonts(fig, fontscale: float) -> None:
         ax.major_label_text_font_size = f"{11 * fontscale:.0f}px"
     for lg in fig.legend:
         lg.label_text_font_size = f"{13 * fontscale:.0f}px"
+    for bar in fig.select({"type": ColorBar}):
+        bar.title_text_font_size = f"{13 * fontscale:.0f}px"
+        bar.major_label_text_font_size = f"{11 * fontscale:.0f}px"
 
 
 def _log_positive(a) -> np.ndarray:

@@ -87,3 +87,43 @@ def test_a_damaged_cache_file_is_refitted_and_no_cache_dir_turns_it_off(windows_
     assert fitcache.cache_dir() is None and fitcache.store(key, job.result) is None
     assert not _run(windows[:1], spec).from_cache
     assert os.environ[fitcache.CACHE_ENV] == ""
+
+
+def test_the_cache_keeps_the_most_recent_tables_and_clears_stale_temporary_files(tmp_path, monkeypatch):
+    import time
+
+    from driftspec.app import fitcache
+
+    monkeypatch.setenv(fitcache.CACHE_ENV, str(tmp_path))
+    rows = [[{"track_id": "A", "matern_alpha": 1.2}]]
+    paths = []
+    for k in range(4):
+        paths.append(fitcache.store(f"{k:064x}", rows))
+        past = time.time() - 100 + k  # later keys used more recently
+        os.utime(paths[-1], (past, past))
+    stale = tmp_path / ".rows-x.parquet.abc.tmp"
+    stale.write_bytes(b"")
+    os.utime(stale, (time.time() - 7200, time.time() - 7200))
+    fresh = tmp_path / ".rows-y.parquet.def.tmp"  # another process writing now
+    fresh.write_bytes(b"")
+    fitcache._prune(tmp_path, keep=2)
+    assert sorted(p.name for p in tmp_path.glob("rows-*.parquet")) == sorted(p.name for p in paths[2:])
+    assert not stale.exists() and fresh.exists()
+    assert fitcache.load(f"{3:064x}", 1) == rows
+
+
+def test_an_unreadable_cache_is_a_miss_and_the_job_still_fits(windows_and_spec, tmp_path, monkeypatch):
+    # EACCES cannot be produced for the root user of a test machine: Path.exists raises as it would
+    from pathlib import Path
+
+    from driftspec.app import fitcache
+
+    windows, spec = windows_and_spec
+    monkeypatch.setenv(fitcache.CACHE_ENV, str(tmp_path))
+
+    def denied(self, *args, **kwargs):
+        raise PermissionError(13, "Permission denied", str(self))
+
+    monkeypatch.setattr(Path, "exists", denied)
+    job = _run(windows[:1], spec)
+    assert not job.from_cache and len(job.result) == 1 and job.result[0]
