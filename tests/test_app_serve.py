@@ -1,6 +1,7 @@
 """`panel serve app/main.py` as the README documents it: bound to 127.0.0.1, the page served; server options put
 after `--args` give a one-line message on the page instead of a misread argument."""
 
+import re
 import socket
 import subprocess
 import sys
@@ -70,6 +71,11 @@ def test_documented_panel_serve_binds_localhost_and_serves(panel_serve, demo_dir
     assert _listening_addresses(port) == {"0100007F"}
     status, html = _get(port)
     assert status == 200 and "driftspec" in html and "cannot start" not in html
+    # the page loads BokehJS itself from this server, without the WebGL and MathJax bundles it never uses
+    # (app/server.py::UNUSED_BUNDLES; the browser tests check that such pages draw with no console error)
+    scripts = re.findall(r'src="([^"]+\.js)[^"]*"', html)
+    assert any("static/js/bokeh.min.js" in src for src in scripts), scripts
+    assert not [src for src in scripts if "bokeh-gl" in src or "mathjax" in src], scripts
 
 
 def test_server_options_after_args_are_refused_on_the_page(panel_serve, demo_dir):
