@@ -345,6 +345,10 @@ class TrackMapFigure:
         self.ellipse_item.visible = True
 
 
+#: bins from which the parameter map's colours span the 2nd to 98th percentile of the values (beyond: the end colours)
+ROBUST_COLOUR_BINS = 20
+
+
 def parameter_map_figure(*, xlim, ylim, frame_width: int, frame_height: int, colours: dict, land_xy, grid_xy,
                          grid_labels, ticks, bins: dict, value: str, value_label: str, tooltips: list,
                          ellipses: dict | None, title: str, fontscale: float = 1.0):
@@ -370,9 +374,14 @@ def parameter_map_figure(*, xlim, ylim, frame_width: int, frame_height: int, col
     values = np.asarray(bins[value], float)
     finite = values[np.isfinite(values)]
     low, high = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
+    if finite.size >= ROBUST_COLOUR_BINS:  # one odd bin does not squeeze every other into one colour
+        low, high = (float(v) for v in np.percentile(finite, [2, 98]))
+        value_label += " (colours: 2-98 % of bins)" if (finite < low).any() or (finite > high).any() else ""
     if high <= low:
         low, high = low - 0.5, high + 0.5
-    mapper = LinearColorMapper(palette=cividis(256), low=low, high=high, nan_color="#c8c8c8")
+    palette = cividis(256)
+    mapper = LinearColorMapper(palette=palette, low=low, high=high, nan_color="#c8c8c8", low_color=palette[0],
+                               high_color=palette[-1])
     cells = fig.patches("xs", "ys", source=ColumnDataSource(bins), fill_color={"field": value, "transform": mapper},
                         line_color="white", line_width=0.2, name="bins")
     fig.add_tools(HoverTool(renderers=[cells], tooltips=tooltips))
