@@ -751,11 +751,28 @@ def _integrate(v, step_days) -> np.ndarray:
     return pos
 
 
+#: simulated drifters x fine-grid samples per batch of :func:`_irregular_velocities` (a few arrays of that many
+#: complex numbers each: about 0.2 GB at most, whatever the drifter's span)
+SIM_BATCH_CELLS = 2_000_000
+
+
 def _irregular_draws(pool: _Pool, ws, s, a, n_sim, rng):
     """Simulated periodograms of one drifter's windows of irregular fixes (one (n_sim, band) array per window, in
-    order): :func:`_irregular_velocities`, prepared as the data were."""
-    for w, z in zip(ws, _irregular_velocities(pool, ws, s, a, n_sim, rng)):
-        yield _periodograms(z, pool.items[w].problem.prep)
+    order): :func:`_irregular_velocities`, prepared as the data were, in batches of drifters that bound the memory
+    (:data:`SIM_BATCH_CELLS`)."""
+    from ..fitting.uncertainty import _FINE_STEPS
+
+    items = [pool.items[w] for w in ws]
+    days = max(o + it.problem.prep.n * it.problem.prep.dt_days for o, it in zip(_window_offsets_days(items), items))
+    n_fine = _FINE_STEPS * days / items[0].problem.prep.dt_days
+    batch = int(np.clip(SIM_BATCH_CELLS // max(n_fine, 1.0), 8, n_sim))
+    parts = [[] for _ in ws]
+    for first in range(0, n_sim, batch):
+        size = min(batch, n_sim - first)
+        for part, w, z in zip(parts, ws, _irregular_velocities(pool, ws, s, a, size, rng)):
+            part.append(_periodograms(z, pool.items[w].problem.prep))
+    for part in parts:
+        yield np.concatenate(part)
 
 
 def _irregular_velocities(pool: _Pool, ws, s, a, n_sim, rng):
