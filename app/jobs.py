@@ -102,6 +102,18 @@ def background_pool():
         return _BACKGROUND_POOL
 
 
+def stop_pools() -> None:
+    """Stop the shared worker processes (started again on next use): for scripts and tests that end before the
+    interpreter does, so no pool is left to be collected during its shutdown."""
+    global _POOL, _BACKGROUND_POOL
+    with _POOL_LOCK:
+        pools, _POOL, _BACKGROUND_POOL = (_POOL, _BACKGROUND_POOL), None, None
+    for pool in pools:
+        if pool is not None:
+            pool.terminate()
+            pool.join()
+
+
 def start_pool() -> None:
     """Start the shared workers now (the server calls this before the first page asks for a fit)."""
     shared_pool()

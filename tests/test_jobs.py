@@ -8,6 +8,15 @@ import pandas as pd
 import pytest
 
 
+@pytest.fixture(scope="module", autouse=True)
+def _worker_pools():
+    """The jobs' worker processes, stopped when this module's tests are done."""
+    from driftspec.app.jobs import stop_pools
+
+    yield
+    stop_pools()
+
+
 @pytest.fixture(scope="module")
 def windows_and_spec(demo_dir):
     from driftspec.analysis.tracks.pipeline import load_velocities
