@@ -239,6 +239,39 @@ class ComplementaryFigure:
         self.figure.title.text = f"complementary (ρ {anisotropy:.2f}, p {pvalue:.2g})"
 
 
+def _land(fig, colours: dict, land_xy) -> None:
+    """Filled land with its shoreline: every island one glyph (parts separated by NaN rows)."""
+    if len(land_xy):
+        fig.patch(land_xy[:, 0], land_xy[:, 1], fill_color=colours["land"], line_color=colours["coast"],
+                  line_width=0.7)
+
+
+def _graticule(fig, colours: dict, grid_xy, grid_labels) -> None:
+    """Graticule lines (one glyph) and, in a polar view, their degree labels ``[(x, y, text)]``."""
+    if len(grid_xy):
+        fig.line(grid_xy[:, 0], grid_xy[:, 1], color=colours["grid"], line_width=0.6, line_dash="dashed", alpha=0.8)
+    if grid_labels:
+        lx, ly, lt = zip(*grid_labels)
+        fig.text(list(lx), list(ly), text=list(lt), text_color="#3a4450", text_font_size="9pt", text_align="left",
+                 text_baseline="bottom")
+
+
+def _degree_axes(fig, ticks) -> None:
+    """Longitude and latitude in degrees on the axes at ``ticks = ({x: label}, {y: label})``; none in a polar view
+    (empty ticks: the labels sit on the graticule lines)."""
+    from bokeh.models import FixedTicker
+
+    xt, yt = ticks
+    if xt:
+        fig.xaxis.ticker = FixedTicker(ticks=list(xt))
+        fig.xaxis.major_label_overrides = {float(k): v for k, v in xt.items()}
+        fig.yaxis.ticker = FixedTicker(ticks=list(yt))
+        fig.yaxis.major_label_overrides = {float(k): v for k, v in yt.items()}
+        fig.xaxis.axis_label, fig.yaxis.axis_label = "longitude", "latitude"
+    else:
+        fig.xaxis.visible = fig.yaxis.visible = False
+
+
 class TrackMapFigure:
     """All tracks as a raster (the mean of a value per screen pixel, computed with datashader), over filled land,
     shoreline and graticule, with degree labels; the selected track, the box-selected region and a model variance
@@ -251,7 +284,6 @@ class TrackMapFigure:
             BoxSelectTool,
             ColorBar,
             EqHistColorMapper,
-            FixedTicker,
             HoverTool,
             TapTool,
             WheelZoomTool,
@@ -266,21 +298,13 @@ class TrackMapFigure:
                      y_range=Range1d(y0, y1), title="All tracks", background_fill_color="#eef2f5",
                      tools=["pan", wheel, "box_zoom", TapTool(), "reset", "save"], active_scroll=wheel)
         fig.grid.visible = False  # the graticule is the grid
-        if len(land_xy):
-            fig.patch(land_xy[:, 0], land_xy[:, 1], fill_color=colours["land"], line_color=colours["coast"],
-                      line_width=0.7)  # every island one glyph: parts separated by NaN rows
+        _land(fig, colours, land_xy)
         self.raster = ColumnDataSource({"image": [], "x": [], "y": [], "dw": [], "dh": []})
         self.mapper = EqHistColorMapper(palette=list(fire), nan_color="rgba(0, 0, 0, 0)")
         fig.image("image", "x", "y", "dw", "dh", source=self.raster, color_mapper=self.mapper)
         self.colorbar = ColorBar(color_mapper=self.mapper, title=clabel, title_standoff=8, width=16)
         fig.add_layout(self.colorbar, "right")
-        if len(grid_xy):
-            fig.line(grid_xy[:, 0], grid_xy[:, 1], color=colours["grid"], line_width=0.6, line_dash="dashed",
-                     alpha=0.8)
-        if grid_labels:
-            lx, ly, lt = zip(*grid_labels)
-            fig.text(list(lx), list(ly), text=list(lt), text_color="#3a4450", text_font_size="9pt",
-                     text_align="left", text_baseline="bottom")
+        _graticule(fig, colours, grid_xy, grid_labels)
         pick = fig.scatter("x", "y", source=ColumnDataSource(picker), size=4, alpha=0, nonselection_alpha=0,
                            selection_alpha=0)
         fig.add_tools(HoverTool(renderers=[pick], tooltips=[("track", "@track"), ("position", "@position")]),
@@ -303,15 +327,7 @@ class TrackMapFigure:
         self.ellipse_item = LegendItem(label="model variance ellipse", renderers=[self.ellipse_line],
                                        visible=False)
         fig.add_layout(Legend(items=[self.ellipse_item], location="bottom_left"))
-        xt, yt = ticks
-        if xt:
-            fig.xaxis.ticker = FixedTicker(ticks=list(xt))
-            fig.xaxis.major_label_overrides = {float(k): v for k, v in xt.items()}
-            fig.yaxis.ticker = FixedTicker(ticks=list(yt))
-            fig.yaxis.major_label_overrides = {float(k): v for k, v in yt.items()}
-            fig.xaxis.axis_label, fig.yaxis.axis_label = "longitude", "latitude"
-        else:  # a polar view: the labels sit on the graticule lines
-            fig.xaxis.visible = fig.yaxis.visible = False
+        _degree_axes(fig, ticks)
         self.figure = fig
 
     def show_raster(self, image, x_range, y_range, clabel: str) -> None:
@@ -358,7 +374,7 @@ def parameter_map_figure(*, xlim, ylim, frame_width: int, frame_height: int, col
     (NaN: grey), the rest shown by ``tooltips``. ``ellipses``: columns ``xs``, ``ys`` (one ring per bin),
     ``sd_major``, ``sd_minor``, ``angle``, ``n``; or None. One glyph per layer: drawn through HoloViews, a map of
     200 bins and their ellipses took 20 s on the server (a geometry object per bin), as one glyph 0.1 s."""
-    from bokeh.models import ColorBar, FixedTicker, HoverTool, LinearColorMapper, WheelZoomTool
+    from bokeh.models import ColorBar, HoverTool, LinearColorMapper, WheelZoomTool
     from bokeh.palettes import cividis
     from bokeh.plotting import figure
 
@@ -368,9 +384,7 @@ def parameter_map_figure(*, xlim, ylim, frame_width: int, frame_height: int, col
                  title=title, background_fill_color="#eef2f5", tools=["pan", wheel, "box_zoom", "reset", "save"],
                  active_scroll=wheel)
     fig.grid.visible = False
-    if len(land_xy):
-        fig.patch(land_xy[:, 0], land_xy[:, 1], fill_color=colours["land"], line_color=colours["coast"],
-                  line_width=0.7)
+    _land(fig, colours, land_xy)
     values = np.asarray(bins[value], float)
     finite = values[np.isfinite(values)]
     low, high = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
@@ -394,20 +408,7 @@ def parameter_map_figure(*, xlim, ylim, frame_width: int, frame_height: int, col
             ("major axis", "@angle{0.0}° from east"), ("samples", "@n")]))
         fig.add_layout(Legend(items=[LegendItem(label="velocity variance ellipses", renderers=[rings])],
                               location="bottom_left"))
-    if len(grid_xy):
-        fig.line(grid_xy[:, 0], grid_xy[:, 1], color=colours["grid"], line_width=0.6, line_dash="dashed", alpha=0.8)
-    xt, yt = ticks
-    if xt:
-        fig.xaxis.ticker = FixedTicker(ticks=list(xt))
-        fig.xaxis.major_label_overrides = {float(k): v for k, v in xt.items()}
-        fig.yaxis.ticker = FixedTicker(ticks=list(yt))
-        fig.yaxis.major_label_overrides = {float(k): v for k, v in yt.items()}
-        fig.xaxis.axis_label, fig.yaxis.axis_label = "longitude", "latitude"
-    else:  # a polar view: the labels sit on the graticule lines
-        fig.xaxis.visible = fig.yaxis.visible = False
-        if grid_labels:
-            lx, ly, lt = zip(*grid_labels)
-            fig.text(list(lx), list(ly), text=list(lt), text_color="#3a4450", text_font_size="9pt",
-                     text_align="left", text_baseline="bottom")
+    _graticule(fig, colours, grid_xy, grid_labels)
+    _degree_axes(fig, ticks)
     scale_fonts(fig, fontscale)
     return fig
