@@ -295,10 +295,7 @@ def irregular_velocities(family, theta, prep, context, rng, n_sim: int, improper
     if special is not None:
         w = draw([c for c in comps if c[0] == special])
         v = v + improper[1] * w + improper[2] * np.conj(w)
-    x = np.zeros((n_sim, n_f), complex)
-    np.cumsum(0.5 * (v[:, 1:] + v[:, :-1]), axis=1, dtype=complex, out=x[:, 1:])
-    x *= dt_f * SECONDS_PER_DAY  # m, by the trapezoid rule
-    pos = _interp_rows(x, s / dt_f)
+    pos = interpolate_rows(integrate_velocity(v, dt_f), s / dt_f)
     sigma = _fix_error_sd(family, extra, s.size)
     pos = pos + sigma * (rng.standard_normal(pos.shape) + 1j * rng.standard_normal(pos.shape))
     return (op.weights @ pos.T).T / SECONDS_PER_DAY  # m/s on the grid (zero rows where invalid)
@@ -315,7 +312,16 @@ def ou_series(var: float, rate: complex, n: int, dt_days: float, rng, size: int)
     return scipy.signal.lfilter([1.0], [1.0, -phi], e, axis=-1)
 
 
-def _interp_rows(x, at):
+def integrate_velocity(v, step_days) -> np.ndarray:
+    """Positions (m) from velocities ``v`` (n_sim, n; m/s) every ``step_days``, by the trapezoid rule, summed in
+    double precision, from zero (the constant is free: each row of an irregular window's operator sums to zero)."""
+    pos = np.zeros(v.shape, complex)
+    np.cumsum(0.5 * (v[:, 1:] + v[:, :-1]), axis=1, dtype=complex, out=pos[:, 1:])
+    pos *= step_days * SECONDS_PER_DAY
+    return pos
+
+
+def interpolate_rows(x, at):
     """Rows of ``x`` (samples at 0, 1, 2, ...) linearly interpolated at the fractional positions ``at``."""
     i = np.clip(np.floor(at).astype(int), 0, x.shape[1] - 2)
     w = at - i

@@ -742,15 +742,6 @@ def _component_variances(pool: _Pool, w, s, a, family) -> list[float]:
             for comp, sl in family.components()]
 
 
-def _integrate(v, step_days) -> np.ndarray:
-    """Positions (m) from velocities ``v`` (n_sim, n; m/s) every ``step_days``, by the trapezoid rule, summed in
-    double precision (the constant of integration is free: each row of a window's operator sums to zero)."""
-    pos = np.zeros(v.shape, complex)
-    np.cumsum(0.5 * (v[:, 1:] + v[:, :-1]), axis=1, dtype=complex, out=pos[:, 1:])
-    pos *= step_days * SECONDS_PER_DAY
-    return pos
-
-
 #: simulated drifters x fine-grid samples per batch of :func:`_irregular_velocities` (a few arrays of that many
 #: complex numbers each: about 0.2 GB at most, whatever the drifter's span)
 SIM_BATCH_CELLS = 2_000_000
@@ -789,7 +780,15 @@ def _irregular_velocities(pool: _Pool, ws, s, a, n_sim, rng):
     (its constant frequency, or its local inertial frequency plus the offset) before integrating: each window sees
     the constant-frequency peak its operator models, and overlapping windows share the oscillation's random
     amplitude and phase. Each component is rescaled to each window's amplitude."""
-    from ..fitting.uncertainty import _FINE_STEPS, _OSCILLATIONS, EMBEDDING_MAX_FACTOR, _fix_error_sd, ou_series
+    from ..fitting.uncertainty import (
+        _FINE_STEPS,
+        _OSCILLATIONS,
+        EMBEDDING_MAX_FACTOR,
+        _fix_error_sd,
+        integrate_velocity,
+        interpolate_rows,
+        ou_series,
+    )
     from ..models.inertial import modulation_sequence
     from ..simulation.simulate import embedding_autocovariance
 
@@ -815,7 +814,7 @@ def _irregular_velocities(pool: _Pool, ws, s, a, n_sim, rng):
         x = _circulant_draws(r, n_fine, rng, n_sim)
         if comp.modulated:
             x = x * modulation_sequence(np.full(n_fine, items[0].lat), step)
-        comps.append((_integrate(x, step), None, v_ref))
+        comps.append((integrate_velocity(x, step), None, v_ref))
     # one standard complex normal per distinct fix (times to the second), shared by the windows that use it
     keys = [np.round(t * SECONDS_PER_DAY).astype(np.int64) for t in fix_t]
     distinct, where = np.unique(np.concatenate(keys), return_inverse=True)
@@ -825,22 +824,22 @@ def _irregular_velocities(pool: _Pool, ws, s, a, n_sim, rng):
         p = it.problem
         fam = p.family
         theta_w = p.theta(pool.full_x(w, s, a[w])[p.free])
-        u = (t - lo) / step
-        k = np.clip(np.floor(u).astype(int), 0, n_fine - 2)
-        frac = u - k
-        k0, k1 = int(k.min()), int(k.max()) + 2  # the window's stretch of the fine grid
+        u = (t - lo) / step  # the fixes on the fine grid
+        k0 = max(int(np.floor(u.min())), 0)
+        k1 = min(int(np.floor(u.max())) + 2, n_fine)  # the window's stretch of the fine grid
         x_fix = np.zeros((n_sim, t.size), complex)
         own = fam.base.components()
         for (pos, unrotated, v_ref), v_w, (comp, sl) in zip(comps, _component_variances(pool, w, s, a, fam.base), own):
             if v_ref <= 0:
                 continue
-            if pos is None:  # turned at this window's own frequency, then integrated over its stretch
+            if pos is None:  # turned at this window's own frequency, then integrated over its stretch only
                 f_w = float(theta_w[sl][1])
                 if comp.modulated:
                     f_w += p.context.inertial_frequency_cpd or 0.0
-                pos = np.zeros((n_sim, n_fine), complex)
-                pos[:, k0:k1] = _integrate(unrotated[:, k0:k1] * np.exp(2j * np.pi * f_w * (t_fine[k0:k1] - lo)), step)
-            x_fix += np.sqrt(max(v_w, 0.0) / v_ref) * (pos[:, k] * (1 - frac) + pos[:, k + 1] * frac)
+                turned = unrotated[:, k0:k1] * np.exp(2j * np.pi * f_w * (t_fine[k0:k1] - lo))
+                x_fix += np.sqrt(max(v_w, 0.0) / v_ref) * interpolate_rows(integrate_velocity(turned, step), u - k0)
+            else:
+                x_fix += np.sqrt(max(v_w, 0.0) / v_ref) * interpolate_rows(pos, u)
         sigma = _fix_error_sd(fam, theta_w[len(fam.base.parameters):], t.size)
         x_fix += sigma * eps[:, where[bounds[j]:bounds[j + 1]]]
         yield np.ascontiguousarray((fam.operator.weights @ x_fix.T).T / SECONDS_PER_DAY, np.complex64)
