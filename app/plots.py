@@ -47,6 +47,29 @@ def scale_fonts(fig, fontscale: float) -> None:
         bar.major_label_text_font_size = f"{11 * fontscale:.0f}px"
 
 
+def drop_unused_glyphs(fig) -> None:
+    """Leave out the models Bokeh makes for every glyph that these plots never use, before the page is sent.
+
+    - the faded and muted copies of each glyph: no plot here selects points to fade the others (the map's box
+      selection picks tracks through an invisible layer) and legends hide rather than mute;
+    - one "all rows" filter and one selection policy per layer: both hold no state, so the figure's layers share one.
+
+    Each is one more model the server builds and sends and the browser builds a view for: of a page's 533 models,
+    117 were these."""
+    from bokeh.models import AllIndices, ColumnDataSource, GlyphRenderer, UnionRenderers
+
+    every_row, union = AllIndices(), UnionRenderers()
+    for r in fig.renderers:
+        if isinstance(r, GlyphRenderer):
+            r.nonselection_glyph = None
+            r.muted_glyph = None
+            if isinstance(r.view.filter, AllIndices):
+                r.view.filter = every_row
+            if isinstance(r.data_source, ColumnDataSource) and isinstance(r.data_source.selection_policy,
+                                                                         UnionRenderers):
+                r.data_source.selection_policy = union
+
+
 def _log_positive(a) -> np.ndarray:
     """``a`` as floats with values a log axis cannot show (zero, negative) replaced by NaN."""
     a = np.asarray(a, float)
@@ -74,6 +97,7 @@ class VelocityFigure:
                                      LegendItem(label="v (north)", renderers=[v])],
                               location="top_left", click_policy="hide", background_fill_alpha=0.7))
         scale_fonts(fig, fontscale)
+        drop_unused_glyphs(fig)
         self.figure = fig
 
     def show(self, title: str, velocity: pd.DataFrame, windows: list, current) -> None:
@@ -144,6 +168,7 @@ class RotarySpectrumFigure:
             scale_fonts(fig, fontscale)
             self.sources[side] = src
             self.inertial_labels[side] = label
+            drop_unused_glyphs(fig)
             figs.append(fig)
         self.figures = figs
         self.layout = row(*figs, sizing_mode="stretch_width")
@@ -230,6 +255,7 @@ class ComplementaryFigure:
                                      LegendItem(label="fitted model (expected)", renderers=[m])],
                               location="bottom_left", click_policy="hide", background_fill_alpha=0.55))
         scale_fonts(fig, fontscale)
+        drop_unused_glyphs(fig)
         self.figure = fig
 
     def show(self, f, observed, model, anisotropy: float, pvalue: float) -> None:
@@ -328,6 +354,7 @@ class TrackMapFigure:
                                        visible=False)
         fig.add_layout(Legend(items=[self.ellipse_item], location="bottom_left"))
         _degree_axes(fig, ticks)
+        drop_unused_glyphs(fig)
         self.figure = fig
 
     def show_raster(self, image, x_range, y_range, clabel: str) -> None:
@@ -411,4 +438,5 @@ def parameter_map_figure(*, xlim, ylim, frame_width: int, frame_height: int, col
     _graticule(fig, colours, grid_xy, grid_labels)
     _degree_axes(fig, ticks)
     scale_fonts(fig, fontscale)
+    drop_unused_glyphs(fig)
     return fig

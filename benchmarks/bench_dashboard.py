@@ -148,6 +148,60 @@ def pages(n_sessions, wait_first_look=False):
         proc.wait(20)
 
 
+#: a page of the dashboard's template and extensions with nothing in it: what the browser and Panel cost per page
+#: whatever the dashboard draws (the floor under the ten-session figure when the browsers share the server's cores)
+_BARE_SERVER = """
+import sys
+import panel as pn
+from driftspec.app import dashboard
+from driftspec.app.server import configure_panel
+configure_panel()
+page = lambda: dashboard.OfflineTemplate(title="bare", main=[pn.pane.Markdown("bare page drawn")])
+pn.serve({"bare": page}, port=int(sys.argv[1]), address="127.0.0.1", show=False, threaded=False, start=True,
+         print_url=False, websocket_origin=[f"127.0.0.1:{sys.argv[1]}"])
+"""
+
+
+def bare_pages(n_sessions):
+    """Seconds until ``n_sessions`` pages of :data:`_BARE_SERVER` opened together have all drawn their text."""
+    from playwright.sync_api import sync_playwright
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    proc = subprocess.Popen([sys.executable, "-c", _BARE_SERVER, str(port)], stdout=subprocess.DEVNULL,
+                            stderr=subprocess.DEVNULL)
+    url = f"http://127.0.0.1:{port}/bare"
+    try:
+        deadline = time.time() + 120
+        while time.time() < deadline:
+            with socket.socket() as s:
+                if s.connect_ex(("127.0.0.1", port)) == 0:
+                    break
+            time.sleep(0.2)
+        with sync_playwright() as p:
+            b = p.chromium.launch(executable_path=CHROMIUM, headless=True, args=CHROMIUM_ARGS)
+            warm = b.new_page(viewport={"width": 1500, "height": 1200})
+            warm.goto(url, timeout=120_000)
+            warm.get_by_text("bare page drawn").wait_for(timeout=120_000)
+            warm.close()
+            t0 = time.perf_counter()
+            opened = []
+            for _ in range(n_sessions):
+                pg = b.new_page(viewport={"width": 1500, "height": 1200})
+                pg.goto(url, wait_until="commit", timeout=120_000)
+                opened.append(pg)
+            done = []
+            for pg in opened:
+                pg.get_by_text("bare page drawn").wait_for(timeout=120_000)
+                done.append(time.perf_counter() - t0)
+            b.close()
+        return done
+    finally:
+        proc.terminate()
+        proc.wait(20)
+
+
 def _cpu_by_process(root_pid):
     """CPU seconds so far of each child process of this one that matters here: ``{pid: (kind, seconds)}`` with
     kind the server, its fit workers (background ones apart), or the browser's process type (needs psutil)."""
@@ -287,6 +341,11 @@ def main():
                     print(f"[{label}] {a.sessions} sessions opened together: all rendered after {max(done):.1f} s "
                           f"(median {statistics.median(done):.1f} s)  target < 20 s; server peak memory {peak:.0f} MB "
                           f"(server and fit workers)")
+            if a.sessions:
+                bare = bare_pages(a.sessions)
+                print(f"[floor] {a.sessions} pages of the same template with nothing in it, opened together: all drawn "
+                      f"after {max(bare):.1f} s (what the browser, Bokeh and Panel cost per page here, whatever the "
+                      f"dashboard draws; the browsers share the server's {os.cpu_count()} cores)")
             if a.page_cpu:  # the first look is in the cache by now
                 t_render, until, settle = page_cpu()
                 print(f"one more page: rendered after {t_render:.1f} s; CPU seconds until then {until}, in the 10 s "
