@@ -19,8 +19,14 @@ Scenarios (``kind``):
                 the local inertial frequency as it rises.
 
 ``equatorial`` and ``meridional`` default to hourly fixes with a 20 m error; every scenario takes either
-sampling. The latitude the inertial part follows is that of the mean drift (the eddying displacements
-of a few km do not change the inertial frequency measurably). Track names are ``SIM-0001``, ...
+sampling. The inertial part follows the latitude of the track's own path, eddying displacements included: the
+path is simulated twice with the same draws, the second time with the oscillation turning at the latitude of the
+first path (the displacement comes from the mean drift and the background, so one more pass is exact to the
+oscillation's own excursion of a few km). Following the mean drift's latitude instead put each track's oscillation
+off the local inertial frequency by up to a few hundredths of a cycle per day (a background of 0.02 m^2/s^2 and
+damping 0.8/day moves a track about a degree of latitude in 30 days), a different offset per track: a pooled fit's
+heterogeneity check rejected a shared shape on 60 % of sets of such tracks, against 5 % with the background made
+too small to move them. Track names are ``SIM-0001``, ...
 
 References
 ----------
@@ -75,17 +81,22 @@ def satellite_fix_times(rng: np.random.Generator, days: float, fixes_per_day: fl
 
 
 def _track(rng, days, lat0, lon0, u_mean, v_mean, theta):
-    """Fine-grid times (days), latitude and longitude of one track (5-minute steps)."""
+    """Fine-grid times (days), latitude and longitude of one track (5-minute steps), its inertial oscillation
+    turning at the local inertial frequency of its own path (module docstring: two passes with the same draws)."""
     n = int(np.ceil(days * 86400.0 / _STEP_S)) + 1
     t = np.arange(n) * _STEP_S / 86400.0
-    lat_mean = lat0 + np.rad2deg(v_mean * t * 86400.0 / EARTH_RADIUS_M)
-    # an offset from the local inertial frequency, where the family has one, is zero here
-    z = simulate("matern+inertial", {"inertial_frequency_offset": 0.0, **theta}, n=n, dt=_STEP_S, seed=rng,
-                 latitude=lat_mean, inertial_frequency="follow-latitude")
-    u, v = u_mean + z.real, v_mean + z.imag
-    # trapezoid rule northward, then eastward at the running latitude
-    dn = np.concatenate([[0.0], np.cumsum(0.5 * (v[1:] + v[:-1]) * _STEP_S)])
-    lat = lat0 + np.rad2deg(dn / EARTH_RADIUS_M)
+    lat = lat0 + np.rad2deg(v_mean * t * 86400.0 / EARTH_RADIUS_M)  # the mean drift's, for the first pass
+    draws = rng.bit_generator.state
+    for last in (False, True):
+        if last:
+            rng.bit_generator.state = draws  # the same background and oscillation, turned along the first path
+        # an offset from the local inertial frequency, where the family has one, is zero here
+        z = simulate("matern+inertial", {"inertial_frequency_offset": 0.0, **theta}, n=n, dt=_STEP_S, seed=rng,
+                     latitude=lat, inertial_frequency="follow-latitude")
+        u, v = u_mean + z.real, v_mean + z.imag
+        # trapezoid rule northward, then eastward at the running latitude
+        dn = np.concatenate([[0.0], np.cumsum(0.5 * (v[1:] + v[:-1]) * _STEP_S)])
+        lat = lat0 + np.rad2deg(dn / EARTH_RADIUS_M)
     de = 0.5 * (u[1:] + u[:-1]) * _STEP_S / np.cos(np.deg2rad(0.5 * (lat[1:] + lat[:-1])))
     lon = lon0 + np.rad2deg(np.concatenate([[0.0], np.cumsum(de)]) / EARTH_RADIUS_M)
     return t, lat, lon
