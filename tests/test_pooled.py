@@ -126,9 +126,9 @@ def test_heterogeneity_check_holds_its_level_on_drifters_moved_by_their_own_eddi
     # hourly with 20 m errors, the inertial oscillation at the local inertial frequency of each drifter's own path,
     # which its eddying background moves about a degree in 30 days), sharing a spectral shape with their own
     # amplitudes: at the 5 % level the check rejects 20 such sets of 12 drifters no more often than chance allows
-    # (binomial(20, 0.05): four or more rejections has probability 0.016). When the oscillation followed only the
-    # mean drift's latitude, each drifter's peak sat off the frequency its path gives by a different amount, and
-    # 12-14 of the 20 were rejected.
+    # (binomial(20, 0.05): four or more rejections has probability scipy.stats.binom.sf(3, 20, 0.05) = 0.016). When
+    # the oscillation followed only the mean drift's latitude, each drifter's peak sat off the frequency its path
+    # gives by a different amount, and 14 of the 20 were rejected.
     from driftspec.analysis.simulation.scenarios import generate_scenario
     from driftspec.analysis.tracks.pipeline import load_velocities
     from driftspec.analysis.tracks.windows import iter_windows
