@@ -64,6 +64,26 @@ def _fits(path: str):
     return read_table(path)
 
 
+#: columns every fits table has (``driftspec fit``, ``window_rows``)
+FITS_COLUMNS = ("track_id", "window_start", "status")
+
+
+def _check_fits(path: Path) -> None:
+    """A one-line error unless ``path`` reads as a fits table (checked before the server starts, not on a page)."""
+    from driftspec.analysis.errors import InputError
+
+    try:
+        columns = set(_fits(str(path)).columns)
+    except Exception as exc:  # noqa: BLE001 - any reading failure is the file's problem, said in one line
+        raise InputError(f"{path}: cannot read a fits table ({str(exc).splitlines()[0] if str(exc) else exc})") \
+            from None
+    missing = [c for c in FITS_COLUMNS if c not in columns]
+    if missing:
+        kind = " (it looks like position fixes)" if {"time", "lat", "lon"} <= columns else ""
+        raise InputError(f"{path}: not a fits table{kind}: no column(s) {', '.join(missing)}; give the table "
+                         "`driftspec fit` wrote")
+
+
 def _may_hold_fixes(path: Path) -> bool:
     """False for a CSV or Parquet table whose header lacks a track, time, latitude or longitude column (a demo's
     truth table, a summary): the file selector does not offer what cannot open. Unreadable headers stay listed,
@@ -257,13 +277,15 @@ def serve(input_path=None, fits=None, port=5006, address="127.0.0.1", show=False
     fits_path = Path(fits) if fits else None
     if fits_path is not None and not fits_path.exists():
         raise InputError(f"{fits_path}: no such file")
+    if fits_path is not None:
+        _check_fits(fits_path)
+    # SIGTERM ends the server like Ctrl+C, so the fit workers are stopped with it (also while it is loading)
+    signal.signal(signal.SIGTERM, lambda *_: sys.exit(0))
     print(f"driftspec: loading {path.name} ...", flush=True)
     prepare(path.resolve())
     origins = [f"{address}:{port}", f"localhost:{port}", f"127.0.0.1:{port}", *extra_origins]
     url = f"http://{address}:{port}/driftspec"
     print(f"driftspec: dashboard at {url}  (Ctrl+C to stop)", flush=True)
-    # SIGTERM ends the server like Ctrl+C, so the fit workers are stopped with it
-    signal.signal(signal.SIGTERM, lambda *_: sys.exit(0))
     configure_panel()
     pn.serve({"driftspec": make_app(path.resolve(), fits_path)}, port=port, address=address,
              websocket_origin=origins, show=show, title="driftspec", threaded=False, start=True,

@@ -204,3 +204,28 @@ def test_no_windows_says_why_with_numbers(tmp_path, demo_dir):
     assert r.returncode == 0, r.stderr
     assert "no windows fitted" in r.stdout
     assert "below --min-coverage 0.8" in r.stderr and "--mask-distance" in r.stderr
+
+
+def test_a_table_of_the_other_kind_is_named_as_such(tmp_path, demo_dir):
+    # a fits table (rows of a real fit of one demo window) given where fixes are expected, and fixes given where a
+    # fits table is expected (also to the dashboard server, before it starts): one line naming the file and saying
+    # what it is, exit status 2, nothing written
+    from driftspec.analysis import FitSpec
+    from driftspec.analysis.fitting.batch import window_rows
+    from driftspec.analysis.tracks.pipeline import load_velocities
+    from driftspec.analysis.tracks.windows import iter_windows
+
+    vel, _, _ = load_velocities(str(demo_dir / "fixes.parquet"))
+    window = next(iter_windows(vel, window_days=30))
+    fits = tmp_path / "fits.parquet"
+    pd.DataFrame(window_rows(window, FitSpec(models=("matern",)))).to_parquet(fits)
+    for args, needle in ((("fit", fits, "--out", tmp_path / "out.parquet"), "this is a fits table"),
+                         (("map", demo_dir / "fixes.parquet", "--out", tmp_path / "map.nc"),
+                          "this is a table of position fixes"),
+                         (("serve", demo_dir / "fixes.parquet", "--fits", demo_dir / "fixes.parquet", "--port", 5199),
+                          "not a fits table")):
+        r = run(*args)
+        assert r.returncode == 2, r.stderr
+        lines = r.stderr.strip().splitlines()
+        assert len(lines) == 1 and needle in lines[0] and str(args[1]) in lines[0], r.stderr
+    assert not (tmp_path / "out.parquet").exists() and not (tmp_path / "map.nc").exists()

@@ -75,6 +75,9 @@ def column_map(columns, where: str) -> dict:
                 rename[lower[a]] = std
                 break
     missing = [c for c in REQUIRED if c not in rename.values()]
+    if missing and {"track_id", "window_start", "status"} <= set(lower):
+        raise InputError(f"{where}: this is a fits table (one row per window, as `driftspec fit` writes), not fixes; "
+                         "give the file of position fixes (columns id, time, lat, lon)")
     if missing:
         raise InputError(
             f"{where}: missing column(s) {', '.join(missing)}; found {', '.join(map(str, columns))}"

@@ -376,7 +376,13 @@ def grid_fits_file(path, params=None, bin_deg=2.0, stat="median", out=None, comm
     if path.suffix.lower() != ".csv":
         schema = pq.read_schema(path)
         units = {f.name: f.metadata[b"units"].decode() for f in schema if f.metadata and b"units" in f.metadata}
-    ds = grid_fits(fits, params, bin_deg, stat, units)
+    if "status" not in fits and {"time", "lat", "lon"} <= set(fits.columns):
+        raise InputError(f"{path}: this is a table of position fixes, not fits; give the table `driftspec fit` "
+                         "wrote (one row per window)")
+    try:
+        ds = grid_fits(fits, params, bin_deg, stat, units)
+    except InputError as exc:
+        raise InputError(f"{path}: {exc}") from None
     from importlib.metadata import PackageNotFoundError, version
 
     try:
