@@ -430,6 +430,8 @@ def cmd_dispersion(args):
         model_k, n = model_diffusivity(read_table(args.fits), region)
         line += f"; model-based (median of {n} ok fits): {model_k:.0f} m2/s"
     print(line)
+    if note := res.plateau_note():
+        print(note)
     if args.out:
         res.to_frame().to_csv(args.out, index=False)
     if args.png:

@@ -1364,6 +1364,8 @@ class DispersionView(View):
         layers = [band, curve, plateau]
         text = (f"observed plateau ({a:g}-{b:g} days) **{res.plateau:.0f} m²/s** "
                 f"[{res.plateau_lower:.0f}, {res.plateau_upper:.0f}], {res.n_tracks} track segments")
+        if note := res.plateau_note():
+            text += f"  \n**Not a plateau:** {note}"
         if ex.all_fits is not None and "diffusivity" in ex.all_fits:
             k, n = model_diffusivity(ex.all_fits, self.state.region or None)
             if np.isfinite(k):

@@ -100,6 +100,7 @@ def test_dispersion_plateau_and_model_diffusivity_match_taylor():
     assert res.mean_velocity.real == pytest.approx(0.05, abs=0.01)  # the mean flow is removed
     assert res.plateau == pytest.approx(kappa_true, rel=0.15)
     assert res.plateau_lower < kappa_true < res.plateau_upper
+    assert res.levelled_off and res.plateau_note() == ""  # kappa_true - kappa(8 d) = kappa_true e^(-4): flat
     # model-based: fits of 60-day windows
     rows = []
     for _, g in vel.groupby("id"):
@@ -109,6 +110,25 @@ def test_dispersion_plateau_and_model_diffusivity_match_taylor():
     med, n = model_diffusivity(pd.DataFrame(rows), region=(-150, 10, -130, 30))
     assert n >= 35
     assert med == pytest.approx(kappa_true, rel=0.2)
+
+
+def test_dispersion_says_when_kappa_has_not_levelled_off():
+    # the same tracks, each carried by its own constant velocity (sd 0.05 m/s per component) on top: one mean
+    # velocity per region removes only their average, so every track keeps a ballistic part u0 tau, whose dispersion
+    # u0^2 tau^2 adds u0^2 tau to kappa (Taylor 1921, for a velocity correlated at every lag): kappa rises by
+    # E[u0^2] times the 4 days between the two halves of the 8-16-day lags, about 860 m^2/s, and no plateau is claimed
+    rng = np.random.default_rng(8)
+    vel = _ou_tracks(40, 120, 0.02, 0.5, seed=3)
+    offsets = {k: rng.normal(0, 0.05, 2) for k in vel["id"].unique()}
+    vel["u"] += vel["id"].map(lambda k: offsets[k][0])
+    vel["v"] += vel["id"].map(lambda k: offsets[k][1])
+    u0 = np.array(list(offsets.values()))
+    expected = np.mean((u0 - u0.mean(axis=0)) ** 2) * 4 * 86400
+    res = single_particle_dispersion(vel, region=(-150, 10, -130, 30), max_lag_days=20, plateau_lags=(8, 16),
+                                     n_boot=100)
+    assert not res.levelled_off and res.rise_lower > 0
+    assert 0.6 * expected < res.rise < 1.5 * expected, (res.rise, expected)
+    assert "still rising" in res.plateau_note()
 
 
 def _anisotropic_table(rng, n=600):

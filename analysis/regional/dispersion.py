@@ -9,6 +9,12 @@ compared with the model-based, per-component diffusivity of the fits. The long-l
 of ``kappa(tau)`` over a lag range chosen by the analyst (default: 10-20 days). Intervals come from a
 bootstrap over tracks (tracks resampled with replacement).
 
+Whether ``kappa`` has levelled off over those lags is tested, not assumed: ``rise`` is the mean of ``kappa`` over
+the second half of the plateau lags less its mean over the first half, with its bootstrap interval. An interval
+above zero means ``kappa`` is still growing there (motion still correlated at those lags, or shear of a mean flow
+that one mean velocity per region does not remove): the "plateau" is then only the mean of a growing curve, not
+the diffusivity's long-lag limit (``levelled_off`` is False).
+
 References
 ----------
 Davis, R. E. (1991). Observing the general circulation with floats. Deep-Sea Research 38 (Suppl. 1),
@@ -44,6 +50,24 @@ class DispersionResult:
     plateau_lags: tuple[float, float]
     n_tracks: int
     mean_velocity: complex
+    rise: float = np.nan  # kappa's mean over the second half of the plateau lags less the first half's, m^2/s
+    rise_lower: float = np.nan
+    rise_upper: float = np.nan
+
+    @property
+    def levelled_off(self) -> bool:
+        """False where ``kappa`` is still rising over the plateau lags (the rise's bootstrap interval above zero)."""
+        return not (np.isfinite(self.rise_lower) and self.rise_lower > 0)
+
+    def plateau_note(self) -> str:
+        """One sentence on whether the plateau is one (empty when ``kappa`` has levelled off)."""
+        if self.levelled_off:
+            return ""
+        a, b = self.plateau_lags
+        return (f"kappa is still rising over {a:g}-{b:g} days (second half less first half: {self.rise:.0f} m2/s "
+                f"[{self.rise_lower:.0f}, {self.rise_upper:.0f}]): no plateau yet, so this is not the diffusivity's "
+                "long-lag limit (motion still correlated, or shear of the mean flow; try a smaller region or "
+                "longer lags)")
 
     def to_frame(self) -> pd.DataFrame:
         return pd.DataFrame({"lag_days": self.lag_days, "dispersion_x_m2": self.dispersion_x,
@@ -134,18 +158,27 @@ def single_particle_dispersion(vel: pd.DataFrame, region=None, max_lag_days: flo
     dx, dy, kap = curve(ones)
     lag_days = lag_s / 86400.0
     sel = (lag_days >= plateau_lags[0]) & (lag_days <= plateau_lags[1])
+    middle = 0.5 * (plateau_lags[0] + plateau_lags[1])
+    first, second = sel & (lag_days < middle), sel & (lag_days > middle)
+
+    def rise_of(k):
+        return float(np.mean(k[second]) - np.mean(k[first])) if first.any() and second.any() else np.nan
+
     rng = np.random.default_rng(seed)
-    boots, plats = [], []
+    boots, plats, rises = [], [], []
     for _ in range(n_boot):
         w = np.bincount(rng.integers(0, len(sums), len(sums)), minlength=len(sums)).astype(float)
         k = curve(w)[2]
         boots.append(k)
         plats.append(np.mean(k[sel]) if sel.any() else np.nan)
+        rises.append(rise_of(k))
     boots = np.array(boots)
     lo, hi = np.nanpercentile(boots, [2.5, 97.5], axis=0) if n_boot else (kap * np.nan, kap * np.nan)
     plo, phi = np.nanpercentile(plats, [2.5, 97.5]) if n_boot else (np.nan, np.nan)
+    rlo, rhi = np.nanpercentile(rises, [2.5, 97.5]) if n_boot and np.isfinite(rises).any() else (np.nan, np.nan)
     return DispersionResult(lag_days, dx, dy, kap, lo, hi, float(np.mean(kap[sel])) if sel.any() else np.nan,
-                            float(plo), float(phi), tuple(plateau_lags), len(sums), mean_v)
+                            float(plo), float(phi), tuple(plateau_lags), len(sums), mean_v, rise_of(kap), float(rlo),
+                            float(rhi))
 
 
 def model_diffusivity(fits: pd.DataFrame, region=None) -> tuple[float, int]:
