@@ -1421,8 +1421,7 @@ def _map_dataset(rows: dict, lat_e, lon_e, bin_deg, spec, model, share) -> xr.Da
                                         "units": units[p], "cell_methods": "area: point",
                                         "ancillary_variables": f"{p}_se"})
         ds[p + "_se"] = (("lat", "lon"), ses, {"long_name": f"standard error of the pooled {p} (sandwich, score "
-                                                            "summed within drifters)", "units": units[p],
-                                               "standard_name_modifier": "standard_error"})
+                                                            "summed within drifters)", "units": units[p]})
     ds["heterogeneity_statistic"] = (("lat", "lon"), grid("heterogeneity_statistic"),
                                      {"long_name": "homogeneity statistic (Cochran, score form, scaled): do the cell's "
                                                   "drifters share the parameters",
