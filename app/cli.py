@@ -338,8 +338,8 @@ def cmd_fit(args):
     print(summarise(df))
     if choices := describe_choices(df):
         print(choices)
-    if len(df) == 0:
-        print(census.explain(args.min_coverage), file=sys.stderr)
+    if len(df) == 0 or census.kept < census.candidates or census.short_segments:
+        print(census.explain(args.min_coverage), file=sys.stderr)  # windows not fitted are accounted for
     print(f"wrote {args.out}")
     return 0
 

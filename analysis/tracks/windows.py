@@ -131,8 +131,9 @@ class WindowCensus:
         lines = [f"windows: {self.kept} of {self.candidates} candidate windows kept, from {self.segments} track "
                  f"segments"]
         if self.short_segments:
-            lines.append(f"{self.short_segments} segments are shorter than one window (longest "
-                         f"{self.longest_segment_days:.1f} days): try a shorter --window-days or a longer --split-gap")
+            lines.append(f"{self.short_segments} segments are shorter than one window, so not fitted (the longest "
+                         f"segment of all: {self.longest_segment_days:.1f} days): try a shorter --window-days or a "
+                         "longer --split-gap")
         if self.low_coverage:
             cov = np.asarray(self.low_coverage)
             lines.append(f"{cov.size} windows had coverage below --min-coverage {min_coverage:g} (median "
