@@ -64,20 +64,17 @@ def _fits(path: str):
     return read_table(path)
 
 
-#: columns every fits table has (``driftspec fit``, ``window_rows``)
-FITS_COLUMNS = ("track_id", "window_start", "status")
-
-
 def _check_fits(path: Path) -> None:
     """A one-line error unless ``path`` reads as a fits table (checked before the server starts, not on a page)."""
     from driftspec.analysis.errors import InputError
+    from driftspec.analysis.io.columns import FITS_TABLE_COLUMNS
 
     try:
         columns = set(_fits(str(path)).columns)
     except Exception as exc:  # noqa: BLE001 - any reading failure is the file's problem, said in one line
         raise InputError(f"{path}: cannot read a fits table ({str(exc).splitlines()[0] if str(exc) else exc})") \
             from None
-    missing = [c for c in FITS_COLUMNS if c not in columns]
+    missing = [c for c in FITS_TABLE_COLUMNS if c not in columns]
     if missing:
         kind = " (it looks like position fixes)" if {"time", "lat", "lon"} <= columns else ""
         raise InputError(f"{path}: not a fits table{kind}: no column(s) {', '.join(missing)}; give the table "

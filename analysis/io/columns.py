@@ -65,6 +65,10 @@ def as_path(source, reader: str) -> Path:
     return Path(os.fspath(source))
 
 
+#: columns every fits table has (``driftspec fit``, ``window_rows``): how a fits table given as fixes is recognised
+FITS_TABLE_COLUMNS = ("track_id", "window_start", "status")
+
+
 def column_map(columns, where: str) -> dict:
     """``{source column: standard column}`` for the columns driftspec reads (first alias found wins)."""
     lower = {str(c).strip().lower(): c for c in columns}
@@ -75,7 +79,7 @@ def column_map(columns, where: str) -> dict:
                 rename[lower[a]] = std
                 break
     missing = [c for c in REQUIRED if c not in rename.values()]
-    if missing and {"track_id", "window_start", "status"} <= set(lower):
+    if missing and set(FITS_TABLE_COLUMNS) <= set(lower):
         raise InputError(f"{where}: this is a fits table (one row per window, as `driftspec fit` writes), not fixes; "
                          "give the file of position fixes (columns id, time, lat, lon)")
     if missing:

@@ -90,7 +90,8 @@ _PATH_TOLERANCE_DEG = 1e-3
 
 def _track(rng, days, lat0, lon0, u_mean, v_mean, theta):
     """Fine-grid times (days), latitude and longitude of one track (5-minute steps), its inertial oscillation
-    turning at the local inertial frequency of its own path (module docstring: two passes with the same draws)."""
+    turning at the local inertial frequency of its own path (module docstring: passes with the same draws until the
+    followed latitude settles)."""
     n = int(np.ceil(days * 86400.0 / _STEP_S)) + 1
     t = np.arange(n) * _STEP_S / 86400.0
     lat = lat0 + np.rad2deg(v_mean * t * 86400.0 / EARTH_RADIUS_M)  # the mean drift's, for the first pass
