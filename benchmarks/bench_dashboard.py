@@ -25,10 +25,14 @@ CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networki
                  "--disable-sync", "--no-first-run"]
 
 
-def _start_server():
+def _free_port() -> int:
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
-        port = s.getsockname()[1]
+        return s.getsockname()[1]
+
+
+def _start_server():
+    port = _free_port()
     proc = subprocess.Popen([sys.executable, "-m", "driftspec.app.cli", "serve", "--port", str(port)],
                             stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
     url = None
@@ -166,9 +170,7 @@ def bare_pages(n_sessions):
     """Seconds until ``n_sessions`` pages of :data:`_BARE_SERVER` opened together have all drawn their text."""
     from playwright.sync_api import sync_playwright
 
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        port = s.getsockname()[1]
+    port = _free_port()
     proc = subprocess.Popen([sys.executable, "-c", _BARE_SERVER, str(port)], stdout=subprocess.DEVNULL,
                             stderr=subprocess.DEVNULL)
     url = f"http://127.0.0.1:{port}/bare"
