@@ -24,6 +24,7 @@ import multiprocessing
 import os
 import threading
 import time
+import traceback
 from collections.abc import Callable
 
 import param
@@ -209,6 +210,18 @@ class Job(param.Parameterized):
         call_in_session(self._doc, apply)
 
     def _run(self):
+        """The job's thread. Whatever goes wrong is reported: a job never stays "running" without a word (the page
+        would wait for it for ever) and the traceback goes to the server's log."""
+        try:
+            self._work()
+        except Exception as exc:  # noqa: BLE001 - reported below, on the page and in the log
+            traceback.print_exc()
+            try:
+                self._publish(status="failed", message=f"{type(exc).__name__}: {exc}")
+            except Exception:  # noqa: BLE001 - the session is gone: nobody is waiting
+                traceback.print_exc()
+
+    def _work(self):
         t0 = time.perf_counter()
         out = [None] * len(self._windows)
         self._publish(status="running")

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import functools
 import threading
+import traceback
 import weakref
 
 import numpy as np
@@ -160,4 +161,7 @@ class TrackData:
 
     def _notify(self, job):
         for ex in list(self._subscribers):
-            call_in_session(ex.doc, functools.partial(ex.on_first_look, job))
+            try:
+                call_in_session(ex.doc, functools.partial(ex.on_first_look, job))
+            except Exception:  # noqa: BLE001 - one closed page must not stop the news reaching the others
+                traceback.print_exc()

@@ -25,6 +25,8 @@ from driftspec.app.dashboard import TABLE_DIGITS
 pytestmark = pytest.mark.browser
 CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking",
                  "--disable-component-update", "--disable-sync", "--no-first-run", "--disable-quic"]
+#: the running server's log (set by the ``server`` fixture), quoted when a page does not show what it should
+SERVER_LOG = None
 #: settings of `driftspec fit` equal to the dashboard's defaults
 CLI_DEFAULTS = ["--window-days", "30", "--model", "matern+inertial", "--estimator", "debiased", "--taper", "none",
                 "--inertial-frequency", "free"]  # the observation model: both decide per window
@@ -87,7 +89,8 @@ def server(served_dir, artifacts_dir):
     ``dashboard-server.log`` among the test artifacts (a pipe nobody reads would fill and stop the server)."""
     _browser_or_skip()
     port = _free_port()
-    log_path = artifacts_dir / "dashboard-server.log"
+    global SERVER_LOG
+    log_path = SERVER_LOG = artifacts_dir / "dashboard-server.log"
     log = open(log_path, "w")  # noqa: SIM115 - closed below
     proc = subprocess.Popen([sys.executable, "-m", "driftspec.app.cli", "serve", str(served_dir / "fixes.parquet"),
                              "--port", str(port)], stdout=log, stderr=subprocess.STDOUT, text=True)
@@ -131,8 +134,8 @@ def browser():
         b.close()
 
 
-def _new_page(browser):
-    ctx = browser.new_context(viewport={"width": 1500, "height": 1250})
+def _new_page(browser, width=1500, height=1250):
+    ctx = browser.new_context(viewport={"width": width, "height": height})
     pg = ctx.new_page()
     pg.console_errors = []
     pg.outside = []
@@ -154,8 +157,20 @@ def _open(page, url, table=True):
     page.goto(url, timeout=120_000)
     page.wait_for_selector("canvas", timeout=90_000)
     if table:
-        page.locator(".tabulator").first.wait_for(timeout=90_000)
+        try:
+            page.locator(".tabulator").first.wait_for(timeout=90_000)
+        except Exception as exc:  # noqa: BLE001 - failed below, with what the page and the server said
+            pytest.fail(f"the fit table did not appear within 90 s ({type(exc).__name__}).\n{_diagnosis(page)}")
     time.sleep(1.0)
+
+
+def _diagnosis(page):
+    """What a page shows of its fit and jobs, its console errors, and the end of the server's log: the message of
+    a failed wait, so that a failure on another machine says where it stopped."""
+    lines = [f"{css}: {_text(page, css, timeout=2)!r}" for css in (".ds-status", ".ds-message", ".ds-fitinfo")]
+    lines.append(f"console errors: {getattr(page, 'console_errors', 'not recorded')}")
+    log = SERVER_LOG.read_text().splitlines()[-40:] if SERVER_LOG is not None and SERVER_LOG.exists() else []
+    return "\n".join([*lines, "server log (last 40 lines):", *log])
 
 
 def _text(page, css, timeout=30.0):
@@ -333,8 +348,7 @@ def _overlap(a, b):
 def test_on_a_laptop_screen_the_fit_table_covers_no_spectrum(server, browser, artifacts_dir):
     # 1280 px: a common laptop width (common practice, no source); the two rotary spectra side by side and the fit
     # table must each be drawn whole, inside the window, neither over the other
-    ctx = browser.new_context(viewport={"width": 1280, "height": 900})
-    page = ctx.new_page()
+    ctx, page = _new_page(browser, 1280, 900)
     try:
         _open(page, server)
         table = page.locator(".tabulator").first
@@ -348,6 +362,7 @@ def test_on_a_laptop_screen_the_fit_table_covers_no_spectrum(server, browser, ar
         assert len(boxes) >= 2 and t is not None
         assert not any(_overlap(t, b) for b in boxes), (t, boxes)
         assert all(b["x"] >= 0 and b["x"] + b["width"] <= 1280 for b in [*boxes, t]), (t, boxes)
+        assert page.console_errors == [], page.console_errors
     finally:
         ctx.close()
 
