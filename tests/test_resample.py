@@ -66,3 +66,45 @@ def test_windows_carry_metadata():
     assert w.inertial_frequency_cpd == pytest.approx(-1.0027, abs=1e-4)
     assert w.start == pd.Timestamp("2030-01-01 00:00") and ws[1].start == pd.Timestamp("2030-01-06 00:00")
     assert np.isnan(w.z[0]) and w.coverage == pytest.approx(239 / 240)
+
+
+def test_a_regular_tracks_grid_keeps_its_fixes_phase():
+    rng = np.random.default_rng(3)
+    hours = np.arange(0, 72.0)
+    # hourly fixes at 17 minutes past: the grid is at 17 past and holds the fixes themselves
+    lat = 30 + 0.01 * rng.standard_normal(hours.size)
+    f = _fixes(hours + 17 / 60, lat=lat)
+    grid = regular_grid(f)
+    assert len(grid) == hours.size and (grid["time"].to_numpy() == f["time"].to_numpy()).all()
+    assert (grid["time"].dt.round("min").dt.minute == 17).all()
+    assert np.allclose(grid["lat"], lat) and (grid["fix_distance_s"] == 0).all()
+    # fixes jittering by up to 3 minutes around the whole hour keep the whole hour
+    jitter = rng.uniform(-3, 3, hours.size) / 60
+    assert (regular_grid(_fixes(hours[1:] + jitter[1:]))["time"].dt.minute == 0).all()
+    # fixes with no common phase (every 50 minutes) keep the whole hour, as do irregular ones at 17 past
+    assert (regular_grid(_fixes(np.arange(0, 72, 50 / 60)))["time"].dt.minute == 0).all()
+    assert (regular_grid(_fixes(np.arange(0, 72, 3.0) + 17 / 60))["time"].dt.minute == 0).all()
+
+
+def test_hourly_fixes_off_the_hour_fit_as_the_same_fixes_on_the_hour():
+    # The same simulated hourly fixes (fix error 20 m a component, HOURLY_ERROR_M), on the hour and 23 minutes
+    # past. The grid follows the fixes, so both give the same fits, and the fitted position noise is the fixes'
+    # error: a grid on the whole hour interpolated every sample between two fixes, and fitted about 12 m.
+    from driftspec.analysis import FitSpec, fit_window
+    from driftspec.analysis.simulation.scenarios import HOURLY_ERROR_M, generate_scenario
+    from driftspec.analysis.tracks.pipeline import load_velocities
+
+    fixes, _ = generate_scenario("satellite", n_tracks=4, days=60, seed=11, sampling="hourly")
+    spec = FitSpec(models=("matern+inertial",))
+    fitted = []
+    for shift in (pd.Timedelta(0), pd.Timedelta(minutes=23)):
+        vel, _, _ = load_velocities(fixes.assign(time=fixes["time"] + shift))
+        windows = list(iter_windows(vel, window_days=30))
+        fitted.append([fit_window(w, spec)[0] for w in windows])
+    on_hour, late = fitted
+    assert len(on_hour) == len(late) >= 8
+    for a, b in zip(on_hour, late):
+        for name in ("matern_alpha", "matern_damping", "position_noise"):
+            assert b.params[name] == pytest.approx(a.params[name], rel=1e-6), name
+    noise = np.median([r.params["position_noise"] for r in late])
+    assert 0.8 * HOURLY_ERROR_M < noise < 1.25 * HOURLY_ERROR_M, noise
