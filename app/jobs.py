@@ -176,6 +176,7 @@ class Job(param.Parameterized):
         self._cached = cached and kind == "rows"
         self._cancelled = threading.Event()
         self._private_pool = None
+        self._final = False  # the job's end (done, cancelled, failed) has been published
         self._thread = threading.Thread(target=self._run, daemon=True, name=f"job-{self.label}")
         with param.edit_constant(self):
             self.n_total = len(self._windows)
@@ -202,6 +203,8 @@ class Job(param.Parameterized):
 
     # ------------------------------------------------------------------ worker thread
     def _publish(self, **values):
+        if values.get("status") in ("done", "cancelled", "failed"):
+            self._final = True
         def apply():
             with param.edit_constant(self):
                 self.param.update(**values)
@@ -216,6 +219,8 @@ class Job(param.Parameterized):
             self._work()
         except Exception as exc:  # noqa: BLE001 - reported below, on the page and in the log
             traceback.print_exc()
+            if self._final:  # the job's end was already reported (what failed came after): not a second end
+                return
             try:
                 self._publish(status="failed", message=f"{type(exc).__name__}: {exc}")
             except Exception:  # noqa: BLE001 - the session is gone: nobody is waiting
@@ -262,7 +267,8 @@ class Job(param.Parameterized):
                     rate = done / (now - t0)
                     self._publish(n_done=done, rate=rate, eta_s=(len(self._windows) - done) / rate)
                 time.sleep(0.02)
-        except Exception as exc:  # noqa: BLE001 - a failed job says so on the page; the server goes on
+        except Exception as exc:  # noqa: BLE001 - a failed job says so on the page and in the log; the server goes on
+            traceback.print_exc()
             if not self.cancelled:
                 self._publish(status="failed", message=f"{type(exc).__name__}: {exc}")
             return

@@ -167,7 +167,13 @@ def _open(page, url, table=True):
 def _diagnosis(page):
     """What a page shows of its fit and jobs, its console errors, and the end of the server's log: the message of
     a failed wait, so that a failure on another machine says where it stopped."""
-    lines = [f"{css}: {_text(page, css, timeout=2)!r}" for css in (".ds-status", ".ds-message", ".ds-fitinfo")]
+    lines = []
+    for css in (".ds-status", ".ds-message", ".ds-fitinfo"):
+        try:
+            text = page.locator(f"{css} >> div").first.inner_text(timeout=2_000)
+        except Exception as exc:  # noqa: BLE001 - the page may be gone: say so and go on to the server's log
+            text = f"(not read: {type(exc).__name__})"
+        lines.append(f"{css}: {text!r}")
     lines.append(f"console errors: {getattr(page, 'console_errors', 'not recorded')}")
     log = SERVER_LOG.read_text().splitlines()[-40:] if SERVER_LOG is not None and SERVER_LOG.exists() else []
     return "\n".join([*lines, "server log (last 40 lines):", *log])

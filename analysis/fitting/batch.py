@@ -127,7 +127,9 @@ def _chunks(items, size: int):
 def run_settings(spec: FitSpec, windowing: dict | None = None) -> dict:
     """What decides a run's rows: the fit specification and the windowing/preparation settings (stored beside
     the results, so that a resume under other settings is refused instead of mixing two kinds of rows)."""
-    return {"fit": spec.to_dict(), "windows": dict(windowing or {})}
+    from ..tracks.resample import GRID_PHASE
+
+    return {"fit": spec.to_dict(), "windows": {**(windowing or {}), "grid_phase": GRID_PHASE}}
 
 
 def stored_settings(out) -> dict | None:

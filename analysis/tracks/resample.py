@@ -33,11 +33,17 @@ IRREGULAR_MASK_DISTANCE = pd.Timedelta(hours=24)
 DEFAULT_MASK_DISTANCE = "auto"
 #: a track is irregular when its mean fix interval exceeds this many grid steps
 IRREGULAR_INTERVAL_STEPS = 1.5
-#: a regular segment's grid follows its fixes' own phase within the step when the fixes keep one: the mean
-#: resultant length of their phases (as angles, 2 pi per step) is at least this: phases spread evenly over up to
-#: an eighth of a step either side (7.5 minutes for hourly fixes), or normally with a standard deviation up to
-#: 0.073 steps (4.4 minutes) (a threshold chosen here, no source)
-PHASE_COHERENCE = 0.9
+#: a regular segment's grid follows its fixes' own phase within the step when they keep one: the mean resultant
+#: length of their phases (as angles, 2 pi per step) is at least this, i.e. phases spread (normally) by up to about
+#: a fifth of a step (11 minutes for hourly fixes); more spread phases have no phase worth following (a rule of
+#: thumb chosen here, no source)
+PHASE_COHERENCE = 0.5
+#: a phase within this fraction of a step of the whole step is the whole step (one minute for hourly fixes: the
+#: weights of the two fixes a sample is interpolated between move by at most 1/60; a rule of thumb chosen here)
+PHASE_SNAP = 1 / 60
+#: the rule the grid's phase follows, stored with a run's settings (``driftspec fit --resume`` refuses to mix rows
+#: gridded under two rules): "fixes" = a regular segment keeps its fixes' phase
+GRID_PHASE = "fixes"
 
 
 def _segment_starts(ids: np.ndarray, t_ns: np.ndarray, split_gap_ns: int) -> np.ndarray:
@@ -47,25 +53,21 @@ def _segment_starts(ids: np.ndarray, t_ns: np.ndarray, split_gap_ns: int) -> np.
 
 
 def _segment_phase(t_ns: np.ndarray, seg_index: np.ndarray, n_seg: int, step_ns: int) -> np.ndarray:
-    """Per segment, the phase (ns, in ``[0, step)``) its fixes keep within the grid step, or 0 where they keep none
-    (mean resultant length of the phases below ``PHASE_COHERENCE``) or keep one no further from the whole step than
-    their own spread (the circular standard deviation): fixes jittering around the whole hour keep the whole hour.
-
-    The phase is the median of the fixes' phases taken about their circular mean, in whole nanoseconds, so fixes
-    that all keep one phase get exactly that phase (and the grid holds them exactly)."""
+    """Per segment, the phase (ns, in ``[0, step)``) its fixes keep within the grid step: the median of their
+    phases taken about their circular mean, in whole nanoseconds (fixes that all keep one phase get exactly that
+    phase, and the grid holds them exactly); 0 where they keep none (mean resultant length below
+    ``PHASE_COHERENCE``) or one within ``PHASE_SNAP`` of the whole step."""
     angle = 2 * np.pi * (t_ns % step_ns).astype(float) / step_ns
     n = np.bincount(seg_index, minlength=n_seg)
     c = np.bincount(seg_index, np.cos(angle), minlength=n_seg) / n
     s = np.bincount(seg_index, np.sin(angle), minlength=n_seg) / n
-    resultant = np.hypot(c, s)
     mean = np.round(np.arctan2(s, c) / (2 * np.pi) * step_ns).astype(np.int64)
     half = step_ns // 2
     about_mean = (t_ns - mean[seg_index] + half) % step_ns - half  # each fix's phase, from its segment's mean
-    phase = mean + np.round(pd.Series(about_mean).groupby(seg_index).median().to_numpy()).astype(np.int64)
-    from_whole = np.abs((phase + half) % step_ns - half)
-    spread = np.sqrt(-2 * np.log(np.clip(resultant, 1e-300, 1.0))) / (2 * np.pi) * step_ns
-    keep = (resultant >= PHASE_COHERENCE) & (from_whole > spread)
-    return np.where(keep, phase % step_ns, 0)
+    phase = (mean + np.round(pd.Series(about_mean).groupby(seg_index).median().to_numpy()).astype(np.int64)) % step_ns
+    from_whole = np.minimum(phase, step_ns - phase)
+    keep = (np.hypot(c, s) >= PHASE_COHERENCE) & (from_whole > PHASE_SNAP * step_ns)
+    return np.where(keep, phase, 0)
 
 
 def regular_grid(fixes: pd.DataFrame, step=DEFAULT_STEP, split_gap=DEFAULT_SPLIT_GAP,
@@ -78,12 +80,12 @@ def regular_grid(fixes: pd.DataFrame, step=DEFAULT_STEP, split_gap=DEFAULT_SPLIT
         Cleaned fixes sorted by (id, time), as returned by :func:`~driftspec.analysis.qc.clean_fixes`.
     step : pandas.Timedelta or str
         Grid step (default 1 hour). Grid times are whole multiples of ``step`` since the Unix epoch, plus, for a
-        segment of a track with regular fixes (mean interval up to 1.5 steps) that keep one phase within the step,
+        segment with regular fixes (mean interval up to 1.5 steps) that keep one phase within the step,
         that phase: hourly fixes at 17 minutes past each hour are gridded at 17 minutes past, so the grid holds the
         fixes themselves and their errors stay white, as the fitted observation model assumes (interpolating
         between two fixes halves the noise variance at mid-interval and correlates neighbours). The phase is the
         median of the fixes' times modulo ``step`` about their circular mean, used when their mean resultant length is
-        at least ``PHASE_COHERENCE`` and the phase is further from the whole step than the fixes' own spread
+        at least ``PHASE_COHERENCE`` and the phase is more than ``PHASE_SNAP`` of a step from the whole step
         (fixes jittering around the whole hour keep the whole hour).
     split_gap : pandas.Timedelta or str
         Tracks are split into segments where consecutive fixes are further apart than this.
@@ -127,8 +129,10 @@ def regular_grid(fixes: pd.DataFrame, step=DEFAULT_STEP, split_gap=DEFAULT_SPLIT
     counts = stops_track - starts_track
     mean_interval = (t_ns[stops_track - 1] - t_ns[starts_track]) / np.maximum(counts - 1, 1)
     irregular = mean_interval > IRREGULAR_INTERVAL_STEPS * step_ns
+    # the phase is a segment's own (a track's gaps longer than split_gap make it irregular as a whole, not its runs)
+    seg_interval = (t_ns[seg_last] - t_ns[seg_first]) / np.maximum(seg_last - seg_first, 1)
     phase = _segment_phase(t_ns, seg_index, len(seg_first), step_ns)
-    phase[irregular[track_of_fix[seg_first]]] = 0
+    phase[seg_interval > IRREGULAR_INTERVAL_STEPS * step_ns] = 0
     g0 = -(-(t_ns[seg_first] - phase) // step_ns)  # ceil to the segment's grid
     g1 = (t_ns[seg_last] - phase) // step_ns
     n_grid = np.maximum(g1 - g0 + 1, 0)

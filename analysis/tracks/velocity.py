@@ -70,7 +70,11 @@ def add_velocity(grid: pd.DataFrame, method: str = "central") -> pd.DataFrame:
         # report at midpoints; the last sample of each segment has no forward difference
         mid_t = t_ns.copy()
         mid_t[i] = t_ns[i] + (t_ns[i + 1] - t_ns[i]) // 2
-        mid_t[~same_next] = t_ns[~same_next] + (t_ns[1] - t_ns[0] if n > 1 else 0) // 2
+        # the last sample of a segment moves by half the grid step (the step of the grid's own neighbours, not the
+        # time between the first two rows, which may belong to two segments)
+        within = np.diff(t_ns)[same_next[:-1]]
+        step = int(np.median(within)) if within.size else 0
+        mid_t[~same_next] = t_ns[~same_next] + step // 2
         g["time"] = mid_t.astype("datetime64[ns]")
         from .geodesy import unit_vectors
 
