@@ -1047,6 +1047,10 @@ _ROUNDED = HTMLTemplateFormatter(
 PLAIN_NUMBERS = {"value": _ROUNDED, "std. error": _ROUNDED}
 
 
+#: the fit table while there is no fit to show: its header only
+_EMPTY_FIT_TABLE = pd.DataFrame(columns=["parameter", "value", "std. error", "unit"])
+
+
 class FitTable(View):
     """Parameters of the current window's fit, with status, goodness of fit and timing; under them, with the
     anisotropic setting, the anisotropic fit's test and diffusivity tensor.
@@ -1057,11 +1061,13 @@ class FitTable(View):
     def __init__(self, **params):
         super().__init__(**params)
         self.info = pn.pane.Markdown("", css_classes=["ds-fitinfo"], sizing_mode="stretch_width")
+        # the fit table is always shown, empty (its header only) while the window is being fitted: hidden until
+        # its fit arrived, it once stayed hidden for 90 s in a CI run (cause not found: the fit never reported, or
+        # the table built hidden was never drawn), and showing and hiding it made the page below jump at every refit
         self.params_table = pn.widgets.Tabulator(
-            pd.DataFrame(columns=["parameter", "value", "std. error", "unit"]), show_index=False, disabled=True,
-            layout="fit_data_fill", formatters=PLAIN_NUMBERS, sizing_mode="stretch_width",
-            name="fit-table",
-            visible=False)
+            _EMPTY_FIT_TABLE, show_index=False, disabled=True, layout="fit_data_fill", formatters=PLAIN_NUMBERS,
+            sizing_mode="stretch_width", name="fit-table")
+        self._table_filled = False
         self.anisotropic_info = pn.pane.Markdown("", css_classes=["ds-aniso-info"], sizing_mode="stretch_width",
                                                  visible=False)
         self.anisotropic_table = pn.widgets.Tabulator(
@@ -1075,6 +1081,9 @@ class FitTable(View):
     def _update(self, *_):
         ex = self.ex
         w, res = ex.current_window, ex.current_fit
+        if (w is None or res is None) and self._table_filled:
+            self.params_table.value = _EMPTY_FIT_TABLE
+            self._table_filled = False
         if w is None:
             self.info.object = "No window to fit."
         elif res is None:
@@ -1087,6 +1096,7 @@ class FitTable(View):
             rows.append({"parameter": "diffusivity", "value": res.diffusivity, "std. error": res.diffusivity_se,
                          "unit": "m2 s-1"})
             self.params_table.value = pd.DataFrame(rows)
+            self._table_filled = True
             colour = "#1f7a4a" if res.ok else "#b5522b"
             self.info.object = (
                 f"<span style='color:{colour}'>&#9679;</span> **status** `{res.status}` {res.message}  \n"
@@ -1094,7 +1104,6 @@ class FitTable(View):
                 f"window {w.start:%Y-%m-%d} → {w.end:%Y-%m-%d} · {res.n_valid}/{res.n_samples} valid · "
                 f"{res.n_freq} frequencies fitted · local f = {w.inertial_frequency_cpd:.3f} cpd · "
                 f"{res.stderr_method or 'no'} standard errors · refit {ex.refit_ms:.0f} ms")
-        self.params_table.visible = w is not None and res is not None
         text, rows = self._anisotropic() if w is not None and res is not None else (None, None)
         self.anisotropic_info.visible = text is not None
         if text is not None:

@@ -158,9 +158,10 @@ def _open(page, url, table=True):
     page.wait_for_selector("canvas", timeout=90_000)
     if table:
         try:
-            page.locator(".tabulator").first.wait_for(timeout=90_000)
+            # the fit table is on the page from the start, empty until the window's fit arrives
+            page.locator(".tabulator").first.locator(".tabulator-row").first.wait_for(timeout=90_000)
         except Exception as exc:  # noqa: BLE001 - failed below, with what the page and the server said
-            pytest.fail(f"the fit table did not appear within 90 s ({type(exc).__name__}).\n{_diagnosis(page)}")
+            pytest.fail(f"the fit table was not filled within 90 s ({type(exc).__name__}).\n{_diagnosis(page)}")
     time.sleep(1.0)
 
 
