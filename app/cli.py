@@ -223,11 +223,17 @@ def cmd_demo(args):
     return 0
 
 
+#: the one-line message for an input with no data rows (its name, then what there is nothing to do)
+_NO_ROWS = "driftspec: {}: no data rows (a header only), nothing to {}"
+
+
 def cmd_qc(args):
     from driftspec.analysis.io import read_fixes, write_fixes
     from driftspec.analysis.tracks.qc import clean_fixes
 
     raw = read_fixes(args.input)
+    if len(raw) == 0:
+        raise SystemExit(_NO_ROWS.format(args.input, "check"))
     fixes, report = clean_fixes(raw, max_speed=args.max_speed, source=str(args.input))
     write_fixes(fixes, args.out, attrs={"history": f"driftspec qc {args.input}"})
     if args.report:
@@ -323,6 +329,8 @@ def cmd_fit(args):
     if not out_dir.is_dir() or not os.access(out_dir, os.W_OK):
         raise SystemExit(f"driftspec: cannot write {args.out}: {out_dir} is not a writable folder")
     reader = FixReader(args.input)  # track-contiguous Parquet: read a million rows at a time
+    if reader.empty:  # before anything is written: an existing table at --out stays as it is
+        raise SystemExit(_NO_ROWS.format(args.input, "fit"))
     total = estimate_windows(reader.spans(), args.window_days, args.overlap)
     reports = []
     census = WindowCensus()
@@ -377,6 +385,8 @@ def cmd_pool(args):
         raise SystemExit(f"driftspec: --out must be a netCDF file (.nc), got {args.out}")
     region = _floats(args.region, 4, "--region") if args.region else None
     reader = FixReader(args.input)
+    if reader.empty:
+        raise SystemExit(_NO_ROWS.format(args.input, "pool"))
     reports, census = [], WindowCensus()
 
     path = Path(args.input)

@@ -234,3 +234,24 @@ def test_a_table_of_the_other_kind_is_named_as_such(tmp_path, demo_dir):
         lines = r.stderr.strip().splitlines()
         assert len(lines) == 1 and needle in lines[0] and str(args[1]) in lines[0], r.stderr
     assert not (tmp_path / "out.parquet").exists() and not (tmp_path / "map.nc").exists()
+
+
+def test_a_header_only_file_is_bad_input_and_replaces_nothing(tmp_path, demo_dir):
+    # a CSV with its header and no rows: one line naming it, exit status 2, for qc, fit and pool; a fits table
+    # already at --out is left exactly as it was (a run that can fit nothing must not replace earlier results)
+    empty = tmp_path / "empty.csv"
+    empty.write_text("id,time,lat,lon\n")
+    table = tmp_path / "fits.parquet"
+    fixes = pd.read_parquet(demo_dir / "fixes.parquet")
+    one = tmp_path / "one.csv"
+    fixes[fixes["id"].astype(str) == "TB31-0001"].to_csv(one, index=False)
+    first = run("fit", one, "--out", table, "--no-progress")
+    assert first.returncode == 0, first.stderr
+    before = table.read_bytes()
+    for args in (("qc", empty, "--out", tmp_path / "clean.csv"), ("fit", empty, "--out", table),
+                 ("pool", empty, "--out", tmp_path / "pooled.nc", "--window-days", 30, "--bin-deg", 5)):
+        r = run(*args)
+        lines = [x for x in r.stderr.splitlines() if x.strip()]
+        assert r.returncode == 2 and len(lines) == 1, (args[0], r.returncode, r.stderr)
+        assert "empty.csv" in lines[0] and "no data rows" in lines[0], lines
+    assert table.read_bytes() == before and not (tmp_path / "clean.csv").exists()

@@ -85,6 +85,11 @@ class FixReader:
             self._spans = span.reset_index()
         return self._spans
 
+    @property
+    def empty(self) -> bool:
+        """The source has no data rows (a header only)."""
+        return len(self._whole) == 0 if not self.streaming else len(self.spans()) == 0
+
     def __iter__(self):
         if not self.streaming:
             yield self._whole
