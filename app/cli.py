@@ -292,8 +292,13 @@ def _windowing(args) -> dict:
     if getattr(args, "max_freq", None) is not None and args.max_freq > nyquist * (1 + 1e-9):
         raise SystemExit(f"driftspec: --max-freq {args.max_freq:g} cpd is above the grid's Nyquist frequency "
                          f"({nyquist:g} cpd for --step {args.step})")
+    from driftspec.analysis.regional.maps import file_digest
+
+    # the input's content, by its digest (not its name: the same file moved still resumes; another file of the
+    # same name does not); a missing input is reported by its reader
+    digest = file_digest(args.input) if Path(args.input).is_file() else None
     return {"window_days": args.window_days, "overlap": args.overlap, "min_coverage": args.min_coverage,
-            **_prep_options(args).to_dict()}
+            **_prep_options(args).to_dict(), "input_sha256": digest}
 
 
 def _window_stream(args, reader, reports: list, census):

@@ -1,6 +1,7 @@
 """The command line as a user runs it: real subprocesses, real files, exit codes."""
 
 import json
+import shutil
 import subprocess
 import sys
 
@@ -193,6 +194,17 @@ def test_resume_under_other_settings_is_refused(tmp_path, demo_dir):
     pd.testing.assert_frame_equal(pd.read_parquet(out), before)
     same = run(*base, "--window-days", 30, "--resume")
     assert same.returncode == 0, same.stderr
+    pd.testing.assert_frame_equal(pd.read_parquet(out), before)
+    # other fixes under the same settings are refused too; the same fixes copied elsewhere resume
+    other = tmp_path / "other.parquet"
+    fixes = pd.read_parquet(demo_dir / "fixes.parquet")
+    fixes[fixes["id"].astype(str) != "TB31-0001"].to_parquet(other)
+    r = run("fit", other, *base[2:], "--window-days", 30, "--resume")
+    assert r.returncode == 2 and "windows.input_sha256" in r.stderr, r.stderr[-1500:]
+    copy = tmp_path / "copy.parquet"
+    shutil.copy(demo_dir / "fixes.parquet", copy)
+    moved = run("fit", copy, *base[2:], "--window-days", 30, "--resume")
+    assert moved.returncode == 0, moved.stderr
     pd.testing.assert_frame_equal(pd.read_parquet(out), before)
 
 
