@@ -205,6 +205,7 @@ class Job(param.Parameterized):
     def _publish(self, **values):
         if values.get("status") in ("done", "cancelled", "failed"):
             self._final = True
+
         def apply():
             with param.edit_constant(self):
                 self.param.update(**values)

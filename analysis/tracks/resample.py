@@ -126,9 +126,6 @@ def regular_grid(fixes: pd.DataFrame, step=DEFAULT_STEP, split_gap=DEFAULT_SPLIT
     seg_first = np.flatnonzero(seg_new)
     seg_last = np.append(seg_first[1:], len(ids)) - 1
     track_of_fix = np.cumsum(np.concatenate([[True], ~same])) - 1
-    counts = stops_track - starts_track
-    mean_interval = (t_ns[stops_track - 1] - t_ns[starts_track]) / np.maximum(counts - 1, 1)
-    irregular = mean_interval > IRREGULAR_INTERVAL_STEPS * step_ns
     # the phase is a segment's own (a track's gaps longer than split_gap make it irregular as a whole, not its runs)
     seg_interval = (t_ns[seg_last] - t_ns[seg_first]) / np.maximum(seg_last - seg_first, 1)
     phase = _segment_phase(t_ns, seg_index, len(seg_first), step_ns)
@@ -164,6 +161,9 @@ def regular_grid(fixes: pd.DataFrame, step=DEFAULT_STEP, split_gap=DEFAULT_SPLIT
     d_prev = np.where(seg_index[prv] == grid_seg, np.abs(x_grid - x_fix[prv]), np.inf)
     nearest = np.minimum(d_next, d_prev)
     if auto_mask:  # per track, from its mean fix interval
+        counts = stops_track - starts_track
+        mean_interval = (t_ns[stops_track - 1] - t_ns[starts_track]) / np.maximum(counts - 1, 1)
+        irregular = mean_interval > IRREGULAR_INTERVAL_STEPS * step_ns
         per_track = np.where(irregular, IRREGULAR_MASK_DISTANCE.value, REGULAR_MASK_DISTANCE.value)
         mask_of_sample = per_track[track_of_fix[seg_first]][grid_seg]
     else:
