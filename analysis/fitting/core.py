@@ -257,9 +257,7 @@ def _irregularly_observed(family, prep, plan: WindowPlan, context, operator, sha
             plan.fix_times_days, plan.dt_days, prep.n, valid=prep.valid, operator=operator, taper=prep.taper,
             position_error_m=plan.fix_error_m, noise=noise, band_index=prep.band_index,
             inertial_frequency_cpd=context.inertial_frequency_cpd)
-    obs = shared["operator"]
-    typical = float(np.sqrt(np.mean(plan.fix_error_m**2))) if plan.fix_error_m is not None else None
-    return IrregularlyObserved(family, obs, fixed_sigma_m=typical)
+    return IrregularlyObserved(family, shared["operator"])
 
 
 def fit_prepared(family: ModelFamily, prep: PreparedWindow, context: FitContext, estimator: Estimator, *,

@@ -346,13 +346,8 @@ class IrregularObservation:
         self.span_days = float(s_used[-1] - s_used[0])
 
         # --- a_j(k) and the diagonal kernel sum_j |a_j(k)|^2 ------------------------------------------
-        dense = self.weights.toarray()
-        a = scipy.fft.fft(self.taper[:, None] * dense, axis=0)[self.band_index]  # (band, fixes), 1/day
-        if demean:  # each fix's mean weight over the valid samples, where the taper lives, times the taper's transform
-            mean = (valid / valid.sum()) @ dense
-            a -= np.outer(scipy.fft.fft(self.taper)[self.band_index], mean)
-        self._a = np.ascontiguousarray(a)
-        a2 = np.abs(a) ** 2
+        self._a = np.ascontiguousarray(self._fourier_weights(self.band_index))  # (band, fixes), 1/day
+        a2 = np.abs(self._a) ** 2
         self._diag = a2.sum(axis=1)  # sum_j |a_j(k)|^2, day^-2
         #: ``E_noise[I_k]`` per unit variance (m^2) of white position noise on each component
         self.noise_kernel = dt * 2.0 / SECONDS_PER_DAY**2 * self._diag
@@ -423,6 +418,34 @@ class IrregularObservation:
             return [(-_INERTIAL_MAX_CPD - _PEAK_MARGIN_CPD, _INERTIAL_MAX_CPD + _PEAK_MARGIN_CPD)]
         lo, hi = Inertial().bounds(FitContext(dt_days=dt, inertial_frequency_cpd=float(inertial_frequency_cpd)))[1]
         return [(-_LOW_BAND_CPD, _LOW_BAND_CPD), (lo - _PEAK_MARGIN_CPD, hi + _PEAK_MARGIN_CPD)]
+
+    def _fourier_weights(self, index=None):
+        """``a_j(k)``: how fix ``j`` enters the tapered, demeaned transform of the window's velocities at the Fourier
+        frequencies ``index`` (FFT order; default all), shape (frequencies, fixes used), 1/day."""
+        dense = self.weights.toarray()
+        index = slice(None) if index is None else index
+        a = scipy.fft.fft(self.taper[:, None] * dense, axis=0)[index]
+        if self.demean:  # each fix's mean weight over the valid samples (where the taper lives) x the taper's transform
+            mean = (self.valid / self.valid.sum()) @ dense
+            a -= np.outer(scipy.fft.fft(self.taper)[index], mean)
+        return a
+
+    @functools.cached_property
+    def _noise_power_all(self):
+        """``|a_j(k)|^2`` at every Fourier frequency (FFT order) x fixes used, day^-2 (the band's rows are in
+        ``_a``; these are for drawing the noise beyond the band)."""
+        a = self._fourier_weights()
+        return a.real**2 + a.imag**2
+
+    def noise_periodogram(self, position_error_m) -> np.ndarray:
+        """``E[I_k]`` of white position noise alone, in (m/s)^2/cpd, at every Fourier frequency of the window (FFT
+        order, ``n`` values): errors ``position_error_m`` (m on each component; one value, or one per fix used,
+        ``fix_index``) carried through the interpolation between fixes, the difference, the taper and the mean's
+        removal. Inside the band this is the noise term of :meth:`expected_in_band`; beyond it, what the window's
+        velocities hold of the noise (far below a difference of independent grid positions: interpolated positions
+        between fixes are smooth)."""
+        sigma = np.broadcast_to(np.asarray(position_error_m, float), (self.fix_index.size,))
+        return self.dt_days * 2.0 / SECONDS_PER_DAY**2 * (self._noise_power_all @ sigma**2)
 
     # ------------------------------------------------------------------------------------------------
     def _power(self, step, qmax):
@@ -641,10 +664,9 @@ class IrregularlyObserved(ModelFamily):
 
     simulable = False
 
-    def __init__(self, base: ModelFamily, operator: IrregularObservation, fixed_sigma_m: float | None = None):
+    def __init__(self, base: ModelFamily, operator: IrregularObservation):
         self.base = base
         self.operator = operator
-        self.fixed_sigma_m = fixed_sigma_m  # a typical given error (m), for drawing the noise floor
         self.name = base.name
         self._p = len(base.parameters)
         # given per-fix errors keep their fix-by-fix structure, with one fitted scale for their level (reported
@@ -670,14 +692,18 @@ class IrregularlyObserved(ModelFamily):
         return self.base._spectral_density(theta[: self._p], freq_cpd, context)
 
     def noise_spectral_density(self, theta, freq_cpd, context):
-        """White position noise seen through a central difference of the grid, for plotting a noise floor."""
+        """The fitted position noise's expected periodogram at the window's Fourier frequency nearest each of
+        ``freq_cpd``, through the interpolation between the window's fixes
+        (:meth:`IrregularObservation.noise_periodogram`), for drawing a noise floor beside the periodogram;
+        (m/s)^2/cpd, zeros without a noise model."""
+        op = self.operator
+        theta = np.asarray(theta, float)
+        k = np.rint(np.asarray(freq_cpd, float) * op.n * op.dt_days).astype(np.int64) % op.n
         if self._scaled:
-            sigma = float(theta[-1]) * (self.fixed_sigma_m or 0.0)
-        else:
-            sigma = float(theta[self._p]) if len(theta) > self._p else (self.fixed_sigma_m or 0.0)
-        if sigma <= 0:
-            return np.zeros_like(np.asarray(freq_cpd, float))
-        return PositionNoise(_central()).spectral_density([max(sigma, POSITION_NOISE.lower)], freq_cpd, context)
+            return theta[-1] ** 2 * op.noise_periodogram(op.sigma_used)[k]
+        if op.noise == "fitted":
+            return op.noise_periodogram(max(float(theta[self._p]), POSITION_NOISE.lower))[k]
+        return np.zeros(k.shape)
 
     def _zero_frequency_density(self, theta, context):
         return self.base._zero_frequency_density(theta[: self._p], context)
@@ -708,9 +734,3 @@ class IrregularlyObserved(ModelFamily):
             ratio = p[top] / np.maximum(op.noise_kernel[top], 1e-300) if top.any() else np.array([2500.0])
             guess.append([float(np.clip(np.sqrt(0.5 * np.median(ratio)), 5.0, 2000.0))])
         return np.concatenate(guess)
-
-
-def _central():
-    from ..models.observation import OPERATORS
-
-    return OPERATORS["central"]
