@@ -318,7 +318,7 @@ def _window_stream(args, reader, reports: list, census):
 
 
 def cmd_fit(args):
-    from driftspec.analysis.fitting.batch import describe_choices, run_fits, summarise
+    from driftspec.analysis.fitting.batch import NoWindows, describe_choices, run_fits, summarise
     from driftspec.analysis.io import FixReader
     from driftspec.analysis.tracks.pipeline import estimate_windows
     from driftspec.analysis.tracks.qc import merge_reports
@@ -343,6 +343,10 @@ def cmd_fit(args):
         df = run_fits(_window_stream(args, reader, reports, census), args.out, spec, workers=args.workers,
                       dask_address=args.dask, resume=args.resume,
                       progress=not args.no_progress, total=total, chunk_size=args.chunk_size, windowing=windowing)
+    except NoWindows as exc:  # why, with numbers, then one line; whatever was at --out stays
+        print(merge_reports(reports, str(args.input)).summary(), file=sys.stderr)
+        print(census.explain(args.min_coverage), file=sys.stderr)
+        raise SystemExit(f"driftspec: {exc}") from None
     except ValueError as exc:
         if args.debug:
             raise
@@ -372,6 +376,7 @@ def cmd_map(args):
 
 
 def cmd_pool(args):
+    from driftspec.analysis.fitting.batch import NoWindows
     from driftspec.analysis.io import FixReader
     from driftspec.analysis.regional.maps import file_digest
     from driftspec.analysis.regional.pooled import pool_map
@@ -402,6 +407,10 @@ def cmd_pool(args):
                       min_windows=args.min_windows, workers=args.workers, dask_address=args.dask,
                       resume=args.resume, progress=not args.no_progress, windowing=windowing, source=source,
                       command=" ".join(["driftspec", *sys.argv[1:]]))
+    except NoWindows as exc:  # why, with numbers, then one line; whatever was at --out stays
+        print(merge_reports(reports, str(args.input)).summary(), file=sys.stderr)
+        print(census.explain(args.min_coverage), file=sys.stderr)
+        raise SystemExit(f"driftspec: {exc}") from None
     except ValueError as exc:
         if args.debug:
             raise

@@ -211,16 +211,24 @@ def test_resume_under_other_settings_is_refused(tmp_path, demo_dir):
 def test_no_windows_says_why_with_numbers(tmp_path, demo_dir):
     # fixes a day or two apart leave almost every hourly grid sample further than a 3 h mask distance from a fix:
     # every candidate window is below the coverage limit, and the run says so with the coverage it saw and what to
-    # try (the default mask for such sparse tracks bridges a day; the test asks for 3 h)
+    # try (the default mask for such sparse tracks bridges a day; the test asks for 3 h). Nothing is fitted, so
+    # nothing is written: the table already at --out (from an earlier run) stays byte for byte, no parts are left,
+    # and the exit status is 2 with one line saying so
     fixes = pd.read_parquet(demo_dir / "fixes.parquet")
     sparse = fixes.groupby("id", observed=True).nth(slice(None, None, 30)).reset_index(drop=True)
     path = tmp_path / "sparse.csv"
     sparse.to_csv(path, index=False)
-    r = run("fit", path, "--out", tmp_path / "f.parquet", "--window-days", 30, "--workers", 1, "--no-progress",
-            "--mask-distance", "3h")
-    assert r.returncode == 0, r.stderr
-    assert "no windows fitted" in r.stdout
+    out = tmp_path / "f.parquet"
+    earlier = fixes[fixes["id"] == fixes["id"].iloc[0]]
+    earlier.to_csv(tmp_path / "one.csv", index=False)
+    first = run("fit", tmp_path / "one.csv", "--out", out, "--window-days", 30, "--workers", 1, "--no-progress")
+    assert first.returncode == 0, first.stderr
+    before = out.read_bytes()
+    r = run("fit", path, "--out", out, "--window-days", 30, "--workers", 1, "--no-progress", "--mask-distance", "3h")
+    assert r.returncode == 2, r.stderr
+    assert r.stderr.strip().splitlines()[-1] == f"driftspec: no windows to fit; {out} is left as it was"
     assert "below --min-coverage 0.8" in r.stderr and "--mask-distance" in r.stderr
+    assert out.read_bytes() == before and not list(tmp_path.glob("*.partial"))
 
 
 def test_a_table_of_the_other_kind_is_named_as_such(tmp_path, demo_dir):

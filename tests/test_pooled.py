@@ -7,6 +7,7 @@ Simulations: complex velocity from driftspec.analysis.simulate (circulant embedd
 drifter at its own latitude (so its own inertial frequency) and with its own amplitudes.
 """
 
+import re
 import subprocess
 import sys
 
@@ -261,6 +262,17 @@ def test_command_line(tmp_path, demo_dir):
     for bad in (["--bin-deg", 0], ["--bin-deg", 5, "--region", "1,2"], ["--bin-deg", 5, "--overlap", 1.5]):
         r = run("pool", demo_dir / "fixes.parquet", "--window-days", 30, "--out", out, *bad)
         assert r.returncode == 2 and len(r.stderr.strip().splitlines()) == 1, r.stderr
+    # a region no window falls in (the South Atlantic, far from every demo track): nothing to pool, so the map already
+    # at --out stays byte for byte, exit status 2, and the count of windows outside agrees with the window census
+    before = out.read_bytes()
+    r = run("pool", demo_dir / "fixes.parquet", "--window-days", 60, "--bin-deg", 10, "--out", out, "--workers", 1,
+            "--no-progress", "--region=-30,-40,0,-20")
+    assert r.returncode == 2, r.stderr
+    outside = re.search(r"no windows to pool inside the region \((\d+) windows, all outside it\); (.+) is left as it "
+                        r"was$", r.stderr.strip().splitlines()[-1])
+    kept = re.search(r"windows: (\d+) of \d+ candidate windows kept", r.stderr)
+    assert outside and kept and int(outside.group(1)) == int(kept.group(1)) > 0, r.stderr
+    assert outside.group(2) == str(out) and out.read_bytes() == before and not list(tmp_path.glob("*.partial"))
 
 
 @pytest.mark.slow

@@ -147,6 +147,10 @@ def stored_settings(out) -> dict | None:
     return None
 
 
+class NoWindows(ValueError):
+    """A run given no windows at all (every track too short or too sparse): nothing is written."""
+
+
 def run_fits(windows: Iterable[Window], out, spec: FitSpec, *, workers: int = 1, dask_address=None,
              resume: bool = False, chunk_size: int = 64, progress: bool = True, stop_after_chunks=None,
              total: int | None = None, windowing: dict | None = None):
@@ -175,6 +179,9 @@ def run_fits(windows: Iterable[Window], out, spec: FitSpec, *, workers: int = 1,
 
     Raises
     ------
+    NoWindows
+        When ``windows`` holds none: the table at ``out`` is left as it was (the caller says why, e.g. from a
+        :class:`~driftspec.analysis.tracks.windows.WindowCensus`).
     ValueError
         For invalid run options, an output folder that cannot be written, or a resume whose stored settings differ
         from these (the message names the settings that differ).
@@ -229,6 +236,15 @@ def run_fits(windows: Iterable[Window], out, spec: FitSpec, *, workers: int = 1,
         written += 1
 
     # windows are consumed lazily and at most a few chunks are in flight, so memory stays bounded
+    seen = 0
+
+    def counted(ws):
+        nonlocal seen
+        for w in ws:
+            seen += 1
+            yield w
+
+    windows = counted(windows)
     if spec.keep_all:
         names = [spec.model_name(m) for m in spec.candidate_models]
         todo = (w for w in windows if not all((w.track_id, w.start, m) in skip for m in names))
@@ -260,6 +276,11 @@ def run_fits(windows: Iterable[Window], out, spec: FitSpec, *, workers: int = 1,
         bar.close()
     if stopped:
         return None
+    if seen == 0:  # nothing to fit: the table at `out` stays as it is, and no parts are left behind
+        if not resume:
+            shutil.rmtree(parts, ignore_errors=True)
+        raise NoWindows(f"no windows to fit; {out} is left as it was" if out.exists()
+                        else f"no windows to fit; {out} not written")
     return combine(out, units, settings, include_out=not replace)
 
 
@@ -394,6 +415,5 @@ def describe_choices(df: pd.DataFrame) -> str:
     return "chosen from the data:\n" + "\n".join(lines)
 
 
-__all__ = ["column_units", "combine", "describe_choices", "fit_chunk", "run_fits", "run_settings", "stored_settings",
-           "summarise",
-           "window_rows"]
+__all__ = ["NoWindows", "column_units", "combine", "describe_choices", "fit_chunk", "run_fits", "run_settings",
+           "stored_settings", "summarise", "window_rows"]

@@ -1312,13 +1312,18 @@ def pool_map(windows: Iterable, spec: FitSpec | None = None, *, bin_deg: float =
         For each shared parameter ``P``: ``P`` and ``P_se``; ``n_windows`` (standard name
         ``number_of_observations``), ``n_tracks``, ``heterogeneity_statistic``, ``heterogeneity_df``,
         ``heterogeneity_pvalue`` and ``pooled_status`` per bin; ``lat_bnds``/``lon_bnds``.
+
+    Raises
+    ------
+    driftspec.analysis.fitting.batch.NoWindows
+        When no window falls in a bin (inside ``region``): nothing is written and the file at ``out`` stays.
     """
     if progress:  # tqdm.auto warns on import in a notebook without ipywidgets, even for a disabled bar
         from tqdm.auto import tqdm
     else:
         from tqdm import tqdm
 
-    from ..fitting.batch import run_settings, stored_settings
+    from ..fitting.batch import NoWindows, run_settings, stored_settings
 
     spec = FitSpec() if spec is None else spec
     if not (np.isfinite(bin_deg) and bin_deg > 0):
@@ -1348,7 +1353,21 @@ def pool_map(windows: Iterable, spec: FitSpec | None = None, *, bin_deg: float =
             shutil.rmtree(parts)
         parts.mkdir(exist_ok=True)
         (parts / "settings.json").write_text(json.dumps(settings, sort_keys=True))
-    bins, lat_e, lon_e = bin_windows(windows, bin_deg, region)
+    seen = 0
+
+    def counted(ws):
+        nonlocal seen
+        for w in ws:
+            seen += 1
+            yield w
+
+    bins, lat_e, lon_e = bin_windows(counted(windows), bin_deg, region)
+    if not bins:  # nothing to pool: whatever is at `out` stays, and no parts are left behind
+        if parts is not None and not resume:
+            shutil.rmtree(parts, ignore_errors=True)
+        where = f" inside the region ({seen} windows, all outside it)" if region is not None and seen else ""
+        kept = f"{out} is left as it was" if out is not None and out.exists() else "nothing written"
+        raise NoWindows(f"no windows to pool{where}; {kept}")
     rows = {}
     if parts is not None and resume:
         for f in parts.glob("bin-*.json"):
