@@ -382,6 +382,7 @@ def cmd_pool(args):
     from driftspec.analysis.regional.pooled import pool_map
     from driftspec.analysis.tracks.qc import merge_reports
     from driftspec.analysis.tracks.windows import WindowCensus
+    from driftspec.analysis.wording import counted
 
     spec = fit_spec_from_args(args)
     windowing = _windowing(args)
@@ -420,7 +421,7 @@ def cmd_pool(args):
     if n_windows == 0:
         print(census.explain(args.min_coverage), file=sys.stderr)
     print(f"pooled fits in {ds.attrs['pooled_cells']} of {int((ds['n_windows'] > 0).sum())} cells "
-          f"({n_windows} windows); wrote {args.out}")
+          f"({counted(n_windows, 'window')}); wrote {args.out}")
     return 0
 
 

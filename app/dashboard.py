@@ -39,6 +39,7 @@ from driftspec.analysis.regional import default_params, grid_fits
 from driftspec.analysis.regional.pooled import pool_fit
 from driftspec.analysis.tracks.pipeline import load_velocities
 from driftspec.analysis.tracks.windows import iter_windows
+from driftspec.analysis.wording import counted
 
 from .geo import (
     bin_cells,
@@ -959,9 +960,12 @@ class Summary(View):
         when = f" ({cur.start:%Y-%m-%d} to {cur.end:%Y-%m-%d})" if cur is not None else ""
         region = ""
         if st.region:
-            region = f" · region {box_label(st.region)} ({len(ex.tracks_in_region())} tracks pass through it)"
+            passing = counted(len(ex.tracks_in_region()), "track")
+            region = f" · region {box_label(st.region)} ({passing} pass{'es' if passing.startswith('1 ') else ''} " \
+                     "through it)"
         return (f"**Track {st.track}** · window {min(st.window, max(len(ws) - 1, 0)) + 1} of {len(ws)}{when} · "
-                f"{len(ws)} windows of {st.window_days:g} days · model {st.model} · {st.estimator} estimator" + region)
+                f"{counted(len(ws), 'window')} of {st.window_days:g} days · model {st.model} · {st.estimator} "
+                "estimator" + region)
 
     def __panel__(self):
         return self._pane
@@ -980,7 +984,7 @@ class VelocityView(LiveView):
     def _draw(self):
         ex, st = self.ex, self.state
         ws = ex.windows()
-        self._fig.show(f"{st.track}: velocity; {len(ws)} windows of {st.window_days:g} days",
+        self._fig.show(f"{st.track}: velocity; {counted(len(ws), 'window')} of {st.window_days:g} days",
                        ex.track_velocity(st.track), ws, ex.current())
 
 
@@ -1049,6 +1053,16 @@ PLAIN_NUMBERS = {"value": _ROUNDED, "std. error": _ROUNDED}
 
 #: the fit table while there is no fit to show: its header only
 _EMPTY_FIT_TABLE = pd.DataFrame(columns=["parameter", "value", "std. error", "unit"])
+#: units as the README's data dictionary writes them (the files keep UDUNITS strings, in which a frequency in cycles
+#: per day and a damping rate per day are both "day-1")
+_READABLE_UNITS = {"m2 s-2": "m²/s²", "m2 s-1": "m²/s", "day-1": "1/day", "degree": "degrees"}
+
+
+def readable_unit(name: str, unit: str) -> str:
+    """The unit of column ``name`` for people: ``cpd`` for frequencies, ``1/day`` for damping rates, ``m²/s``..."""
+    if unit == "day-1" and "frequency" in name:
+        return "cpd"
+    return _READABLE_UNITS.get(unit, unit)
 
 
 class FitTable(View):
@@ -1092,9 +1106,10 @@ class FitTable(View):
             self.info.object = f"Fitting window {w.start:%Y-%m-%d} → {w.end:%Y-%m-%d}{slow} …"
         else:
             rows = [{"parameter": p.name, "value": res.params[p.name], "std. error": res.stderr[p.name],
-                     "unit": p.unit} for p in res.family.parameters] if res.family is not None else []
+                     "unit": readable_unit(p.name, p.unit)} for p in res.family.parameters] \
+                if res.family is not None else []
             rows.append({"parameter": "diffusivity", "value": res.diffusivity, "std. error": res.diffusivity_se,
-                         "unit": "m2 s-1"})
+                         "unit": readable_unit("diffusivity", "m2 s-1")})
             self.params_table.value = pd.DataFrame(rows)
             self._table_filled = True
             colour = "#1f7a4a" if res.ok else "#b5522b"
@@ -1123,18 +1138,19 @@ class FitTable(View):
         if a.family is None or not a.params or not np.all(np.isfinite(list(a.params.values()))):
             return f"**anisotropic fit** `{a.status}` {a.message}", None
         k = a.tensor
-        rows = [{"quantity": n, "value": a.params[n], "std. error": a.stderr.get(n, np.nan), "unit": a.units.get(n, "")}
+        rows = [{"quantity": n, "value": a.params[n], "std. error": a.stderr.get(n, np.nan),
+                 "unit": readable_unit(n, a.units.get(n, ""))}
                 for n in ("anisotropy", "anisotropy_angle_deg")]
         rows += [{"quantity": "isotropy p-value", "value": a.isotropy_pvalue, "std. error": np.nan, "unit": "1"},
-                 {"quantity": "diffusivity K_uu", "value": k[0, 0], "std. error": np.nan, "unit": "m2 s-1"},
-                 {"quantity": "diffusivity K_vv", "value": k[1, 1], "std. error": np.nan, "unit": "m2 s-1"},
-                 {"quantity": "diffusivity K_uv", "value": k[0, 1], "std. error": np.nan, "unit": "m2 s-1"},
+                 {"quantity": "diffusivity K_uu", "value": k[0, 0], "std. error": np.nan, "unit": "m²/s"},
+                 {"quantity": "diffusivity K_vv", "value": k[1, 1], "std. error": np.nan, "unit": "m²/s"},
+                 {"quantity": "diffusivity K_uv", "value": k[0, 1], "std. error": np.nan, "unit": "m²/s"},
                  {"quantity": "diffusivity_major", "value": a.diffusivity_major, "std. error": a.diffusivity_major_se,
-                  "unit": "m2 s-1"},
+                  "unit": "m²/s"},
                  {"quantity": "diffusivity_minor", "value": a.diffusivity_minor, "std. error": a.diffusivity_minor_se,
-                  "unit": "m2 s-1"},
+                  "unit": "m²/s"},
                  {"quantity": "diffusivity_angle_deg", "value": a.diffusivity_angle_deg,
-                  "std. error": a.diffusivity_angle_deg_se, "unit": "degree"}]
+                  "std. error": a.diffusivity_angle_deg_se, "unit": "degrees"}]
         chosen = getattr(a, "selected", False)
         text = (f"**anisotropic fit** `{a.status}` · isotropy p = {a.isotropy_pvalue:.3g} "
                 f"({'rejected at 1 %: the anisotropic model is selected' if chosen else 'not rejected at 1 %'}) · "
@@ -1165,7 +1181,8 @@ class RegionFit(View):
                     f"No window of {st.window_days:g} days has its mean position in the region {box}.")
             return pn.pane.Markdown(text, css_classes=["ds-region-fit"])
         head = (f"**Pooled fit of the region** {box} · `{r.status}` {r.message}  \n"
-                f"{r.n_windows} windows of {r.n_tracks} tracks ({r.n_skipped} not fittable) · model {r.model}, "
+                f"{counted(r.n_windows, 'window')} of {counted(r.n_tracks, 'track')} ({r.n_skipped} not fittable) · "
+                f"model {r.model}, "
                 f"shared shape, amplitudes per window · {r.stderr_method or 'no'} standard errors  \n"
                 f"heterogeneity between {r.heterogeneity_groups or 'groups'}: statistic "
                 f"{r.heterogeneity_statistic:.3f}, df {r.heterogeneity_df:g}, p = {r.heterogeneity_pvalue:.3g}")
@@ -1174,7 +1191,8 @@ class RegionFit(View):
         info = pn.pane.Markdown(head, css_classes=["ds-region-fit"])
         if not r.params:
             return info
-        rows = [{"parameter": k, "value": v, "std. error": r.stderr.get(k, np.nan), "unit": r.units.get(k, "")}
+        rows = [{"parameter": k, "value": v, "std. error": r.stderr.get(k, np.nan),
+                 "unit": readable_unit(k, r.units.get(k, ""))}
                 for k, v in r.params.items()]
         table = pn.widgets.Tabulator(pd.DataFrame(rows), show_index=False, disabled=True, layout="fit_data_fill",
                                      formatters=PLAIN_NUMBERS, sizing_mode="stretch_width", name="region-fit-table",
@@ -1210,7 +1228,7 @@ class TrackSummary(View):
             pts = hv.Scatter((mid, ok[p]), "time", p)
             plots.append((bars * pts).opts(hv.opts.Scatter(size=6, color=COLOURS["ccw"]),
                                            hv.opts.Overlay(responsive=True, height=190, fontscale=fs, title=p)))
-        text = (f"{len(ok)} ok of {len(df)} windows · {self.state.window_days:g}-day windows · "
+        text = (f"{len(ok)} ok of {counted(len(df), 'window')} · {self.state.window_days:g}-day windows · "
                 f"model {self.state.model}")
         return pn.Column(pn.pane.Markdown(text, css_classes=["ds-track-summary"]),
                          pn.pane.HoloViews(hv.Layout(plots).cols(2), sizing_mode="stretch_width"),

@@ -12,7 +12,7 @@ import pytest
 ROOT = Path(__file__).resolve().parents[1] / "analysis"
 
 #: the pipeline's stages, in the order the data passes them (modules at the top of ``analysis`` are stage 0)
-STAGES = {"conventions": 0, "errors": 0, "runs": 0, "io": 1, "tracks": 2, "models": 3, "spectral": 4,
+STAGES = {"conventions": 0, "errors": 0, "runs": 0, "wording": 0, "io": 1, "tracks": 2, "models": 3, "spectral": 4,
           "simulation": 5, "fitting": 6, "regional": 7}
 
 

@@ -24,6 +24,7 @@ import numpy as np
 import pandas as pd
 
 from ..runs import run_bounds, track_codes, wrap_lon
+from ..wording import counted
 from .geodesy import great_circle_distance_m
 
 REASONS = ("missing_value", "unparseable_time", "unparseable_value", "latitude_range",
@@ -63,8 +64,9 @@ class QCReport:
 
     def summary(self) -> str:
         lost = ", ".join(f"{k} {v}" for k, v in self.dropped.items() if v) or "none"
-        return (f"{self.input_rows} rows in, {self.kept_rows} kept in {len(self.per_track)} tracks; "
-                f"dropped: {lost}; {self.reordered_rows} rows re-sorted")
+        tracks = counted(len(self.per_track), "track")
+        return (f"{counted(self.input_rows, 'row')} in, {self.kept_rows} kept in {tracks}; "
+                f"dropped: {lost}; {counted(self.reordered_rows, 'row')} re-sorted")
 
 
 def _spike_flags(ids, t_s, lat, lon, max_speed):

@@ -15,6 +15,7 @@ import pandas as pd
 
 from ..conventions import inertial_frequency_cpd
 from ..runs import circular_mean_lon, run_bounds, track_codes
+from ..wording import counted
 from .resample import IRREGULAR_INTERVAL_STEPS
 
 
@@ -128,15 +129,16 @@ class WindowCensus:
 
     def explain(self, min_coverage: float) -> str:
         """One paragraph: why no (or few) windows were kept, with numbers, and what to try."""
-        lines = [f"windows: {self.kept} of {self.candidates} candidate windows kept, from {self.segments} track "
-                 f"segments"]
+        lines = [f"windows: {self.kept} of {counted(self.candidates, 'candidate window')} kept, from "
+                 f"{counted(self.segments, 'track segment')}"]
         if self.short_segments:
-            lines.append(f"{self.short_segments} segments are shorter than one window, so not fitted (the longest "
-                         f"segment of all: {self.longest_segment_days:.1f} days): try a shorter --window-days or a "
-                         "longer --split-gap")
+            n = self.short_segments
+            lines.append(f"{counted(n, 'segment')} {'is' if n == 1 else 'are'} shorter than one window, so not fitted "
+                         f"(the longest segment of all: {self.longest_segment_days:.1f} days): try a shorter "
+                         "--window-days or a longer --split-gap")
         if self.low_coverage:
             cov = np.asarray(self.low_coverage)
-            lines.append(f"{cov.size} windows had coverage below --min-coverage {min_coverage:g} (median "
+            lines.append(f"{counted(cov.size, 'window')} had coverage below --min-coverage {min_coverage:g} (median "
                          f"{np.median(cov):.2f}, best {cov.max():.2f}): sparse or irregular fixes leave grid samples "
                          "missing; try a longer --mask-distance (e.g. 12h), a longer --step, or a lower --min-coverage")
         if self.segments == 0:
