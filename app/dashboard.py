@@ -1052,10 +1052,30 @@ PLAIN_NUMBERS = {"value": _ROUNDED, "std. error": _ROUNDED}
 
 
 #: the fit table while there is no fit to show: its header only
-_EMPTY_FIT_TABLE = pd.DataFrame(columns=["parameter", "value", "std. error", "unit"])
+_EMPTY_FIT_TABLE = pd.DataFrame(columns=["parameter", "value", "std. error", "unit", "note"])
 #: units as the README's data dictionary writes them (the files keep UDUNITS strings, in which a frequency in cycles
 #: per day and a damping rate per day are both "day-1")
 _READABLE_UNITS = {"m2 s-2": "m²/s²", "m2 s-1": "m²/s", "day-1": "1/day", "degree": "degrees"}
+
+
+def bound_notes(res) -> dict:
+    """``{parameter: note}`` for the parameters a fit ended on: which bound, and its value (a standard error there
+    is no standard error), and a position noise below what the band detects."""
+    notes = {}
+    if res.family is None:
+        return notes
+    if "position noise below detection" in (res.message or ""):
+        notes["position_noise"] = "below detection"
+    if res.status != "at_bound":
+        return notes
+    named = res.message.split("at bound: ", 1)[-1].split(";")[0]
+    on = {n.strip() for n in named.split(",")}
+    for p, (lo, hi) in zip(res.family.parameters, res.family.bounds(res.context)):
+        if p.name in on:
+            v = res.params[p.name]
+            lower = abs(v - lo) <= abs(hi - v)
+            notes[p.name] = f"at {'lower' if lower else 'upper'} bound ({lo if lower else hi:g})"
+    return notes
 
 
 def readable_unit(name: str, unit: str) -> str:
@@ -1105,11 +1125,14 @@ class FitTable(View):
                 else ""
             self.info.object = f"Fitting window {w.start:%Y-%m-%d} → {w.end:%Y-%m-%d}{slow} …"
         else:
-            rows = [{"parameter": p.name, "value": res.params[p.name], "std. error": res.stderr[p.name],
-                     "unit": readable_unit(p.name, p.unit)} for p in res.family.parameters] \
-                if res.family is not None else []
+            notes = bound_notes(res)
+            # a curvature at a bound is no standard error: the note says which bound instead (downloads keep the number)
+            rows = [{"parameter": p.name, "value": res.params[p.name],
+                     "std. error": np.nan if "bound" in notes.get(p.name, "") else res.stderr[p.name],
+                     "unit": readable_unit(p.name, p.unit), "note": notes.get(p.name, "")}
+                    for p in res.family.parameters] if res.family is not None else []
             rows.append({"parameter": "diffusivity", "value": res.diffusivity, "std. error": res.diffusivity_se,
-                         "unit": readable_unit("diffusivity", "m2 s-1")})
+                         "unit": readable_unit("diffusivity", "m2 s-1"), "note": ""})
             self.params_table.value = pd.DataFrame(rows)
             self._table_filled = True
             colour = "#1f7a4a" if res.ok else "#b5522b"

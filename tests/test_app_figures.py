@@ -385,3 +385,26 @@ def test_a_fits_table_given_at_start_is_the_explorers(demo_dir):
     ex._cancel.set()
     assert len(ex.all_fits) == len(fits) >= 2
     np.testing.assert_array_equal(ex.all_fits["matern_alpha"].to_numpy(), fits["matern_alpha"].to_numpy())
+
+
+def test_fit_table_notes_name_each_parameter_a_fit_ended_on_and_its_bound():
+    # an oscillation fitted to a simulated Matérn series without one (seed 1) runs its variance, frequency and damping
+    # onto bounds: the table's note names exactly the parameters the fit's status names, each with the bound it sits
+    # on, which is where the fit ended (to 1e-5 of the parameter's range); the background's parameters carry none
+    from driftspec.analysis import fit_series, simulate
+    from driftspec.app.dashboard import bound_notes, readable_unit
+
+    z = simulate("matern", [0.02, 1.2, 1.0], n=1440, dt=3600.0, seed=1)
+    res = fit_series(z, 3600.0, model="matern+inertial", latitude=30.0)
+    assert res.status == "at_bound"
+    named = {n.strip() for n in res.message.split("at bound: ")[1].split(";")[0].split(",")}
+    notes = bound_notes(res)
+    assert set(notes) == named and {"inertial_variance", "inertial_damping"} <= named
+    for p, (lo, hi) in zip(res.family.parameters, res.family.bounds(res.context)):
+        if p.name in notes:
+            side, value = re.fullmatch(r"at (lower|upper) bound \((\S+)\)", notes[p.name]).groups()
+            assert abs(res.params[p.name] - float(value)) <= 1e-5 * (hi - lo), (p.name, notes[p.name])
+    # units as the README's data dictionary writes them
+    assert [readable_unit(n, u) for n, u in (("inertial_frequency", "day-1"), ("inertial_damping", "day-1"),
+                                              ("diffusivity", "m2 s-1"), ("matern_variance", "m2 s-2"))] == \
+        ["cpd", "1/day", "m²/s", "m²/s²"]
