@@ -120,7 +120,8 @@ class RotarySpectrumFigure:
     the main tidal frequencies."""
 
     #: the legend's entries (counterclockwise panel), in order
-    LEGEND = ("periodogram", "multitaper", "fitted model", "model beyond fitted band", "position-noise floor")
+    LEGEND = ("periodogram", "multitaper", "fitted model", "model beyond fitted band", "position-noise floor",
+              "edge of fitted band")
 
     def __init__(self, colours: dict, ink: str, tides: dict, fontscale: float = 1.0):
         from bokeh.plotting import figure
@@ -152,7 +153,7 @@ class RotarySpectrumFigure:
                                                       line_width=1.2 * fontscale, line_dash="dotted"),
                  "position-noise floor": fig.line("f", "y", source=src["floor"], color="#8a8a8a", line_width=1.5,
                                                   line_dash="dashdot")}
-            fig.vspan("f", source=src["edge"], color="#888888", line_width=1)
+            r["edge of fitted band"] = fig.vspan("f", source=src["edge"], color="#888888", line_width=1)
             fig.vspan("f", source=src["inertial"], color=colours["inertial"], line_width=1.5, line_dash="dotdash")
             fig.vspan("f", source=src["tides"], color=colours["tide"], line_width=0.8, line_dash="dotted")
             fig.text("f", "y", text="name", source=src["tides"], text_color=colours["tide"],
@@ -232,7 +233,7 @@ class RotarySpectrumFigure:
                 fig.x_range.update(start=a, end=b, reset_start=a, reset_end=b)
         ylim = (low / 5 if pos.size else 1e-8, top * 3)
         self.y_range.update(start=ylim[0], end=ylim[1], reset_start=ylim[0], reset_end=ylim[1])
-        for k in ("fitted model", "model beyond fitted band"):
+        for k in ("fitted model", "model beyond fitted band", "edge of fitted band"):
             self.legend_items[k].visible = bool(has_fit)
         self.legend_items["position-noise floor"].visible = any_floor
 
