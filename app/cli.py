@@ -95,9 +95,10 @@ def _add_spec_options(p: argparse.ArgumentParser) -> None:
                    help="fit |f| <= this, cpd (default, per window: a fraction of the grid's Nyquist frequency that "
                         "depends on the observation model, and at most 3/4 of the Nyquist frequency of the mean fix "
                         "interval)")
-    p.add_argument("--observation", choices=["none", "differenced", "differenced+noise", "irregular"], default=None,
-                   help="observation model (default, per window: irregular where the fixes are sparser than the "
-                        "grid, differenced+noise for other velocities from positions, none for measured u, v)")
+    p.add_argument("--observation", choices=["auto", "none", "differenced", "differenced+noise", "irregular"],
+                   default="auto",
+                   help="observation model (auto, the default, per window: irregular where the fixes are sparser "
+                        "than the grid, differenced+noise for other velocities from positions, none for measured u, v)")
     p.add_argument("--position-noise", default="auto", metavar="auto|fit|input|METRES",
                    help="auto (default): the input's per-fix position_error_m with a fitted scale where fixes are "
                         "irregular, a fitted white noise otherwise; fit: always fitted; input: the input's errors; "

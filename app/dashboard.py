@@ -87,7 +87,8 @@ MAP_WIDTH = int(MAP_HEIGHT * MAP_RATIO)
 def spec_of(st: ExplorerState) -> FitSpec:
     """The fit specification of a state's settings (anisotropic fits need the debiased estimator: with another
     estimator the anisotropic setting waits, and the fit table says so)."""
-    return FitSpec(models=(st.model,), estimator=st.estimator, band="auto" if st.auto_band else st.max_freq,
+    return FitSpec(models="auto" if st.model == "auto" else (st.model,), estimator=st.estimator,
+                   band="auto" if st.auto_band else st.max_freq,
                    observation=st.observation, taper=st.taper, inertial_frequency=st.inertial,
                    anisotropic=st.anisotropic and st.estimator == "debiased")
 
@@ -241,10 +242,14 @@ class Explorer(param.Parameterized):
         return w, res
 
     def _store_fit(self, key, results):
-        """Cache a window's fit: the model's FitResult, and its anisotropic fit when there is one."""
+        """Cache a window's fit: the model's FitResult (with model ``auto`` the selected candidate's, or the one the
+        selected anisotropic fit was made from), and its anisotropic fit when there is one."""
         results = results if isinstance(results, list) else [results]
-        self._fit_cache[key] = results[0]
-        self._aniso_cache[key] = next((r for r in results if isinstance(r, AnisotropicFit)), None)
+        aniso = next((r for r in results if isinstance(r, AnisotropicFit)), None)
+        iso = [r for r in results if not isinstance(r, AnisotropicFit)]
+        base = aniso.model.removeprefix("anisotropic_") if aniso is not None and aniso.selected else None
+        self._fit_cache[key] = next((r for r in iso if r.selected or r.model == base), iso[0])
+        self._aniso_cache[key] = aniso
 
     # ------------------------------------------------------------------ pooled fits
     def pooled_spec(self) -> FitSpec:
@@ -486,8 +491,7 @@ class Explorer(param.Parameterized):
             parts.append(f"first look, every window: {fl.n_done}/{fl.n_total}" + _rate(fl))
         if not parts and self.track_fits is not None and len(self.track_fits):
             tf = self.track_fits
-            if "model" in tf and (tf["model"] == self.state.model).any():
-                tf = tf[tf["model"] == self.state.model]  # not the rows of the anisotropic version
+            tf = model_rows(tf, self.state.model)
             parts.append(f"track fitted: {int((tf['status'] == 'ok').sum())}/{len(tf)} ok")
         lead = next((j for j in (self._jobs["all"], fl if not self._user_fits else None, self._jobs["map"],
                                  self._jobs["track"])
@@ -676,6 +680,14 @@ def _rate(job) -> str:
 
 
 # ====================================================================== what the views draw (arrays)
+def model_rows(df: pd.DataFrame, model: str) -> pd.DataFrame:
+    """The rows of a fits table that the model setting shows: the model's own (not those of its anisotropic version);
+    with model ``auto`` every row (a table made with it holds each window's selected fit only, whichever it is)."""
+    if not len(df) or "model" not in df or model == "auto":
+        return df
+    return df[df["model"] == model] if (df["model"] == model).any() else df
+
+
 def model_velocity_covariance(aniso: AnisotropicFit, model: str, inertial: str) -> np.ndarray:
     """The 2 x 2 covariance of the ocean velocity ``(u, v)`` (m^2/s^2) under an anisotropic fit: the fitted
     parameters of the model (observation noise left out) in its anisotropic version, at lag zero."""
@@ -891,7 +903,9 @@ class TrackMap(LiveView):
         if (aniso is None or window is None or aniso.family is None or not st.anisotropic
                 or not np.all(np.isfinite(list(aniso.params.values())))):
             return (None,)
-        sd_major, sd_minor, angle = variance_ellipse_axes(model_velocity_covariance(aniso, st.model, st.inertial))
+        model = aniso.model.removeprefix("anisotropic_")  # with model auto, the selected candidate's version
+        inertial = "follow-latitude" if "inertial_frequency_offset" in aniso.params else "free"  # as fitted (auto)
+        sd_major, sd_minor, angle = variance_ellipse_axes(model_velocity_covariance(aniso, model, inertial))
         (x0, x1), _ = self.ex.data.extent
         scale = 0.06 * (x1 - x0) / max(sd_major, 1e-12)  # the major axis spans an eighth of the map
         ring = ellipse_ring(self.ex.data.proj, float(window.lon), float(window.lat), scale * sd_major,
@@ -1136,8 +1150,9 @@ class FitTable(View):
             self.params_table.value = pd.DataFrame(rows)
             self._table_filled = True
             colour = "#1f7a4a" if res.ok else "#b5522b"
+            chosen = f"**model** {res.selection}  \n" if self.state.model == "auto" and res.selection else ""
             self.info.object = (
-                f"<span style='color:{colour}'>&#9679;</span> **status** `{res.status}` {res.message}  \n"
+                chosen + f"<span style='color:{colour}'>&#9679;</span> **status** `{res.status}` {res.message}  \n"
                 f"**goodness of fit** p = {res.gof_pvalue:.3f} · log L = {res.loglik:.1f} · AIC = {res.aic:.1f}  \n"
                 f"window {w.start:%Y-%m-%d} → {w.end:%Y-%m-%d} · {res.n_valid}/{res.n_samples} valid · "
                 f"{res.n_freq} frequencies fitted · local f = {w.inertial_frequency_cpd:.3f} cpd · "
@@ -1234,13 +1249,16 @@ class TrackSummary(View):
         df = self.ex.track_fits
         if df is None:
             return pn.pane.Markdown("Fitting the whole track in the background …", css_classes=["ds-track-summary"])
-        if len(df) and "model" in df and (df["model"] == self.state.model).any():
-            df = df[df["model"] == self.state.model]  # the model's rows (not those of its anisotropic version)
+        df = model_rows(df, self.state.model)
         ok = df[df["status"] == "ok"] if len(df) else df
         if not len(ok):
             return pn.pane.Markdown("No ok fits on this track.", css_classes=["ds-track-summary"])
         fs = self.fontscale()
-        fam = get_family(self.state.model, self.state.inertial)
+        # with model auto the windows' selected candidates differ: the richer family's parameters, where fitted
+        # (and with inertial auto the parameters of either version: those present are plotted)
+        inertial = "follow-latitude" if "inertial_frequency_offset" in ok and "inertial_frequency" not in ok else "free"
+        fam = get_family("matern+inertial" if self.state.model == "auto" else self.state.model,
+                         inertial if self.state.inertial == "auto" else self.state.inertial)
         mid = ok["window_start"] + (ok["window_end"] - ok["window_start"]) / 2
         plots = []
         for p in [n for n in fam.names if n in ok][:3] + ["diffusivity"]:

@@ -26,7 +26,9 @@ class ExplorerState(param.Parameterized):
     window = param.Integer(default=0, bounds=(0, None), doc="Index of the current window along the track")
     window_days = param.Number(default=30.0, bounds=(5.0, 180.0), step=1.0, doc="Window length, days")
     overlap = param.Number(default=0.5, bounds=(0.0, 0.9), step=0.05, doc="Overlap of consecutive windows")
-    model = param.Selector(default="matern+inertial", objects=list(FAMILIES), doc="Model family")
+    model = param.Selector(default="matern+inertial", objects=[*FAMILIES, "auto"],
+                           doc="Model family; auto, as `driftspec fit` by default: matern and matern+inertial fitted "
+                               "to every window and one selected (the fit table says which, and why)")
     estimator = param.Selector(default="debiased", objects=["debiased", "whittle", "exact"])
     observation = param.Selector(default="auto", objects=["auto", "irregular", "differenced+noise", "differenced",
                                                           "none"],
@@ -37,8 +39,10 @@ class ExplorerState(param.Parameterized):
     max_freq = param.Number(default=6.0, bounds=(0.25, 24.0), step=0.25,
                             doc="Highest fitted frequency magnitude, cpd (when the automatic band is off)")
     taper = param.Selector(default="none", objects=["none", "hann", "dpss"])
-    inertial = param.Selector(default="free", objects=["free", "follow-latitude"],
-                              doc="Inertial frequency: fitted constant, or following the latitude")
+    inertial = param.Selector(default="free", objects=["free", "follow-latitude", "auto"],
+                              doc="Inertial frequency: fitted constant, or following the latitude; auto, as "
+                                  "`driftspec fit` by default: following it where the window's latitude span moves "
+                                  "the local inertial frequency by more than the frequency resolution 1/T")
     anisotropic = param.Boolean(default=False, doc="Also fit the anisotropic version of the model, test isotropy "
                                                    "and give the diffusivity tensor (debiased estimator only)")
     color_by = param.Selector(default="speed", objects=["speed", "time"], doc="Colour of the track map")

@@ -47,7 +47,10 @@ RICH = MATERN + ["inertial_variance", "inertial_frequency", "inertial_damping"]
 def test_a_candidate_at_a_bound_is_not_chosen_over_a_simpler_one_inside_its_bounds():
     simple = _fake("matern", MATERN, -100.0)
     rich = _fake("matern+inertial", RICH, -50.0, status="at_bound", inertial_frequency=-1.0, inertial_damping=0.2)
+    rich.message = "at bound: inertial_damping"
     assert select([simple, rich], 30.0) == 0 and simple.selected and not rich.selected
+    # and the reason says so (it used to call the Matérn "the simplest candidate")
+    assert simple.selection == "matern: matern+inertial at_bound (at bound: inertial_damping)", simple.selection
     # the same likelihoods with the richer fit inside its bounds: kept (D = 100, a resolved peak)
     rich.status = "ok"
     assert select([simple, rich], 30.0) == 1 and "likelihood ratio" in rich.selection

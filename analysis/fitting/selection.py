@@ -79,7 +79,8 @@ def select(results, window_days: float) -> int:
         best, reason = fitted[0], "no candidate converged inside its bounds; the simplest is reported"
     else:
         best = pool[0]
-        skipped = [results[i] for i in order if i not in pool and len(results[i].params) < len(results[best].params)]
+        # the candidates left out for not converging inside their bounds, whether simpler or richer: say so
+        skipped = [results[i] for i in order if i not in pool]
         reason = (f"{results[best].model}: " + "; ".join(f"{r.model} {r.status} ({r.message})" for r in skipped)
                   if skipped else f"{results[best].model}: the simplest candidate")
         for i in pool[1:]:
