@@ -230,6 +230,13 @@ def test_no_windows_says_why_with_numbers(tmp_path, demo_dir):
     assert r.stderr.strip().splitlines()[-1] == f"driftspec: no windows to fit; {out} is left as it was"
     assert "below --min-coverage 0.8" in r.stderr and "--mask-distance" in r.stderr
     assert out.read_bytes() == before and not list(tmp_path.glob("*.partial"))
+    # the same with --resume to a new table: nothing written, and no parts left that would refuse a later resume
+    # under other settings
+    fresh = tmp_path / "g.parquet"
+    r = run("fit", path, "--out", fresh, "--window-days", 30, "--workers", 1, "--no-progress", "--mask-distance", "3h",
+            "--resume")
+    assert r.returncode == 2 and r.stderr.strip().endswith(f"no windows to fit; {fresh} not written"), r.stderr
+    assert not fresh.exists() and not list(tmp_path.glob("*.partial"))
 
 
 def test_a_table_of_the_other_kind_is_named_as_such(tmp_path, demo_dir):

@@ -44,7 +44,7 @@ def test_every_reason_is_counted(tmp_path):
     assert d["latitude_range"] == 1
     assert d["longitude_range"] == 1
     assert d["unparseable_value"] == 1
-    assert report.reordered_rows == 2      # 07:00 before 06:00 is sorted, not dropped: those two fixes move
+    assert report.reordered_rows == 1      # 07:00 before 06:00 is sorted, not dropped: one fix out of order
     assert report.input_rows == 17
     assert report.kept_rows + sum(d.values()) == report.input_rows
     a = fixes[fixes["id"] == "A"]
@@ -187,9 +187,13 @@ def test_tracks_listed_out_of_order_are_not_counted_as_resorted():
     rows = [(k, tt, 10.0 + 0.01 * i, -140.0) for i, tt in enumerate(t) for k in ("B", "A", "C")]
     fixes, report = clean_fixes(read_fixes(pd.DataFrame(rows, columns=["id", "time", "lat", "lon"])))
     assert report.reordered_rows == 0 and report.kept_rows == 12
-    # B's first fix moved to the end of the file: B reads 01:00, 02:00, 03:00, 00:00, and the sort puts each of its
-    # four fixes in another place within B; A and C keep theirs
+    # B's first fix moved to the end of the file: B reads 01:00, 02:00, 03:00, 00:00, one fix out of order however
+    # long the track (a 1000-fix track counted 1000 before)
     late = rows[1:] + rows[:1]
     fixes, report = clean_fixes(read_fixes(pd.DataFrame(late, columns=["id", "time", "lat", "lon"])))
-    assert report.reordered_rows == 4
+    assert report.reordered_rows == 1
     assert list(fixes.loc[fixes["id"] == "B", "time"]) == list(t)
+    long = pd.DataFrame({"id": "D", "time": pd.date_range("2030-01-01", periods=1000, freq="h"),
+                         "lat": 10.0, "lon": -140.0})
+    _, report = clean_fixes(read_fixes(pd.concat([long.iloc[1:], long.iloc[:1]], ignore_index=True)))
+    assert report.reordered_rows == 1 and report.kept_rows == 1000

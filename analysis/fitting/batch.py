@@ -216,6 +216,7 @@ def run_fits(windows: Iterable[Window], out, spec: FitSpec, *, workers: int = 1,
     skip = done_keys(out, include_out=not replace) if resume else set()
     if not resume and parts.exists():
         shutil.rmtree(parts)
+    had_parts = parts.exists()  # an interrupted run's, kept for this resume
     parts.mkdir(parents=True, exist_ok=True)
     if replace:
         (parts / REPLACES_FILE).write_text("")
@@ -238,13 +239,13 @@ def run_fits(windows: Iterable[Window], out, spec: FitSpec, *, workers: int = 1,
     # windows are consumed lazily and at most a few chunks are in flight, so memory stays bounded
     seen = 0
 
-    def counted(ws):
+    def tally(ws):
         nonlocal seen
         for w in ws:
             seen += 1
             yield w
 
-    windows = counted(windows)
+    windows = tally(windows)
     if spec.keep_all:
         names = [spec.model_name(m) for m in spec.candidate_models]
         todo = (w for w in windows if not all((w.track_id, w.start, m) in skip for m in names))
@@ -277,7 +278,7 @@ def run_fits(windows: Iterable[Window], out, spec: FitSpec, *, workers: int = 1,
     if stopped:
         return None
     if seen == 0:  # nothing to fit: the table at `out` stays as it is, and no parts are left behind
-        if not resume:
+        if not had_parts:  # (an interrupted run's parts stay for a resume with its settings)
             shutil.rmtree(parts, ignore_errors=True)
         raise NoWindows(f"no windows to fit; {out} is left as it was" if out.exists()
                         else f"no windows to fit; {out} not written")

@@ -1324,6 +1324,7 @@ def pool_map(windows: Iterable, spec: FitSpec | None = None, *, bin_deg: float =
         from tqdm import tqdm
 
     from ..fitting.batch import NoWindows, run_settings, stored_settings
+    from ..wording import counted
 
     spec = FitSpec() if spec is None else spec
     if not (np.isfinite(bin_deg) and bin_deg > 0):
@@ -1338,7 +1339,7 @@ def pool_map(windows: Iterable, spec: FitSpec | None = None, *, bin_deg: float =
     settings = run_settings(spec, {**(windowing or {}), "bin_deg": float(bin_deg), "region": region and list(region),
                                    "model": None if model is None else spec.model_name(model), "share": share,
                                    "min_windows": int(min_windows)})
-    parts = None
+    parts, had_parts = None, False
     if out is not None:
         out = Path(out)
         if not out.parent.is_dir() or not os.access(out.parent, os.W_OK):
@@ -1351,21 +1352,23 @@ def pool_map(windows: Iterable, spec: FitSpec | None = None, *, bin_deg: float =
                                  "or with the same settings")
         elif parts.exists():
             shutil.rmtree(parts)
+        had_parts = parts.exists()  # an interrupted run's, kept for this resume
         parts.mkdir(exist_ok=True)
         (parts / "settings.json").write_text(json.dumps(settings, sort_keys=True))
     seen = 0
 
-    def counted(ws):
+    def tally(ws):
         nonlocal seen
         for w in ws:
             seen += 1
             yield w
 
-    bins, lat_e, lon_e = bin_windows(counted(windows), bin_deg, region)
+    bins, lat_e, lon_e = bin_windows(tally(windows), bin_deg, region)
     if not bins:  # nothing to pool: whatever is at `out` stays, and no parts are left behind
-        if parts is not None and not resume:
+        if parts is not None and not had_parts:  # (an interrupted run's parts stay for a resume)
             shutil.rmtree(parts, ignore_errors=True)
-        where = f" inside the region ({seen} windows, all outside it)" if region is not None and seen else ""
+        where = (f" inside the region ({counted(seen, 'window')}, all outside it)" if region is not None and seen
+                 else "")
         kept = f"{out} is left as it was" if out is not None and out.exists() else "nothing written"
         raise NoWindows(f"no windows to pool{where}; {kept}")
     rows = {}

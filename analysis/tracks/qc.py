@@ -11,8 +11,8 @@ Each dropped row gets exactly one reason, checked in this order:
 ``speed_spike``         the fix implies a speed above ``max_speed`` to both neighbours (or to its only
                         neighbour at a track end); the offending fix is dropped, not its neighbours
 
-Out-of-order times are sorted, not dropped; the fixes the time sort moves within their track are counted
-as ``reordered_rows`` (tracks may come in any order).
+Out-of-order times are sorted, not dropped; ``reordered_rows`` counts the fixes earlier than a fix listed before
+them in their own track (tracks may come in any order).
 The report satisfies ``kept_rows + sum(dropped.values()) == input_rows``.
 """
 
@@ -153,8 +153,12 @@ def clean_fixes(raw: pd.DataFrame, max_speed: float = DEFAULT_MAX_SPEED, source:
         reordered = 0  # already in (id, time) order, as written files usually are: no sort needed
     else:
         order = np.lexsort((t_ns, codes))
-        # fixes moved by the time sort within their own track (tracks listed in any order move no fix)
-        reordered = int(np.count_nonzero(order != np.argsort(codes, kind="stable")))
+        # fixes out of time order: those earlier than a fix listed before them in their own track (one fix listed
+        # late counts once, however long its track; tracks may come in any order)
+        by_track = np.argsort(codes, kind="stable")
+        t_g = pd.Series(t_ns[by_track])
+        latest_before = t_g.groupby(codes[by_track]).cummax().groupby(codes[by_track]).shift()
+        reordered = int((t_g < latest_before).sum())
         rows, codes, t_ns = rows[order], codes[order], t_ns[order]
     dup = np.zeros(len(rows), dtype=bool)
     dup[1:] = (codes[1:] == codes[:-1]) & (t_ns[1:] == t_ns[:-1])
