@@ -421,7 +421,7 @@ def cmd_pool(args):
     n_windows = int(ds["n_windows"].sum())
     if n_windows == 0:
         print(census.explain(args.min_coverage), file=sys.stderr)
-    print(f"pooled fits in {ds.attrs['pooled_cells']} of {int((ds['n_windows'] > 0).sum())} cells "
+    print(f"pooled fits in {ds.attrs['pooled_cells']} of {counted(int((ds['n_windows'] > 0).sum()), 'cell')} "
           f"({counted(n_windows, 'window')}); wrote {args.out}")
     return 0
 

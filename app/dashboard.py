@@ -565,7 +565,7 @@ class Explorer(param.Parameterized):
             self.state.param.update(**good)
         ws = self.windows()
         if "window" in good and ws and self.state.window >= len(ws):
-            bad.append(f"window={good['window']} (this track has {len(ws)} windows)")
+            bad.append(f"window={good['window']} (this track has {counted(len(ws), 'window')})")
             self.state.window = len(ws) - 1
         if bad:
             self._set(message="Ignored invalid link values: " + ", ".join(bad))
@@ -1073,23 +1073,31 @@ _READABLE_UNITS = {"m2 s-2": "m²/s²", "m2 s-1": "m²/s", "day-1": "1/day", "de
 
 
 def bound_notes(res) -> dict:
-    """``{parameter: note}`` for the parameters a fit ended on: which bound, and its value (a standard error there
-    is no standard error), and a position noise below what the band detects."""
+    """``{parameter: note}`` for the parameters a fit (window, anisotropic or pooled) ended on: which bound and its
+    value where the fit knows its family's bounds (a standard error there is no standard error), and a position
+    noise below what the band detects."""
     notes = {}
-    if res.family is None:
-        return notes
     if "position noise below detection" in (res.message or ""):
         notes["position_noise"] = "below detection"
-    if res.status != "at_bound":
+    if res.status != "at_bound" or "at bound: " not in (res.message or ""):
         return notes
-    named = res.message.split("at bound: ", 1)[-1].split(";")[0]
-    on = {n.strip() for n in named.split(",")}
-    for p, (lo, hi) in zip(res.family.parameters, res.family.bounds(res.context)):
-        if p.name in on:
-            v = res.params[p.name]
-            lower = abs(v - lo) <= abs(hi - v)
-            notes[p.name] = f"at {'lower' if lower else 'upper'} bound ({lo if lower else hi:g})"
+    on = {n.strip() for n in res.message.split("at bound: ", 1)[1].split(";")[0].split(",")}
+    family = getattr(res, "family", None)
+    bounds = dict(zip(family.names, family.bounds(getattr(res, "context", None)))) if family is not None else {}
+    for name in on & set(res.params):
+        if name not in bounds:
+            notes[name] = "at a bound"
+            continue
+        lo, hi = bounds[name]
+        v = res.params[name]
+        lower = abs(v - lo) <= abs(hi - v)
+        notes[name] = f"at {'lower' if lower else 'upper'} bound ({lo if lower else hi:g})"
     return notes
+
+
+def _se_shown(res, name, notes):
+    """A parameter's standard error for a table, blank (NaN) where the fit ended on a bound."""
+    return np.nan if "bound" in notes.get(name, "") else res.stderr.get(name, np.nan)
 
 
 def readable_unit(name: str, unit: str) -> str:
@@ -1119,7 +1127,7 @@ class FitTable(View):
         self.anisotropic_info = pn.pane.Markdown("", css_classes=["ds-aniso-info"], sizing_mode="stretch_width",
                                                  visible=False)
         self.anisotropic_table = pn.widgets.Tabulator(
-            pd.DataFrame(columns=["quantity", "value", "std. error", "unit"]), show_index=False, disabled=True,
+            pd.DataFrame(columns=["quantity", "value", "std. error", "unit", "note"]), show_index=False, disabled=True,
             layout="fit_data_fill", formatters=PLAIN_NUMBERS, sizing_mode="stretch_width",
             name="anisotropic-fit-table", visible=False)
         self.ex.param.watch(self._update, ["current_fit", "current_window", "current_anisotropic"])
@@ -1141,8 +1149,7 @@ class FitTable(View):
         else:
             notes = bound_notes(res)
             # a curvature at a bound is no standard error: the note says which bound instead (downloads keep the number)
-            rows = [{"parameter": p.name, "value": res.params[p.name],
-                     "std. error": np.nan if "bound" in notes.get(p.name, "") else res.stderr[p.name],
+            rows = [{"parameter": p.name, "value": res.params[p.name], "std. error": _se_shown(res, p.name, notes),
                      "unit": readable_unit(p.name, p.unit), "note": notes.get(p.name, "")}
                     for p in res.family.parameters] if res.family is not None else []
             rows.append({"parameter": "diffusivity", "value": res.diffusivity, "std. error": res.diffusivity_se,
@@ -1176,8 +1183,9 @@ class FitTable(View):
         if a.family is None or not a.params or not np.all(np.isfinite(list(a.params.values()))):
             return f"**anisotropic fit** `{a.status}` {a.message}", None
         k = a.tensor
-        rows = [{"quantity": n, "value": a.params[n], "std. error": a.stderr.get(n, np.nan),
-                 "unit": readable_unit(n, a.units.get(n, ""))}
+        notes = bound_notes(a)
+        rows = [{"quantity": n, "value": a.params[n], "std. error": _se_shown(a, n, notes),
+                 "unit": readable_unit(n, a.units.get(n, "")), "note": notes.get(n, "")}
                 for n in ("anisotropy", "anisotropy_angle_deg")]
         rows += [{"quantity": "isotropy p-value", "value": a.isotropy_pvalue, "std. error": np.nan, "unit": "1"},
                  {"quantity": "diffusivity K_uu", "value": k[0, 0], "std. error": np.nan, "unit": "m²/s"},
@@ -1189,6 +1197,8 @@ class FitTable(View):
                   "unit": "m²/s"},
                  {"quantity": "diffusivity_angle_deg", "value": a.diffusivity_angle_deg,
                   "std. error": a.diffusivity_angle_deg_se, "unit": "degrees"}]
+        for row in rows:
+            row.setdefault("note", "")
         chosen = getattr(a, "selected", False)
         text = (f"**anisotropic fit** `{a.status}` · isotropy p = {a.isotropy_pvalue:.3g} "
                 f"({'rejected at 1 %: the anisotropic model is selected' if chosen else 'not rejected at 1 %'}) · "
@@ -1215,7 +1225,7 @@ class RegionFit(View):
         box = box_label(st.region, digits=4)
         if r is None:
             n = len(ex.region_windows())
-            text = (f"Pooling the {n} windows of the region {box} …" if n else
+            text = (f"Pooling the {counted(n, 'window')} of the region {box} …" if n else
                     f"No window of {st.window_days:g} days has its mean position in the region {box}.")
             return pn.pane.Markdown(text, css_classes=["ds-region-fit"])
         head = (f"**Pooled fit of the region** {box} · `{r.status}` {r.message}  \n"
@@ -1229,8 +1239,9 @@ class RegionFit(View):
         info = pn.pane.Markdown(head, css_classes=["ds-region-fit"])
         if not r.params:
             return info
-        rows = [{"parameter": k, "value": v, "std. error": r.stderr.get(k, np.nan),
-                 "unit": readable_unit(k, r.units.get(k, ""))}
+        notes = bound_notes(r)
+        rows = [{"parameter": k, "value": v, "std. error": _se_shown(r, k, notes),
+                 "unit": readable_unit(k, r.units.get(k, "")), "note": notes.get(k, "")}
                 for k, v in r.params.items()]
         table = pn.widgets.Tabulator(pd.DataFrame(rows), show_index=False, disabled=True, layout="fit_data_fill",
                                      formatters=PLAIN_NUMBERS, sizing_mode="stretch_width", name="region-fit-table",
@@ -1357,7 +1368,7 @@ class ParameterMap(View):
                     ("status", "@status")]
         n_ok = sum(r.status == "ok" for r in results)
         return bins, f"pooled {p}", tooltips, lon_e, lat_e, quads, (
-            f"pooled {p} in {b:g}° bins: {int(fitted.sum())} of {len(pm['cells'])} bins fitted ({n_ok} ok), "
+            f"pooled {p} in {b:g}° bins: {int(fitted.sum())} of {counted(len(pm['cells']), 'bin')} fitted ({n_ok} ok), "
             f"{st.window_days:g}-day windows")
 
     def _ellipses(self, lon_e, lat_e, quads) -> dict | None:

@@ -14,6 +14,8 @@ and from :mod:`driftspec.app.dashboard` (``complementary_curves``).
 
 from __future__ import annotations
 
+from types import SimpleNamespace
+
 import numpy as np
 import pandas as pd
 from bokeh.layouts import row
@@ -180,8 +182,10 @@ class RotarySpectrumFigure:
         from driftspec.analysis.spectral.periodogram import multitaper_spectrum, rotary_periodogram
 
         mt = multitaper_spectrum(window.z, window.dt_seconds, time_bandwidth=3)
-        pg = rotary_periodogram(window.z, window.dt_seconds)
         has_fit = fit is not None and fit.family is not None and np.all(np.isfinite(fit.theta))
+        # the periodogram the fit used (its taper, gaps and mean removed), so that model and floor compare with it
+        pg = rotary_periodogram(window.z, window.dt_seconds) if not has_fit or fit.prepared is None else \
+            SimpleNamespace(freq_cpd=fit.prepared.freq_cpd, power=fit.prepared.periodogram)
         if has_fit:
             ff, ee, inb = fit.expected_spectrum()
             edge = fit.prepared.freq_cpd[fit.prepared.band].max() if fit.prepared is not None else 0.0

@@ -148,7 +148,8 @@ def test_a_box_selected_region_gets_its_pooled_fit(server, page, windows):
     direct = pool_fit(mine, _spec())
     assert direct.status in ("ok", "at_bound") and direct.n_windows >= 6, direct
     assert f"· {direct.status}" in text, text
-    assert f"{direct.n_windows} windows of {direct.n_tracks} tracks" in text, text
+    tracks = f"{direct.n_tracks} track" + ("s" if direct.n_tracks != 1 else "")
+    assert f"{direct.n_windows} windows of {tracks}" in text, text
     het = re.search(r"statistic\s+([\d.]+),\s+df\s+([\d.]+),\s+p\s+=\s+([\d.e-]+)", text)
     assert het, text
     assert float(het.group(1)) == pytest.approx(direct.heterogeneity_statistic, abs=1e-3)

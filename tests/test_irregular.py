@@ -262,6 +262,8 @@ def test_noise_floor_beyond_the_band_is_the_noise_seen_through_the_fixes():
     assert abs(ratio.mean() - 1) < 0.01
     # inside the band it is the noise term the likelihood fits (the operator's own, used since the first version)
     np.testing.assert_allclose(floor[obs.band_index], scale**2 * obs.fixed_noise, rtol=1e-12)
+    # above the hourly grid's Nyquist frequency (12 cpd) there is no Fourier frequency: nothing, not an alias
+    assert np.isnan(fam.noise_spectral_density(np.r_[0.02, 1.2, 1.0, scale], [13.0, -12.5], CTX)).all()
 
 
 # --- derivatives and input checks -------------------------------------------------------------------------

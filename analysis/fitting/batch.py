@@ -24,6 +24,7 @@ from threadpoolctl import threadpool_limits
 from ..io.tables import naive_utc, read_table, write_table
 from ..tracks.ellipse import ELLIPSE_UNITS, variance_ellipse
 from ..tracks.windows import Window
+from ..wording import counted
 from .anisotropy import isotropic_tensor_columns
 from .core import fit_window
 from .spec import FitSpec
@@ -407,8 +408,8 @@ def describe_choices(df: pd.DataFrame) -> str:
     for obs, g in rows.groupby("observation", sort=True):
         interval = g["fix_interval_s"].median() / 3600 if "fix_interval_s" in g else float("nan")
         mask = g["mask_distance_s"].median() / 3600 if "mask_distance_s" in g else float("nan")
-        lines.append(f"  {obs}: {len(g)} windows (median fix interval {interval:.1f} h, mask distance {mask:.0f} h, "
-                     f"band to {g['max_freq'].median():.2f} cpd)")
+        lines.append(f"  {obs}: {counted(len(g), 'window')} (median fix interval {interval:.1f} h, mask distance "
+                     f"{mask:.0f} h, band to {g['max_freq'].median():.2f} cpd)")
     if "inertial_frequency_offset" in rows:
         lines.append(f"  inertial part following the latitude: {int(rows['inertial_frequency_offset'].notna().sum())} "
                      "windows")

@@ -121,7 +121,10 @@ class FitResult:
         return p.freq_cpd[o], e[o], p.band[o]
 
     def noise_floor(self, freq_cpd):
-        """Spectral density of the fitted position noise at ``freq_cpd`` (zeros without a noise model)."""
+        """The fitted position noise at ``freq_cpd``, (m/s)^2/cpd, zeros without a noise model: its spectral density
+        through the difference operator for a regular window; for a window of irregular fixes its expected
+        periodogram through the interpolation between them, at the window's nearest Fourier frequency (NaN above
+        the Nyquist frequency)."""
         f = np.asarray(freq_cpd, float)
         fn = getattr(self.family, "noise_spectral_density", None)
         return np.zeros_like(f) if fn is None else np.real(fn(self.theta, f, self.context))

@@ -695,15 +695,19 @@ class IrregularlyObserved(ModelFamily):
         """The fitted position noise's expected periodogram at the window's Fourier frequency nearest each of
         ``freq_cpd``, through the interpolation between the window's fixes
         (:meth:`IrregularObservation.noise_periodogram`), for drawing a noise floor beside the periodogram;
-        (m/s)^2/cpd, zeros without a noise model."""
+        (m/s)^2/cpd, zeros without a noise model, NaN above the grid's Nyquist frequency."""
         op = self.operator
         theta = np.asarray(theta, float)
-        k = np.rint(np.asarray(freq_cpd, float) * op.n * op.dt_days).astype(np.int64) % op.n
+        f = np.asarray(freq_cpd, float)
+        k = np.rint(f * op.n * op.dt_days).astype(np.int64) % op.n
+        beyond = np.abs(f) > 0.5 / op.dt_days * (1 + 1e-9)  # above the grid's Nyquist frequency: NaN, not an alias
         if self._scaled:
-            return theta[-1] ** 2 * op.noise_periodogram(op.sigma_used)[k]
-        if op.noise == "fitted":
-            return op.noise_periodogram(max(float(theta[self._p]), POSITION_NOISE.lower))[k]
-        return np.zeros(k.shape)
+            e = theta[-1] ** 2 * op.noise_periodogram(op.sigma_used)[k]
+        elif op.noise == "fitted":
+            e = op.noise_periodogram(max(float(theta[self._p]), POSITION_NOISE.lower))[k]
+        else:
+            e = np.zeros(k.shape)
+        return np.where(beyond, np.nan, e)
 
     def _zero_frequency_density(self, theta, context):
         return self.base._zero_frequency_density(theta[: self._p], context)
