@@ -62,12 +62,12 @@ def _warm_background():
 
 
 def _fit_one(window, spec_json):
-    """Worker: the FitResult of one window under one model (what the spectrum and fit table show)."""
+    """Worker: every candidate's FitResult of one window, the selected one marked (the page shows that one)."""
     import json
 
     from driftspec.analysis.fitting import FitSpec, fit_window
 
-    return fit_window(window, FitSpec.from_dict(json.loads(spec_json)))[0]
+    return fit_window(window, FitSpec.from_dict(json.loads(spec_json)))
 
 
 def _fit_rows(window, spec_json):

@@ -239,6 +239,47 @@ def _map_box(page):
     return page.locator("canvas").first.bounding_box()
 
 
+def _assert_table_is_row(shown, row):
+    """The fit table's values (``_table_values``) are the fits-table row's, to the digits the page shows."""
+    digits = TABLE_DIGITS  # the page shows each number to this many significant digits
+    # a parameter on a bound shows no standard error (the table's note names the bound)
+    on_bound = {n.strip() for n in str(row["message"]).split("at bound: ")[-1].split(";")[0].split(",")} \
+        if row["status"] == "at_bound" else set()
+    for name, (value, se) in shown.items():
+        if name in row:
+            assert value == pytest.approx(float(f"{row[name]:.{digits}g}"), rel=1e-12), name
+            want = np.nan if name in on_bound else float(f"{row[name + '_se']:.{digits}g}")
+            assert se == pytest.approx(want, rel=1e-12, nan_ok=True), name
+    assert {"matern_alpha", "matern_damping", "diffusivity"} <= set(shown)
+    # the rows of the other candidate's parameters are not shown
+    assert ("inertial_variance" in shown) == (row["model"] == "matern+inertial"), (sorted(shown), row["model"])
+
+
+def test_model_auto_shows_the_candidate_the_command_line_selects(server, served_dir, page, tmp_path):
+    # the command line's defaults (but 30-day windows) choose per window between matern and matern+inertial; the
+    # page with model and inertial frequency auto fits the same window in its workers and shows the selected
+    # candidate, its numbers and the reason (it showed the first candidate, whichever was selected)
+    from driftspec.analysis.io import read_table
+    from driftspec.app.cli import main
+
+    out = tmp_path / "fits.parquet"
+    assert main(["fit", str(served_dir / "one.parquet"), "--out", str(out), "--window-days", "30", "--workers", "1",
+                 "--no-progress"]) == 0
+    table = read_table(out).sort_values("window_start").reset_index(drop=True)
+    rich = table.index[table["model"] == "matern+inertial"]
+    assert len(rich), table[["model", "selection"]]  # the mid-latitude track keeps its oscillation somewhere
+    plain = table.index[table["model"] == "matern"]
+    for k in [rich[0], *plain[:1]]:
+        row = table.loc[k]
+        query = urlencode({"data": "one.parquet", "window": int(k), "model": "auto", "inertial": "auto"})
+        _open(page, f"{server}?{query}")
+        shown = _wait_for(lambda: _table_values(page), lambda v: "matern_alpha" in v)
+        _assert_table_is_row(shown, row)
+        info = _text(page, ".ds-fitinfo")
+        assert row["selection"].split(";")[0] in info, (info, row["selection"])
+    assert page.console_errors == [], (page.console_errors, page.outside)
+
+
 def test_first_look_is_full_and_the_fit_equals_the_command_line(server, served_dir, page, tmp_path, artifacts_dir):
     from driftspec.analysis.io import read_table
     from driftspec.app.cli import main
@@ -252,16 +293,7 @@ def test_first_look_is_full_and_the_fit_equals_the_command_line(server, served_d
     assert main(["fit", str(served_dir / "one.parquet"), "--out", str(out), *CLI_DEFAULTS, "--workers", "1",
                  "--no-progress"]) == 0
     row = read_table(out).sort_values("window_start").iloc[1]
-    digits = TABLE_DIGITS  # the page shows each number to this many significant digits
-    # a parameter on a bound shows no standard error (the table's note names the bound)
-    on_bound = {n.strip() for n in str(row["message"]).split("at bound: ")[-1].split(";")[0].split(",")} \
-        if row["status"] == "at_bound" else set()
-    for name, (value, se) in shown.items():
-        if name in row:
-            assert value == pytest.approx(float(f"{row[name]:.{digits}g}"), rel=1e-12), name
-            want = np.nan if name in on_bound else float(f"{row[name + '_se']:.{digits}g}")
-            assert se == pytest.approx(want, rel=1e-12, nan_ok=True), name
-    assert {"matern_alpha", "matern_damping", "diffusivity"} <= set(shown)
+    _assert_table_is_row(shown, row)
     # the first look: the track summary and the parameter map fill without pressing anything
     page.get_by_text("Track summary", exact=True).click()
     # (the first look fits every window in the background on two cores while the command line above ran too:
