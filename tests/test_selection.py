@@ -56,6 +56,30 @@ def test_a_candidate_at_a_bound_is_not_chosen_over_a_simpler_one_inside_its_boun
     assert select([simple, rich], 30.0) == 1 and "likelihood ratio" in rich.selection
 
 
+def test_when_no_candidate_converges_the_likelihood_ratio_still_chooses():
+    # both on a bound (a misspecified Matérn runs alpha to its upper bound; the oscillation's fit ends with alpha on
+    # the lower): the richer one is kept when the likelihood supports it and its peak is resolved, as between fits
+    # inside their bounds, and the reason says that none converged; D = 2 x 86 gives p far below 0.01
+    # (chi-bar-squared with 3 extra parameters)
+    simple = _fake("matern", MATERN, 954.5, status="at_bound", matern_alpha=4.99)
+    simple.message = "at bound: matern_alpha"
+    rich = _fake("matern+inertial", RICH, 1040.8, status="at_bound", inertial_frequency=-1.15, inertial_damping=0.3)
+    rich.message = "at bound: matern_alpha"
+    assert select([simple, rich], 30.0) == 1 and rich.selected and not simple.selected
+    assert rich.selection.startswith("no candidate converged inside its bounds; matern+inertial: likelihood "
+                                     "ratio p ="), rich.selection
+    assert simple.selection == "not selected: matern+inertial chosen (this candidate at_bound)"
+    # a small gain does not earn the extra parameters, bound or not: the simpler is reported
+    rich.loglik = 955.0
+    assert select([simple, rich], 30.0) == 0 and "not supported" in simple.selection
+    # a richer fit inside its bounds over a simpler one on a bound: chosen by rule 1, the likelihood ratio on record
+    rich.status, rich.loglik = "ok", 1040.8
+    assert select([simple, rich], 30.0) == 1
+    assert rich.selection.startswith("matern+inertial: matern at_bound (at bound: matern_alpha); likelihood ratio "
+                                     "against matern p = "), rich.selection
+    assert float(rich.selection.rsplit("p = ", 1)[1]) == pytest.approx(chibar_pvalue(2 * 86.3, 3), rel=0.05)
+
+
 def test_an_unresolved_inertial_peak_is_not_kept_however_large_the_likelihood_gain():
     # |f| = 0.05 cpd with half-width 0.2/(2 pi) = 0.03 cpd sits within two Rayleigh bins (2/30 cpd) of zero
     simple = _fake("matern", MATERN, -100.0)

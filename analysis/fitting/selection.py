@@ -4,7 +4,8 @@ The rule, in order:
 
 1. A candidate that did not converge inside its bounds (``at_bound``, ``no_convergence``, ``failed``) is not
    chosen over one that did: a fit that ends on a bound has not found the likelihood's maximum in the model's
-   interior, and a simpler model that does is the better description.
+   interior, and a simpler model that does is the better description. When none converged, rule 2 and 3 choose
+   among those that produced numbers (the chosen fit keeps its status, and the reason says none converged).
 2. Of two nested candidates (the simpler one's parameters are a subset of the richer one's, as ``matern`` in
    ``matern+inertial``), the richer one is kept only if
 
@@ -74,37 +75,41 @@ def select(results, window_days: float) -> int:
     converged = [r.status == "ok" for r in results]
     order = sorted(range(len(results)), key=lambda i: len(results[i].params))
     pool = [i for i in order if converged[i]]
-    if not pool:  # nothing converged inside its bounds: the simplest candidate that produced numbers
-        fitted = [i for i in order if np.isfinite(results[i].loglik)] or order
-        best, reason = fitted[0], "no candidate converged inside its bounds; the simplest is reported"
-    else:
-        best = pool[0]
-        # the candidates left out for not converging inside their bounds, whether simpler or richer: say so
-        skipped = [results[i] for i in order if i not in pool]
-        reason = (f"{results[best].model}: " + "; ".join(f"{r.model} {r.status} ({r.message})" for r in skipped)
-                  if skipped else f"{results[best].model}: the simplest candidate")
-        for i in pool[1:]:
-            cur, new = results[best], results[i]
-            if set(cur.params) < set(new.params):  # nested: the richer model must earn its extra parameters
-                resolved, why = inertial_resolution(new, window_days)
-                k = len(new.params) - len(cur.params)
-                pval = chibar_pvalue(2 * (new.loglik - cur.loglik), k)
-                if not resolved:
-                    reason = f"{cur.model}: {why}"
-                elif pval >= LRT_LEVEL:
-                    reason = f"{cur.model}: {new.model} not supported (likelihood ratio p = {pval:.2g})"
-                else:
-                    best, reason = i, f"{new.model}: likelihood ratio p = {pval:.2g}; {why}".rstrip("; ")
-            elif new.aic < cur.aic:
-                best, reason = i, f"{new.model}: lower AIC than {cur.model} ({new.aic:.1f} < {cur.aic:.1f})"
+    prefix = ""
+    if not pool:  # nothing converged inside its bounds: the same rule among the candidates that produced numbers
+        pool = [i for i in order if np.isfinite(results[i].loglik)] or order[:1]
+        prefix = "no candidate converged inside its bounds; "
+    best = pool[0]
+    # the candidates left out for not converging inside their bounds, whether simpler or richer: say so
+    skipped = [results[i] for i in order if i not in pool]
+    reason = (f"{results[best].model}: " + "; ".join(f"{r.model} {r.status} ({r.message})" for r in skipped)
+              if skipped else f"{results[best].model}: the simplest candidate")
+    for i in pool[1:]:
+        cur, new = results[best], results[i]
+        if set(cur.params) < set(new.params):  # nested: the richer model must earn its extra parameters
+            resolved, why = inertial_resolution(new, window_days)
+            k = len(new.params) - len(cur.params)
+            pval = chibar_pvalue(2 * (new.loglik - cur.loglik), k)
+            if not resolved:
+                reason = f"{cur.model}: {why}"
+            elif pval >= LRT_LEVEL:
+                reason = f"{cur.model}: {new.model} not supported (likelihood ratio p = {pval:.2g})"
+            else:
+                best, reason = i, f"{new.model}: likelihood ratio p = {pval:.2g}; {why}".rstrip("; ")
+        elif new.aic < cur.aic:
+            best, reason = i, f"{new.model}: lower AIC than {cur.model} ({new.aic:.1f} < {cur.aic:.1f})"
+    chosen = results[best]
+    # a simpler candidate left out for its bound: the likelihood ratio too, for the record (it did not decide)
+    for r in skipped:
+        if set(r.params) < set(chosen.params) and np.isfinite(r.loglik) and np.isfinite(chosen.loglik):
+            pval = chibar_pvalue(2 * (chosen.loglik - r.loglik), len(chosen.params) - len(r.params))
+            reason += f"; likelihood ratio against {r.model} p = {pval:.2g}"
+    reason = prefix + reason
     for j, r in enumerate(results):
         r.selected = j == best
-        r.selection = reason if j == best else ""
-    for j, r in enumerate(results):
-        if j != best:
-            r.selection = f"not selected: {results[best].model} chosen"
+        r.selection = reason if j == best else f"not selected: {chosen.model} chosen"
         if not converged[j] and j != best:
-            r.selection += f" ({r.status})"
+            r.selection += f" (this candidate {r.status})"
     return best
 
 
