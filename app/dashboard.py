@@ -1100,6 +1100,13 @@ def _se_shown(res, name, notes):
     return np.nan if "bound" in notes.get(name, "") else res.stderr.get(name, np.nan)
 
 
+def p_text(p: float) -> str:
+    """A p-value as people read it: ``p = 0.042``, ``p < 0.001``, or ``p –`` when there is none."""
+    if not np.isfinite(p):
+        return "p –"
+    return "p < 0.001" if p < 0.001 else f"p = {p:.3f}"
+
+
 def readable_unit(name: str, unit: str) -> str:
     """The unit of column ``name`` for people: ``cpd`` for frequencies, ``1/day`` for damping rates, ``m²/s``..."""
     if unit == "day-1" and "frequency" in name:
@@ -1159,8 +1166,8 @@ class FitTable(View):
             colour = "#1f7a4a" if res.ok else "#b5522b"
             chosen = f"**model** {res.selection}  \n" if self.state.model == "auto" and res.selection else ""
             self.info.object = (
-                chosen + f"<span style='color:{colour}'>&#9679;</span> **status** `{res.status}` {res.message}  \n"
-                f"**goodness of fit** p = {res.gof_pvalue:.3f} · log L = {res.loglik:.1f} · AIC = {res.aic:.1f}  \n"
+                chosen + f"<span style='color:{colour}'>&#9679;</span> **status** {res.status} {res.message}  \n"
+                f"**goodness of fit** {p_text(res.gof_pvalue)} · log L = {res.loglik:.1f} · AIC = {res.aic:.1f}  \n"
                 f"window {w.start:%Y-%m-%d} → {w.end:%Y-%m-%d} · {res.n_valid}/{res.n_samples} valid · "
                 f"{res.n_freq} frequencies fitted · local f = {w.inertial_frequency_cpd:.3f} cpd · "
                 f"{res.stderr_method or 'no'} standard errors · refit {ex.refit_ms:.0f} ms")
@@ -1282,6 +1289,9 @@ class TrackSummary(View):
                                            hv.opts.Overlay(responsive=True, height=190, fontscale=fs, title=p)))
         text = (f"{len(ok)} ok of {counted(len(df), 'window')} · {self.state.window_days:g}-day windows · "
                 f"model {self.state.model}")
+        if self.state.model == "auto" and "model" in df:  # which candidate each window kept
+            text += " (" + ", ".join(f"{m} selected in {counted(c, 'window')}"
+                                     for m, c in df["model"].astype(str).value_counts().items()) + ")"
         return pn.Column(pn.pane.Markdown(text, css_classes=["ds-track-summary"]),
                          pn.pane.HoloViews(hv.Layout(plots).cols(2), sizing_mode="stretch_width"),
                          sizing_mode="stretch_width")

@@ -237,8 +237,11 @@ class RotarySpectrumFigure:
                 fig.x_range.update(start=a, end=b, reset_start=a, reset_end=b)
         ylim = (low / 5 if pos.size else 1e-8, top * 3)
         self.y_range.update(start=ylim[0], end=ylim[1], reset_start=ylim[0], reset_end=ylim[1])
-        for k in ("fitted model", "model beyond fitted band", "edge of fitted band"):
+        for k in ("fitted model", "edge of fitted band"):
             self.legend_items[k].visible = bool(has_fit)
+        # (a window of irregular fixes has its model over the fitted band only: nothing beyond to name)
+        self.legend_items["model beyond fitted band"].visible = bool(has_fit) and any(
+            np.isfinite(src["beyond"].data["y"]).any() for src in self.sources.values())
         self.legend_items["position-noise floor"].visible = any_floor
 
 
