@@ -106,7 +106,7 @@ def test_fit_command_end_to_end(tmp_path, demo_dir):
     # (a 30-day window is 720 hourly samples)
     short = int((vel.groupby(["id", "segment"], observed=True).size() < 720).sum())
     said = f"{short} segments are" if short != 1 else "1 segment is"
-    assert short > 0 and f"{said} shorter than one window, so not fitted" in r.stderr, r.stderr
+    assert short > 0 and f"{said} shorter than one 30-day window, so not fitted" in r.stderr, r.stderr
     assert f"windows: {len(df)} of {len(df)} candidate windows kept" in r.stderr
     bad = run("fit", demo_dir / "fixes.parquet", "--out", out, "--model", "nonsense")
     assert bad.returncode == 2 and "unknown model" in bad.stderr

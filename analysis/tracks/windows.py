@@ -126,6 +126,7 @@ class WindowCensus:
     candidates: int = 0
     kept: int = 0
     low_coverage: list = field(default_factory=list)  # coverage of each candidate below the limit
+    window_days: float = 0.0  # the window length asked for
 
     def explain(self, min_coverage: float) -> str:
         """One paragraph: why no (or few) windows were kept, with numbers, and what to try."""
@@ -133,9 +134,13 @@ class WindowCensus:
                  f"{counted(self.segments, 'track segment')}"]
         if self.short_segments:
             n = self.short_segments
-            lines.append(f"{counted(n, 'segment')} {'is' if n == 1 else 'are'} shorter than one window, so not fitted "
-                         f"(the longest segment of all: {self.longest_segment_days:.1f} days): try a shorter "
-                         "--window-days or a longer --split-gap")
+            window = f"one {self.window_days:g}-day window" if self.window_days else "one window"
+            longest = f"{self.longest_segment_days:.1f}"
+            if self.window_days and float(longest) >= self.window_days:  # a hair short: say by how much
+                longest = f"{self.longest_segment_days:.3f}"
+            lines.append(f"{counted(n, 'segment')} {'is' if n == 1 else 'are'} shorter than {window}, so not fitted "
+                         f"(the longest segment of all: {longest} days): try a shorter --window-days or a longer "
+                         "--split-gap")
         if self.low_coverage:
             cov = np.asarray(self.low_coverage)
             lines.append(f"{counted(cov.size, 'window')} had coverage below --min-coverage {min_coverage:g} (median "
@@ -195,6 +200,7 @@ def iter_windows(vel: pd.DataFrame, window_days: float = 60.0, overlap: float = 
             raise ValueError("window shorter than two samples")
         bounds = window_bounds(b - a, length, overlap)
         census.segments += 1
+        census.window_days = float(window_days)
         census.longest_segment_days = max(census.longest_segment_days, (b - a) * dt_ns / 86400e9)
         census.short_segments += not bounds
         census.candidates += len(bounds)
