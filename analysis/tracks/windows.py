@@ -136,7 +136,7 @@ class WindowCensus:
             n = self.short_segments
             window = f"one {self.window_days:g}-day window" if self.window_days else "one window"
             longest = f"{self.longest_segment_days:.1f}"
-            if self.window_days and float(longest) >= self.window_days:  # a hair short: say by how much
+            if self.longest_segment_days < self.window_days <= float(longest):  # a hair short: say by how much
                 longest = f"{self.longest_segment_days:.3f}"
             lines.append(f"{counted(n, 'segment')} {'is' if n == 1 else 'are'} shorter than {window}, so not fitted "
                          f"(the longest segment of all: {longest} days): try a shorter --window-days or a longer "
