@@ -148,6 +148,18 @@ def stored_settings(out) -> dict | None:
     return None
 
 
+class Tally:
+    """An iterable passed through once, lazily, counting the items that went by (``n``)."""
+
+    def __init__(self, items: Iterable):
+        self._items, self.n = items, 0
+
+    def __iter__(self):
+        for item in self._items:
+            self.n += 1
+            yield item
+
+
 class NoWindows(ValueError):
     """A run given no windows at all (every track too short or too sparse): nothing is written."""
 
@@ -238,15 +250,7 @@ def run_fits(windows: Iterable[Window], out, spec: FitSpec, *, workers: int = 1,
         written += 1
 
     # windows are consumed lazily and at most a few chunks are in flight, so memory stays bounded
-    seen = 0
-
-    def tally(ws):
-        nonlocal seen
-        for w in ws:
-            seen += 1
-            yield w
-
-    windows = tally(windows)
+    windows = Tally(windows)
     if spec.keep_all:
         names = [spec.model_name(m) for m in spec.candidate_models]
         todo = (w for w in windows if not all((w.track_id, w.start, m) in skip for m in names))
@@ -278,7 +282,7 @@ def run_fits(windows: Iterable[Window], out, spec: FitSpec, *, workers: int = 1,
         bar.close()
     if stopped:
         return None
-    if seen == 0:  # nothing to fit: the table at `out` stays as it is, and no parts are left behind
+    if windows.n == 0:  # nothing to fit: the table at `out` stays as it is, and no parts are left behind
         if not had_parts:  # (an interrupted run's parts stay for a resume with its settings)
             shutil.rmtree(parts, ignore_errors=True)
         raise NoWindows(f"no windows to fit; {out} is left as it was" if out.exists()
@@ -417,5 +421,5 @@ def describe_choices(df: pd.DataFrame) -> str:
     return "chosen from the data:\n" + "\n".join(lines)
 
 
-__all__ = ["NoWindows", "column_units", "combine", "describe_choices", "fit_chunk", "run_fits", "run_settings",
+__all__ = ["NoWindows", "Tally", "column_units", "combine", "describe_choices", "fit_chunk", "run_fits", "run_settings",
            "stored_settings", "summarise", "window_rows"]

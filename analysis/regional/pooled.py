@@ -1323,7 +1323,7 @@ def pool_map(windows: Iterable, spec: FitSpec | None = None, *, bin_deg: float =
     else:
         from tqdm import tqdm
 
-    from ..fitting.batch import NoWindows, run_settings, stored_settings
+    from ..fitting.batch import NoWindows, Tally, run_settings, stored_settings
     from ..wording import counted
 
     spec = FitSpec() if spec is None else spec
@@ -1355,19 +1355,12 @@ def pool_map(windows: Iterable, spec: FitSpec | None = None, *, bin_deg: float =
         had_parts = parts.exists()  # an interrupted run's, kept for this resume
         parts.mkdir(exist_ok=True)
         (parts / "settings.json").write_text(json.dumps(settings, sort_keys=True))
-    seen = 0
-
-    def tally(ws):
-        nonlocal seen
-        for w in ws:
-            seen += 1
-            yield w
-
-    bins, lat_e, lon_e = bin_windows(tally(windows), bin_deg, region)
+    seen = Tally(windows)
+    bins, lat_e, lon_e = bin_windows(seen, bin_deg, region)
     if not bins:  # nothing to pool: whatever is at `out` stays, and no parts are left behind
         if parts is not None and not had_parts:  # (an interrupted run's parts stay for a resume)
             shutil.rmtree(parts, ignore_errors=True)
-        where = (f" inside the region ({counted(seen, 'window')}, all outside it)" if region is not None and seen
+        where = (f" inside the region ({counted(seen.n, 'window')}, all outside it)" if region is not None and seen.n
                  else "")
         kept = f"{out} is left as it was" if out is not None and out.exists() else "nothing written"
         raise NoWindows(f"no windows to pool{where}; {kept}")
