@@ -172,6 +172,7 @@ def iter_windows(vel: pd.DataFrame, window_days: float = 60.0, overlap: float = 
         Filled in with counts of segments and candidate windows and the coverage of those not kept.
     """
     census = census if census is not None else WindowCensus()
+    census.window_days = float(window_days)
     if window_days <= 0:
         raise ValueError("window_days must be positive")
     if len(vel) == 0:
@@ -200,7 +201,6 @@ def iter_windows(vel: pd.DataFrame, window_days: float = 60.0, overlap: float = 
             raise ValueError("window shorter than two samples")
         bounds = window_bounds(b - a, length, overlap)
         census.segments += 1
-        census.window_days = float(window_days)
         census.longest_segment_days = max(census.longest_segment_days, (b - a) * dt_ns / 86400e9)
         census.short_segments += not bounds
         census.candidates += len(bounds)
